@@ -1,0 +1,7 @@
+"""bigpanel: within and first-difference panel regressions run as SQL over files."""
+
+from .errors import BigpanelError, EstimationError, InputError
+from .source import Engine, Source, open_source
+
+__all__ = ["BigpanelError", "EstimationError", "InputError", "Engine", "Source", "open_source"]
+__version__ = "0.1.0"

@@ -1,0 +1,367 @@
+"""Opening panel data and running SQL on it: the only module that opens connections.
+
+A :class:`Source` names where the rows live (Parquet files, CSV files, a table in a
+DuckDB file, a SQL query over any of these, or an in-memory Arrow/Polars/pandas
+frame) and a row filter; :class:`Engine` holds the DuckDB settings. Rows are never
+brought into Python: callers get aggregates back.
+"""
+
+from __future__ import annotations
+
+import glob as globmod
+import os
+import threading
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import pyarrow.parquet as pq
+
+from . import sqlbuild
+from .errors import InputError, unknown_column
+
+NUMERIC_TYPES = (
+    "TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
+    "UBIGINT", "UHUGEINT", "FLOAT", "DOUBLE", "REAL", "DECIMAL", "BOOLEAN",
+)  # fmt: skip
+_FRAME_VIEW = "bigpanel_frame"
+_ATTACHED = "bigpanel_src"
+
+
+@dataclass(frozen=True)
+class Engine:
+    """DuckDB settings: worker threads, memory limit (e.g. ``"4GB"``) and spill folder."""
+
+    threads: int | None = None
+    memory_limit: str | None = None
+    temp_directory: str | None = None
+
+    def settings(self) -> list[str]:
+        out = [
+            "SET enable_progress_bar = false",
+            "SET enable_progress_bar_print = false",
+            "SET preserve_insertion_order = true",
+        ]
+        if self.threads is not None:
+            if int(self.threads) < 1:
+                raise InputError(f"Option 'threads' must be at least 1, got {self.threads}. Give a positive count.")
+            out.append(f"SET threads = {int(self.threads)}")
+        if self.memory_limit is not None:
+            out.append(f"SET memory_limit = {sqlbuild.quote_literal(self.memory_limit)}")
+        if self.temp_directory is not None:
+            out.append(f"SET temp_directory = {sqlbuild.quote_literal(self.temp_directory)}")
+        return out
+
+
+@dataclass(frozen=True)
+class Source:
+    """Where the panel rows are, and which of them to use.
+
+    Build one with :func:`open_source`; the fields are filled in there.
+    """
+
+    kind: str  # parquet | csv | duckdb | query | frame
+    label: str
+    files: tuple[str, ...] = ()
+    hive: bool = False
+    database: str | None = None
+    table: str | None = None
+    query: str | None = None
+    csv_types: tuple[tuple[str, str], ...] = ()
+    csv_options: tuple[tuple[str, str], ...] = ()
+    where: str | None = None
+    frame: Any = field(default=None, compare=False, repr=False)
+    engine: Engine = Engine()
+
+    def relation(self, files: Sequence[str] | None = None) -> str:
+        """SQL FROM-clause text for all rows, or for a subset of the Parquet files."""
+        if self.kind == "parquet":
+            return sqlbuild.parquet_relation(list(files or self.files), self.hive)
+        if self.kind == "csv":
+            return sqlbuild.csv_relation(list(self.files), dict(self.csv_types), dict(self.csv_options))
+        if self.kind == "duckdb" and self.table is not None:
+            return sqlbuild.table_relation(_ATTACHED, self.table)
+        if self.kind == "frame":
+            return sqlbuild.quote_ident(_FRAME_VIEW)
+        return sqlbuild.query_relation(self.query or "")
+
+    def filtered(self, files: Sequence[str] | None = None) -> str:
+        """A subquery of the source's rows after the row filter."""
+        where = f" WHERE ({self.where})" if self.where else ""
+        return f"(SELECT * FROM {self.relation(files)}{where})"
+
+    def connect(self) -> duckdb.DuckDBPyConnection:
+        """A fresh in-memory connection with the engine settings and the source attached."""
+        con = duckdb.connect(":memory:")
+        for statement in self.engine.settings():
+            con.execute(statement)
+        if self.database is not None:
+            try:
+                con.execute(sqlbuild.attach_sql(self.database, _ATTACHED))
+            except duckdb.Error as exc:
+                con.close()
+                raise InputError(
+                    f"DuckDB file '{self.database}' could not be opened read-only ({_first_line(exc)}). "
+                    "Check that it is a DuckDB database written by a compatible version."
+                ) from None
+            if self.kind == "query":
+                con.execute(f"USE {sqlbuild.quote_ident(_ATTACHED)}")
+        if self.frame is not None:
+            con.register(_FRAME_VIEW, self.frame)
+        return con
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0] if text else type(exc).__name__
+
+
+def _parquet_files(path: str) -> tuple[list[str], bool]:
+    """Resolve a file, folder (recursive) or glob to a sorted list of Parquet files."""
+    if any(ch in path for ch in "*?["):
+        files = sorted(f for f in globmod.glob(path, recursive=True) if os.path.isfile(f))
+        if not files:
+            raise InputError(f"No files match '{path}'. Check the pattern (brace lists like {{a,b}} are not supported).")
+        return files, any("=" in part for part in Path(files[0]).parts)
+    p = Path(path)
+    if p.is_dir():
+        files = sorted(str(f) for f in p.rglob("*.parquet") if f.is_file())
+        if not files:
+            raise InputError(f"Folder '{path}' holds no Parquet files (searched its subfolders for *.parquet). Point at the folder that holds the data.")
+        hive = any("=" in part for f in files[:1] for part in Path(f).relative_to(p).parts[:-1])
+        return files, hive
+    if not p.exists():
+        raise InputError(f"Source '{path}' does not exist. Check the path.")
+    return [str(p)], False
+
+
+def open_source(
+    source: Any,
+    *,
+    table: str | None = None,
+    query: str | None = None,
+    where: str | None = None,
+    csv_types: dict[str, str] | None = None,
+    csv_options: dict[str, str] | None = None,
+    engine: Engine | None = None,
+) -> Source:
+    """Describe a data source without reading its rows.
+
+    Parameters
+    ----------
+    source : str, path, pyarrow.Table, polars.DataFrame or pandas.DataFrame
+        A Parquet file, a folder of Parquet files (searched recursively; ``key=value``
+        folder names become columns), a glob, a CSV file or glob (``.csv``, ``.tsv``,
+        ``.csv.gz``), a DuckDB database file (``.duckdb``/``.db``, with ``table`` or
+        ``query``), or an in-memory frame.
+    table : str, optional
+        Table or view in a DuckDB file.
+    query : str, optional
+        A SQL query. With a DuckDB file it runs inside that database; with ``source``
+        None it runs on its own (it may read files itself).
+    where : str, optional
+        A SQL predicate applied to every row before anything else.
+    csv_types, csv_options : dict, optional
+        Column types that override CSV detection (``{"month": "DATE"}``) and reader
+        options (``delim``, ``decimal_separator``, ``nullstr``, ``header``).
+    engine : Engine, optional
+        DuckDB settings.
+    """
+    engine = engine or Engine()
+    common = dict(where=where, engine=engine)
+    if source is None:
+        if not query:
+            raise InputError("No source given. Pass a file, folder, glob, DuckDB file or a query.")
+        src = Source(kind="query", label="query", query=query, **common)
+    elif not isinstance(source, (str, os.PathLike)):
+        src = Source(kind="frame", label=f"in-memory {type(source).__name__}", frame=_as_arrow(source), **common)
+    else:
+        path = str(source)
+        lower = path.lower()
+        if lower.endswith((".duckdb", ".db", ".ddb")):
+            if not os.path.exists(path):
+                raise InputError(f"DuckDB file '{path}' does not exist. Check the path.")
+            if not table and not query:
+                raise InputError(f"DuckDB file '{path}' needs a table name or a query. Pass --table NAME or --query SQL.")
+            src = Source(kind="query" if query else "duckdb", label=f"{Path(path).name}" + (f" table {table}" if table else ""),
+                         database=path, table=table, query=query, **common)
+        elif lower.endswith((".csv", ".tsv", ".csv.gz", ".tsv.gz", ".txt")):
+            files = sorted(globmod.glob(path, recursive=True)) if any(c in path for c in "*?[") else [path]
+            if not files or not all(os.path.exists(f) for f in files):
+                raise InputError(f"Source '{path}' does not exist. Check the path.")
+            src = Source(kind="csv", label=Path(path).name, files=tuple(files),
+                         csv_types=tuple((csv_types or {}).items()), csv_options=tuple((csv_options or {}).items()), **common)
+        else:
+            files, hive = _parquet_files(path)
+            src = Source(kind="parquet", label=Path(path).name or path, files=tuple(files), hive=hive, **common)
+    if query and src.kind == "query":
+        _check_query_text(query)
+    return src
+
+
+def _check_query_text(query: str) -> None:
+    if query.strip().rstrip(";").count(";"):
+        raise InputError("Option 'query' holds more than one statement. Give a single SELECT query.")
+
+
+def _as_arrow(frame: Any):
+    import pyarrow as pa
+
+    if isinstance(frame, (pa.Table, pa.RecordBatchReader)):
+        return frame
+    module = type(frame).__module__.split(".")[0]
+    if module == "polars":
+        return frame.to_arrow()
+    if module == "pandas":
+        return pa.Table.from_pandas(frame, preserve_index=False)
+    raise InputError(f"In-memory source of type {type(frame).__name__} is not supported. Pass a pyarrow Table, polars DataFrame or pandas DataFrame.")
+
+
+class Session:
+    """An open connection on a source, with checked helpers for the estimators.
+
+    Every public method returns aggregates (a few rows) or schema facts.
+    """
+
+    def __init__(self, source: Source):
+        self.source = source
+        self.con = source.connect()
+        self._lock = threading.Lock()
+        self._columns: dict[str, str] | None = None
+
+    def close(self) -> None:
+        self.con.close()
+
+    def __enter__(self) -> "Session":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # ---- running
+    def run(self, sql: str, params: Sequence[Any] | None = None, con: duckdb.DuckDBPyConnection | None = None):
+        """Run a query and return a pyarrow Table of its (aggregate) result."""
+        target = con or self.con
+        try:
+            return target.execute(sql, params or []).to_arrow_table()
+        except duckdb.Error as exc:
+            raise self._explain(exc) from None
+
+    def cursor(self, threads: int | None = None) -> duckdb.DuckDBPyConnection:
+        cur = self.con.cursor()
+        if threads is not None:
+            cur.execute(f"SET threads = {int(threads)}")
+        return cur
+
+    def _explain(self, exc: duckdb.Error) -> Exception:
+        from .errors import BigpanelError
+
+        message = _first_line(exc)
+        if isinstance(exc, (duckdb.IOException, duckdb.InvalidInputException)) and self.source.kind == "parquet":
+            bad = _find_corrupt_parquet(self.source.files)
+            if bad:
+                return InputError(f"File '{bad[0]}' is not a readable Parquet file ({bad[1]}). Re-export it or move it out of the source.")
+        if isinstance(exc, duckdb.IOException):
+            return InputError(f"Source {self.source.label} could not be read ({message}). Check the path and file format.")
+        if isinstance(exc, duckdb.ConversionException):
+            return InputError(f"A value in {self.source.label} could not be converted ({message}). Check the column types or pass csv types.")
+        if isinstance(exc, duckdb.OutOfMemoryException):
+            return BigpanelError(f"DuckDB ran out of memory ({message}). Raise --memory-limit or set --temp-directory for spilling.")
+        if isinstance(exc, (duckdb.ParserException, duckdb.BinderException, duckdb.CatalogException)):
+            return InputError(f"SQL on {self.source.label} was refused ({message}). Check the filter, terms and query.")
+        return BigpanelError(f"DuckDB failed on {self.source.label}: {message}")
+
+    # ---- schema
+    def columns(self) -> dict[str, str]:
+        """Column name -> DuckDB type of the source (before the filter)."""
+        if self._columns is None:
+            try:
+                rows = self.con.execute(f"DESCRIBE SELECT * FROM {self.source.relation()}").fetchall()
+            except duckdb.Error as exc:
+                raise self._explain(exc) from None
+            self._columns = {r[0]: r[1] for r in rows}
+        return self._columns
+
+    def require_columns(self, names: Sequence[str], numeric: Sequence[str] = ()) -> None:
+        """Raise a helpful error for a missing column or a non-numeric one."""
+        cols = self.columns()
+        for name in names:
+            if name not in cols:
+                raise unknown_column(name, self.source.label, cols)
+        for name in numeric:
+            if not is_numeric(cols[name]):
+                raise InputError(
+                    f"Column '{name}' in {self.source.label} has type {cols[name]}, not a number. "
+                    "Choose a numeric column, or convert it in an expression (for example CAST(col AS DOUBLE))."
+                )
+
+    def check_expression(self, expression: str, what: str) -> None:
+        """Refuse anything but a single scalar SQL expression over the source's columns."""
+        sql, params = sqlbuild.parse_check_sql(expression)
+        tree = self.con.execute(sql, params).fetchone()[0]
+        problem = sqlbuild.expression_problem(tree, self.function_kinds())
+        if problem:
+            raise InputError(f"{what} '{expression}' is refused: {problem}. Give one scalar SQL expression over the source's columns.")
+
+    def function_kinds(self) -> dict[str, str]:
+        rank = {"table": 3, "table_macro": 3, "aggregate": 2, "pragma": 2}
+        kinds: dict[str, str] = {}
+        for name, kind in self.con.execute(sqlbuild.function_kinds_sql()).fetchall():
+            if rank.get(kind, 0) >= rank.get(kinds.get(name, ""), 0):
+                kinds[name] = kind
+        return kinds
+
+    def check_filter(self) -> None:
+        """Validate the row filter as a predicate (parsed, bound against the columns)."""
+        where = self.source.where
+        if not where:
+            return
+        self.check_expression(where, "Filter")
+        try:
+            self.con.execute(f"DESCRIBE SELECT * FROM {self.source.filtered()}")
+        except duckdb.Error as exc:
+            raise InputError(f"Filter '{where}' is not valid on {self.source.label} ({_first_line(exc)}). Fix the SQL predicate.") from None
+
+    def describe_expression(self, expression: str) -> str:
+        """DuckDB type of an expression over the source (binding it, reading no rows)."""
+        try:
+            row = self.con.execute(f"DESCRIBE SELECT {expression} AS x FROM {self.source.relation()}").fetchone()
+        except duckdb.Error as exc:
+            raise InputError(f"Term '{expression}' cannot be evaluated on {self.source.label} ({_first_line(exc)}). Check the column names and SQL.") from None
+        return row[1]
+
+
+def is_numeric(duck_type: str) -> bool:
+    return duck_type.upper().split("(")[0] in NUMERIC_TYPES
+
+
+def _find_corrupt_parquet(files: Sequence[str]) -> tuple[str, str] | None:
+    for f in files:
+        try:
+            pq.read_metadata(f)
+        except Exception as exc:  # noqa: BLE001 - any failure means the file is unreadable
+            return f, _first_line(exc)
+    return None
+
+
+def parquet_unit_ranges(files: Sequence[str], column: str) -> list[tuple[Any, Any] | None] | None:
+    """Per-file (min, max) of a column from Parquet footers (None for a file without
+    rows), or None when a file lacks the column or its statistics."""
+    out = []
+    for f in files:
+        meta = pq.read_metadata(f)
+        names = meta.schema.names
+        if column not in names:
+            return None
+        idx = names.index(column)
+        lo = hi = None
+        for g in range(meta.num_row_groups):
+            stats = meta.row_group(g).column(idx).statistics
+            if stats is None or not stats.has_min_max:
+                return None
+            lo = stats.min if lo is None or stats.min < lo else lo
+            hi = stats.max if hi is None or stats.max > hi else hi
+        out.append(None if lo is None else (lo, hi))
+    return out
