@@ -5,3 +5,8 @@ from .source import Engine, Source, open_source
 
 __all__ = ["BigpanelError", "EstimationError", "InputError", "Engine", "Source", "open_source"]
 __version__ = "0.1.0"
+
+from .fit import fit  # noqa: E402
+from .results import FitResult  # noqa: E402
+
+__all__ += ["fit", "FitResult"]

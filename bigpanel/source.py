@@ -245,7 +245,8 @@ class Session:
         """Run a query and return a pyarrow Table of its (aggregate) result."""
         target = con or self.con
         try:
-            return target.execute(sql, params or []).to_arrow_table()
+            rel = target.sql(sql, params=params) if params else target.sql(sql)
+            return rel.to_arrow_table()
         except duckdb.Error as exc:
             raise self._explain(exc) from None
 

@@ -152,3 +152,155 @@ def expression_problem(tree_json: str, function_kinds: dict[str, str]) -> str | 
 
 def function_kinds_sql() -> str:
     return "SELECT DISTINCT lower(function_name), function_type FROM duckdb_functions()"
+
+
+# ---------------------------------------------------------------- estimation queries
+# Design columns are z0..z{q-1} (the outcome last); each arrives shifted by $s{j}.
+
+
+def _z(j: int) -> str:
+    return f"z{j}"
+
+
+def design_rows_sql(
+    source: str, unit: str, period: str, clusters: list[str], columns: list[tuple[str, int]], step: int
+) -> str:
+    """Select the unit, period, clusters and shifted design columns of every row.
+
+    ``columns`` holds ``(expression, lag)`` pairs; a lag K reads the expression at
+    period - K*step in the same unit (NULL when that period is absent).
+    """
+    items = [f"{quote_ident(unit)} AS k_unit", f"{quote_ident(period)} AS k_period"]
+    items += [f"{quote_ident(c)} AS k_c{i}" for i, c in enumerate(clusters)]
+    for j, (expr, lag) in enumerate(columns):
+        value = f"CAST(({expr}) AS DOUBLE)"
+        if lag:
+            span = int(lag) * int(step)
+            value = (
+                f"first_value({value}) OVER (PARTITION BY {quote_ident(unit)} ORDER BY {quote_ident(period)} "
+                f"RANGE BETWEEN {span} PRECEDING AND {span} PRECEDING)"
+            )
+        items.append(f"{value} - $s{j} AS {_z(j)}")
+    return render("design_rows", source=source, columns=", ".join(items))
+
+
+def differenced_rows_sql(rows: str, n_clusters: int, q: int, kept_in_levels: frozenset[int] = frozenset()) -> str:
+    """Difference every design column except those in ``kept_in_levels`` (period
+    indicators added to the differenced equation)."""
+    keys = ["k_unit", "k_period"] + [f"k_c{i}" for i in range(n_clusters)]
+    diffs = ", ".join(
+        f"{_z(j)} AS {_z(j)}" if j in kept_in_levels else f"{_z(j)} - lag({_z(j)}) OVER w AS {_z(j)}" for j in range(q)
+    )
+    return render("differenced_rows", rows=f"({rows})", keys=", ".join(keys), diffs=diffs)
+
+
+def valid_predicate(q: int, differenced: bool, step: int) -> str:
+    terms = [f"isfinite({_z(j)})" for j in range(q)]
+    if differenced:
+        terms.insert(0, f"k_prev = k_period - {int(step)}")
+    return " AND ".join(terms)
+
+
+def unit_moments_sql(rows: str, q: int, n_clusters: int, valid: str) -> str:
+    """Per-unit n, sums s_j and products p_j_l (j <= l) of the q design columns."""
+    aggs = ["count(*) AS n", "min(k_period) AS t_min", "max(k_period) AS t_max"]
+    aggs += [f"sum({_z(j)}) AS s{j}" for j in range(q)]
+    aggs += [f"sum({_z(j)} * {_z(l)}) AS p{j}_{l}" for j in range(q) for l in range(j, q)]
+    for i in range(n_clusters):
+        aggs += [f"min(k_c{i}) AS c{i}", f"max(k_c{i}) AS c{i}_max"]
+    return render("unit_moments", rows=f"({rows})", aggregates=", ".join(aggs), valid=valid)
+
+
+def row_counts_sql(rows: str, q: int, differenced: bool, step: int) -> str:
+    finite = " AND ".join(f"isfinite({_z(j)})" for j in range(q))
+    usable = f"k_prev = k_period - {int(step)} AND " if differenced else ""
+    counts = ["count(*) AS n_rows", f"count(*) FILTER (WHERE {usable}NOT coalesce({finite}, false)) AS missing"]
+    if differenced:
+        counts += [
+            "count(*) FILTER (WHERE k_prev IS NULL) AS first_of_unit",
+            f"count(*) FILTER (WHERE k_prev < k_period - {int(step)}) AS after_gap",
+            "count(*) FILTER (WHERE k_prev = k_period) AS duplicate_keys",
+        ]
+    return render("row_counts", rows=f"({rows})", counts=", ".join(counts))
+
+
+def duplicate_keys_sql(source: str, unit: str, period: str, limit: int = 5) -> str:
+    u, p = quote_ident(unit), quote_ident(period)
+    return (
+        f"SELECT {u}, {p}, count(*) AS n FROM {source} AS src GROUP BY {u}, {p} "
+        f"HAVING count(*) > 1 ORDER BY {u}, {p} LIMIT {int(limit)}"
+    )
+
+
+def _centered(q: int, demean: bool, intercept: bool, n_clusters: int) -> tuple[str, str]:
+    """x~_j and u~ from shifted rows: z_j (minus unit means when demeaning)."""
+    k = q - 1
+    if demean:
+        xs = [f"r.{_z(j)} - m.m{j} AS x{j}" for j in range(k)]
+        resid = f"(r.{_z(k)} - m.m{k})" + "".join(f" - $b{j} * (r.{_z(j)} - m.m{j})" for j in range(k))
+        means = ", ".join(f"avg({_z(j)}) AS m{j}" for j in range(q))
+        join = f"JOIN (SELECT k_unit, {means} FROM used GROUP BY k_unit HAVING count(*) > 1) AS m USING (k_unit)"
+    else:
+        xs = [f"r.{_z(j)} AS x{j}" for j in range(k)]
+        resid = f"r.{_z(k)}" + "".join(f" - $b{j} * r.{_z(j)}" for j in range(k))
+        if intercept:
+            xs.append("1.0 AS x_one")
+            resid += " - $b_one"
+        join = ""
+    keys = "r.k_unit, r.k_period, " + "".join(f"r.k_c{i}, " for i in range(n_clusters))
+    return keys + ", ".join(xs) + f", {resid} AS u", join
+
+
+def _x_names(q: int, intercept: bool) -> list[str]:
+    return [f"x{j}" for j in range(q - 1)] + (["x_one"] if intercept else [])
+
+
+def used_rows_sql(rows: str, valid: str) -> str:
+    return f"SELECT * FROM ({rows}) AS r WHERE {valid}"
+
+
+def cluster_scores_sql(used: str, q: int, demean: bool, intercept: bool, n_clusters: int) -> str:
+    """Meat of the cluster-robust sandwich for each cluster set (one-way: c0; two-way:
+    c0, c1 and their intersection)."""
+    centered, join = _centered(q, demean, intercept, n_clusters)
+    xs = _x_names(q, intercept)
+    scores = ", ".join(f"sum({x} * u) AS g{i}" for i, x in enumerate(xs))
+    outer = ", ".join(f"sum(g{i} * g{j}) AS o{i}_{j}" for i in range(len(xs)) for j in range(i, len(xs)))
+    if n_clusters == 1:
+        sets, key = "GROUPING SETS ((k_c0))", "GROUPING(k_c0) AS gid"
+    else:
+        sets, key = "GROUPING SETS ((k_c0), (k_c1), (k_c0, k_c1))", "GROUPING(k_c0, k_c1) AS gid"
+    return render(
+        "cluster_scores", rows=used, centered=centered, join=join, sets_key=key, sets=sets, scores=scores, outer=outer
+    )
+
+
+def residual_moments_sql(used: str, q: int, demean: bool, intercept: bool, n_clusters: int) -> str:
+    centered, join = _centered(q, demean, intercept, n_clusters)
+    xs = _x_names(q, intercept)
+    sums = [f"sum(u * u * {a} * {b}) AS h{i}_{j}" for i, a in enumerate(xs) for j, b in enumerate(xs) if j >= i]
+    sums.append("sum(u * u) AS rss")
+    return render("residual_moments", rows=used, centered=centered, join=join, sums=", ".join(sums))
+
+
+def indicator_sql(expr: str, level: str) -> str:
+    """1.0 where ``expr`` (as text) equals ``level``, 0.0 elsewhere, NULL where it is NULL."""
+    return f"CAST(CAST(({expr}) AS VARCHAR) = {quote_literal(level)} AS DOUBLE)"
+
+
+def distinct_values_sql(source: str, expr: str, limit: int) -> str:
+    return f"SELECT DISTINCT CAST(({expr}) AS VARCHAR) AS v FROM {source} AS src WHERE ({expr}) IS NOT NULL ORDER BY v LIMIT {int(limit)}"
+
+
+def demeaned_rows_sql(used: str, q: int, n_clusters: int) -> str:
+    """Used rows with every design column minus its unit mean (two passes: the means
+    are a GROUP BY joined back), for data whose unit means dwarf their spread."""
+    keys = "k_unit, k_period" + "".join(f", k_c{i}" for i in range(n_clusters))
+    cols = ", ".join(f"{_z(j)} - avg({_z(j)}) OVER (PARTITION BY k_unit) AS {_z(j)}" for j in range(q))
+    return f"SELECT {keys}, {cols} FROM ({used}) AS r"
+
+
+def probe_sql(rows: str, q: int, limit: int) -> str:
+    """Means of the design columns over the first rows (the shift for accumulation)."""
+    means = ", ".join(f"avg({_z(j)}) FILTER (WHERE isfinite({_z(j)})) AS a{j}" for j in range(q))
+    return f"SELECT {means} FROM (SELECT * FROM ({rows}) AS r LIMIT {int(limit)}) AS head"

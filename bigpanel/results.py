@@ -1,0 +1,144 @@
+"""The frozen result of a fit and its renderings (dict/JSON, polars, terminal table)."""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import asdict, dataclass, field
+
+CAUTIONS = (
+    "Causal reading assumes strict exogeneity: the time-varying error is unrelated to the regressors in every period.",
+    "The unit effect removed by within or first differences must be constant over time.",
+    "Each regressor needs enough variation within units; terms without it cannot be estimated.",
+    "Cluster-robust errors assume independence across clusters and enough clusters (about 40 or more).",
+)
+
+
+@dataclass(frozen=True)
+class Coefficient:
+    term: str
+    estimate: float
+    std_error: float
+    t_stat: float
+    p_value: float
+    ci_lower: float
+    ci_upper: float
+
+
+@dataclass(frozen=True)
+class FitResult:
+    """Everything a fit produced. Convert with :meth:`to_dict`, :meth:`to_json`,
+    :meth:`to_polars`; print with :meth:`table`."""
+
+    estimator: str
+    outcome: str
+    coefficients: tuple[Coefficient, ...]
+    n_obs: int
+    n_units: int
+    n_periods: int | None
+    period_first: object
+    period_last: object
+    effects: tuple[str, ...]
+    variance: dict
+    r_squared: float
+    r_squared_kind: str
+    f_stat: float
+    f_df: tuple[float, float]
+    f_p_value: float
+    rows_dropped: dict
+    terms_dropped: dict
+    singletons_dropped: int
+    absorbed: int
+    condition_number: float
+    accumulation: str
+    source: str
+    where: str | None
+    warnings: tuple[str, ...] = field(default=())
+
+    def to_dict(self) -> dict:
+        out = asdict(self)
+        out["coefficients"] = [asdict(c) for c in self.coefficients]
+        out["cautions"] = list(CAUTIONS)
+        out["period_first"] = _plain(self.period_first)
+        out["period_last"] = _plain(self.period_last)
+        return _finite(out)
+
+    def to_json(self, indent: int | None = 2) -> str:
+        return json.dumps(self.to_dict(), indent=indent)
+
+    def to_polars(self):
+        """One row per coefficient."""
+        import polars as pl
+
+        return pl.DataFrame([asdict(c) for c in self.coefficients])
+
+    def coef(self, term: str) -> Coefficient:
+        for c in self.coefficients:
+            if c.term == term:
+                return c
+        raise KeyError(term)
+
+    def table(self) -> str:
+        """A plain-text report of our own design."""
+        v = self.variance
+        title = {"pooled": "Pooled least squares", "within": "Within (fixed effects)",
+                 "first-difference": "First differences"}[self.estimator]
+        lines = [f"{title}: {self.outcome}", f"  source {self.source}" + (f"  where {self.where}" if self.where else "")]
+        eff = f"  effects: {', '.join(self.effects)}" if self.effects else ""
+        lines.append(f"  {self.n_obs:,} rows used, {self.n_units:,} units" + (f", {self.n_periods} periods" if self.n_periods else "") + eff)
+        clusters = v.get("n_clusters")
+        vline = f"  variance: {v['type']}, t with {v['df']:g} df"
+        if clusters:
+            vline += f", clusters {clusters if isinstance(clusters, int) else ' / '.join(map(str, clusters))}"
+        lines.append(vline)
+        lines.append("")
+        width = max([len(c.term) for c in self.coefficients] + [4])
+        head = f"  {'term':<{width}}  {'estimate':>12}  {'std.err':>11}  {'t':>8}  {'p':>7}  {'95% interval':>27}"
+        lines += [head, "  " + "-" * (len(head) - 2)]
+        for c in self.coefficients:
+            lines.append(
+                f"  {c.term:<{width}}  {_num(c.estimate):>12}  {_num(c.std_error):>11}  {c.t_stat:>8.2f}  "
+                f"{_p(c.p_value):>7}  [{_num(c.ci_lower):>12}, {_num(c.ci_upper):>12}]"
+            )
+        lines.append("")
+        lines.append(f"  R^2 ({self.r_squared_kind}) {self.r_squared:.4f}   Wald F({self.f_df[0]:g}, {self.f_df[1]:g}) = {self.f_stat:.3f}, p {_p(self.f_p_value)}")
+        dropped = {k: n for k, n in self.rows_dropped.items() if n}
+        if dropped or self.singletons_dropped:
+            parts = [f"{n:,} {k.replace('_', ' ')}" for k, n in dropped.items()]
+            if self.singletons_dropped:
+                parts.append(f"{self.singletons_dropped:,} singleton units")
+            lines.append("  rows left out: " + "; ".join(parts))
+        for term, why in self.terms_dropped.items():
+            lines.append(f"  term left out: {term} ({why})")
+        for w in self.warnings:
+            lines.append(f"  note: {w}")
+        return "\n".join(lines)
+
+
+def _num(x: float) -> str:
+    if not math.isfinite(x):
+        return "nan"
+    return f"{x:.6g}" if abs(x) >= 1e-4 or x == 0 else f"{x:.4e}"
+
+
+def _p(p: float) -> str:
+    if not math.isfinite(p):
+        return "nan"
+    return "<0.0001" if p < 1e-4 else f"{p:.4f}"
+
+
+def _plain(v: object) -> object:
+    if v is None or isinstance(v, (int, float, str, bool)):
+        return v
+    return str(v)
+
+
+def _finite(obj):
+    """JSON has no NaN: turn non-finite floats into None, tuples into lists."""
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: _finite(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite(v) for v in obj]
+    return obj
