@@ -31,7 +31,8 @@ def generate(out_dir, n_units, n_periods, *, seed=Options.seed, unbalanced=Optio
     Parameters
     ----------
     out_dir : str or Path
-        Folder to create. It is written under a temporary name and renamed when complete.
+        Folder to create (an existing empty folder is fine). It is written under a
+        temporary name and renamed when complete.
     n_units, n_periods : int
         Depots and months before rows are removed.
     seed : int, default 0
@@ -49,7 +50,7 @@ def generate(out_dir, n_units, n_periods, *, seed=Options.seed, unbalanced=Optio
     row_group_size : int, default 100_000
     compression : {"snappy", "zstd", "none"}, default "snappy"
     overwrite : bool, default False
-        Replace `out_dir` if it exists.
+        Replace `out_dir` if it holds a panel made by this generator (one with truth.json).
 
     Returns
     -------
@@ -59,14 +60,13 @@ def generate(out_dir, n_units, n_periods, *, seed=Options.seed, unbalanced=Optio
     Raises
     ------
     DatagenError
-        For a bad option, or when `out_dir` exists and `overwrite` is false.
+        For a bad option, or when `out_dir` is not empty and either `overwrite` is false
+        or it holds no truth.json.
     """
     options = Options(n_units, n_periods, seed, unbalanced, gaps, order, rows_per_file,
                       row_group_size, compression)
     out = Path(out_dir)
-    if out.exists() and not overwrite:
-        raise DatagenError(f"Output folder {out} already exists. Pass overwrite=True (--overwrite) "
-                           "or choose another folder.")
+    _check_replaceable(out, overwrite)
     with _staging(out) as folder:
         writer = PartWriter(folder, rows_per_file, row_group_size, compression)
         write = _write_by_unit if order == "unit" else _write_by_period
@@ -93,17 +93,13 @@ def ensure(out_dir, **options):
     Raises
     ------
     DatagenError
-        For a bad option, or when `out_dir` exists but holds no truth.json (it is not
-        a generated panel and is left alone).
+        For a bad option, or when `out_dir` is not empty and holds no truth.json (it is
+        not a generated panel and is left alone).
     """
     wanted = Options(**options).as_dict()
     out = Path(out_dir)
-    if out.exists():
-        try:
-            truth = load_truth(out)
-        except FileNotFoundError:
-            raise DatagenError(f"Folder {out} exists but has no {TRUTH_FILE}, so it is not a generated "
-                               "panel. Remove it or choose another folder.") from None
+    if (out / TRUTH_FILE).is_file():
+        truth = load_truth(out)
         if truth["generator_version"] == GENERATOR_VERSION and truth["options"] == wanted:
             return out
     return generate(out, overwrite=True, **options)
@@ -112,6 +108,22 @@ def ensure(out_dir, **options):
 def load_truth(out_dir):
     """Return the parsed truth.json of a generated panel folder."""
     return json.loads((Path(out_dir) / TRUTH_FILE).read_text())
+
+
+def _check_replaceable(out, overwrite):
+    """Refuse to replace a file, a foreign folder, or any non-empty folder without `overwrite`."""
+    if not out.exists() and not out.is_symlink():
+        return
+    if not out.is_dir():
+        raise DatagenError(f"Output path {out} is a file, not a folder. Choose another path.")
+    if not any(out.iterdir()):
+        return
+    if not (out / TRUTH_FILE).is_file():
+        raise DatagenError(f"Output folder {out} is not empty and has no {TRUTH_FILE}, so it is not a "
+                           "generated panel and is left alone. Remove it or choose another folder.")
+    if not overwrite:
+        raise DatagenError(f"Output folder {out} already exists. Pass overwrite=True (--overwrite) "
+                           "or choose another folder.")
 
 
 @contextlib.contextmanager

@@ -1,5 +1,6 @@
 """Tests of the synthetic panel generator (datagen), on small panels."""
 
+from functools import partial
 import json
 import subprocess
 import sys
@@ -261,12 +262,22 @@ def test_ensure_reuses_a_matching_folder_and_rebuilds_otherwise(tmp_path, monkey
     assert datagen.load_truth(folder)["options"]["gaps"] == 0.1
 
 
-def test_ensure_leaves_a_foreign_folder_alone(tmp_path):
+@pytest.mark.parametrize("make", [datagen.ensure, partial(datagen.generate, overwrite=True)])
+def test_a_foreign_folder_is_left_alone(tmp_path, make):
     (tmp_path / "mine").mkdir()
     (tmp_path / "mine" / "notes.txt").write_text("keep")
-    with pytest.raises(datagen.DatagenError, match="has no truth.json"):
-        datagen.ensure(tmp_path / "mine", **SMALL)
+    with pytest.raises(datagen.DatagenError, match="is not empty and has no truth.json"):
+        make(tmp_path / "mine", **SMALL)
     assert (tmp_path / "mine" / "notes.txt").read_text() == "keep"
+    (tmp_path / "file").write_text("keep")
+    with pytest.raises(datagen.DatagenError, match="is a file, not a folder"):
+        make(tmp_path / "file", **SMALL)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["file", "mine"]
+
+
+def test_an_empty_folder_is_filled(tmp_path):
+    (tmp_path / "p").mkdir()
+    assert datagen.load_truth(datagen.generate(tmp_path / "p", **SMALL))["n_rows"] == 300 * 12
 
 
 @pytest.mark.parametrize("options, message", [
@@ -309,8 +320,17 @@ def test_cli_bad_options_exit_2_with_one_sentence(tmp_path, capsys, argv, messag
 
 
 def test_cli_module_reports_without_traceback(tmp_path):
-    done = subprocess.run([sys.executable, "-m", "datagen", str(tmp_path), "--units", "5", "--periods", "3"],
+    folder = datagen.generate(tmp_path / "p", n_units=5, n_periods=3)
+    done = subprocess.run([sys.executable, "-m", "datagen", str(folder), "--units", "5", "--periods", "3"],
                           capture_output=True, text=True)
     assert done.returncode == 2
-    assert done.stderr == (f"Output folder {tmp_path} already exists. Pass overwrite=True (--overwrite) "
+    assert done.stderr == (f"Output folder {folder} already exists. Pass overwrite=True (--overwrite) "
                            "or choose another folder.\n")
+
+
+def test_cli_write_failure_exits_1_with_one_sentence(tmp_path, capsys):
+    (tmp_path / "file").write_text("keep")
+    assert main([str(tmp_path / "file" / "p"), "--units", "5", "--periods", "3"]) == 1
+    err = capsys.readouterr().err
+    assert err.startswith(f"Could not write {tmp_path / 'file' / 'p'}: ") and err.count("\n") == 1
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["file"]
