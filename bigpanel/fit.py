@@ -34,12 +34,13 @@ from .solve import solve_normal
 from .source import Engine, Session, Source, is_numeric, open_source
 from .spec import FitSpec, Term
 
-PROBE_ROWS = 4096
+PROBE_ROWS = 20_000  # first rows used for the shifts and the pilot coefficients
+MAX_EXPANDED = 8  # largest model whose unit-cluster meat is summed in the first pass (k^4/4 sums)
+EXPANSION_LIMIT = 1e6  # largest-term/result ratio above which the expanded meat is recomputed
 MAX_LEVELS = 500
 CANCELLATION_LIMIT = 1e6  # raw/transformed sum of squares above which one pass loses > 6 digits
 NO_VARIATION = 1e-11  # transformed/raw sum of squares below which a column is constant
 FEW_CLUSTERS = 40  # common practice: below ~40 clusters CR1 is unreliable
-SLICE_UNITS = 50_000  # per-unit rows folded at a time (bounds Python memory)
 
 
 def fit(
@@ -109,20 +110,18 @@ class _Design:
 
 @dataclass
 class _Pass:
-    """What one pass over the per-unit sums accumulated."""
+    """What one pass over the rows accumulated."""
 
-    total: np.ndarray
-    raw_diag: np.ndarray
-    n_obs: int = 0
-    n_units: int = 0
+    total: np.ndarray  # transformed cross-product over (regressors, [constant], outcome)
+    raw_diag: np.ndarray  # the same diagonal before demeaning (for the digit-loss check)
+    n_obs: int
+    n_units: int
     singletons: int = 0
     singleton_rows: int = 0
     t_min: object = None
     t_max: object = None
-    meat: moments.ClusterMeat | None = None
-    not_nested: bool = False
-    n_clusters: int = 0
-    cluster_keys: set = field(default_factory=set)
+    expansion: list | None = None  # per-chunk sums for the unit-cluster meat (moments.py)
+    pilot: np.ndarray | None = None
 
 
 class _Fit:
@@ -210,11 +209,12 @@ class _Fit:
         return _Design(labels, columns, is_effect, frozenset(in_levels))
 
     # ------------------------------------------------------------------ SQL
-    def _rows(self, design: _Design, files=None) -> str:
+    def _rows(self, design: _Design, files=None, head: bool = False) -> str:
         spec = self.spec
-        rows = sqlbuild.design_rows_sql(
-            self.s.source.filtered(files), spec.unit, spec.period, list(spec.cluster), design.columns, spec.period_step
-        )
+        source = self.s.source.filtered(files)
+        if head:
+            source = sqlbuild.head_sql(source, PROBE_ROWS)
+        rows = sqlbuild.design_rows_sql(source, spec.unit, spec.period, list(spec.cluster), design.columns, spec.period_step)
         if spec.estimator == "first-difference":
             rows = sqlbuild.differenced_rows_sql(rows, len(spec.cluster), len(design.columns), design.in_levels)
         return rows
@@ -227,7 +227,10 @@ class _Fit:
         if self.spec.estimator != "within" and not self.spec.intercept:
             return np.zeros(q)
         zero = {f"s{j}": 0.0 for j in range(q)}
-        sql = sqlbuild.probe_sql(self._rows(design), q, PROBE_ROWS)
+        spec = self.spec
+        head = sqlbuild.head_sql(self.s.source.filtered(), PROBE_ROWS)
+        rows = sqlbuild.design_rows_sql(head, spec.unit, spec.period, list(spec.cluster), design.columns, spec.period_step)
+        sql = sqlbuild.probe_sql(rows, q)  # levels, not differences: only the constant's column moves
         row = self.s.run(sql, zero).to_pylist()[0]
         shifts = np.array([row[f"a{j}"] if row[f"a{j}"] is not None else 0.0 for j in range(q)], dtype=float)
         return np.where(np.isfinite(shifts), shifts, 0.0)
@@ -249,67 +252,68 @@ class _Fit:
             return "unit"
         return "nested"
 
-    def _accumulate(self, design: _Design, params: dict, chunks, demeaned: bool, pilot: np.ndarray | None) -> _Pass:
+    def _accumulate(self, design: _Design, params: dict, chunks, demeaned: bool, pilot: np.ndarray | None,
+                    head: bool = False) -> _Pass:
         q = len(design.columns)
         mode = self._mode()
-        dim = q + (1 if mode == "intercept" else 0)
-        k = dim - 1
-        plan = self._cluster_plan()
-        acc = _Pass(total=np.zeros((dim, dim)), raw_diag=np.zeros(dim))
-        if plan == "unit":
-            acc.meat = moments.ClusterMeat(k=k, pilot=pilot)
-        elif plan == "nested":
-            acc.meat = moments.ClusterMeat(k=k, by_unit=False)
         n_cl = len(self.spec.cluster)
+        total = moments.sum_function(chunks)
 
-        def make_sql(files):
-            used = sqlbuild.used_rows_sql(self._rows(design, files), self._valid(q))
-            if demeaned:
-                used = sqlbuild.demeaned_rows_sql(used, q, n_cl)
-            return sqlbuild.unit_moments_sql(used, q, n_cl, "true")
+        def used(files):
+            rows = sqlbuild.used_rows_sql(self._rows(design, files, head), self._valid(q))
+            return sqlbuild.demeaned_rows_sql(rows, q, n_cl) if demeaned else rows
 
-        def fold(table):
-            for start in range(0, table.num_rows, SLICE_UNITS):
-                self._fold_slice(acc, table.slice(start, SLICE_UNITS), q, mode, plan)
+        if mode != "within" and pilot is None:
+            results = moments.run_chunks(self.s, chunks, lambda f: sqlbuild.pooled_moments_sql(used(f), q, "true", total), params)
+            rows = [t.to_pylist()[0] for t in results]
+            mat, raw, n = moments.pooled_matrix(rows, q, mode == "intercept")
+            lo = [r["t_min"] for r in rows if r["t_min"] is not None]
+            hi = [r["t_max"] for r in rows if r["t_max"] is not None]
+            return _Pass(mat, raw, n, 0, t_min=min(lo) if lo else None, t_max=max(hi) if hi else None)
 
-        moments.run_chunks(self.s, chunks, make_sql, params, fold)
+        expand = pilot is not None
+        p = dict(params)
+        if expand:
+            p.update({f"q{j}": float(v) for j, v in enumerate(pilot)})
+
+        def make(files):
+            units = sqlbuild.unit_moments_sql(used(files), q, 0, "true", total)
+            return sqlbuild.unit_pass_sql(units, q, mode, expand, total)
+
+        rows = [t.to_pylist()[0] for t in moments.run_chunks(self.s, chunks, make, p)]
+        dim = q + (1 if mode == "intercept" else 0)
+        acc = _Pass(total=np.zeros((dim, dim)), raw_diag=np.zeros(q), n_obs=0, n_units=0)
+        for row in rows:
+            acc.total += moments.symmetric(row, "w", dim)
+            acc.raw_diag += [row[f"r{j}"] or 0.0 for j in range(q)]
+            acc.n_obs += int(row["n_obs"])
+            acc.n_units += int(row["n_units"])
+            acc.singletons += int(row["singletons"])
+            acc.singleton_rows += int(row["singleton_rows"])
+            if row["t_min"] is not None:
+                acc.t_min = row["t_min"] if acc.t_min is None else min(acc.t_min, row["t_min"])
+                acc.t_max = row["t_max"] if acc.t_max is None else max(acc.t_max, row["t_max"])
+        if mode == "intercept":
+            acc.raw_diag = np.r_[acc.raw_diag[:-1], acc.n_obs, acc.raw_diag[-1]]
+        if expand:
+            acc.expansion = [{key: r[key] for key in r if key.startswith(("rr", "rb", "bb"))} for r in rows]
+            acc.pilot = pilot
         return acc
 
-    def _fold_slice(self, acc: _Pass, table, q: int, mode: str, plan: str) -> None:
-        if table.num_rows == 0:
-            return
-        n, g = moments.unit_tensor(table, q)
-        if mode == "within":
-            keep = n > 1
-            acc.singletons += int(np.sum(~keep))
-            acc.singleton_rows += int(np.sum(n[~keep]))
-        else:
-            keep = n > 0
-        n, g = n[keep], g[keep]
-        idx = np.flatnonzero(keep)
-        t_min = table.column("t_min").take(idx).to_pylist()
-        t_max = table.column("t_max").take(idx).to_pylist()
-        if t_min:
-            lo, hi = min(t_min), max(t_max)
-            acc.t_min = lo if acc.t_min is None else min(acc.t_min, lo)
-            acc.t_max = hi if acc.t_max is None else max(acc.t_max, hi)
-        a = moments.transform(g, mode)
-        acc.total += a.sum(axis=0)
-        raw = g[:, 1:, 1:] if mode != "intercept" else moments.transform(g, "intercept")
-        acc.raw_diag += np.einsum("ijj->j", raw)
-        acc.n_obs += int(n.sum())
-        acc.n_units += len(n)
-        if plan == "unit":
-            acc.meat.add(a)
-            acc.n_clusters += len(n)
-        elif plan == "nested":
-            c0 = table.column("c0").take(idx)
-            c0_max = table.column("c0_max").take(idx)
-            if c0.to_pylist() != c0_max.to_pylist():
-                acc.not_nested = True
-                return
-            keys = np.asarray(c0.to_pylist(), dtype=object)
-            acc.meat.add(a, keys=keys.astype(str))
+    def _pilot(self, design: _Design, params: dict) -> np.ndarray | None:
+        """Coefficients from the first rows, the centre of the one-pass meat expansion;
+        None when the model is too large for it or clusters are not units."""
+        if self._cluster_plan() != "unit":
+            return None
+        q = len(design.columns)
+        k = q - 1 + (1 if self._mode() == "intercept" else 0)
+        if k > MAX_EXPANDED:
+            return None
+        acc = self._accumulate(design, params, [None], demeaned=False, pilot=np.zeros(k), head=True)
+        h, g = acc.total[:k, :k], acc.total[:k, k]
+        if not np.isfinite(h).all() or acc.n_obs == 0:
+            return np.zeros(k)
+        return np.linalg.lstsq(h, g, rcond=None)[0]
 
     # ------------------------------------------------------------------ score pass
     def _sql_meats(self, design: _Design, params: dict, coef: np.ndarray, kept_intercept: bool):
@@ -356,13 +360,13 @@ class _Fit:
         shifts = self._shifts(design)
         params = {f"s{j}": float(shifts[j]) for j in range(q)}
         chunks = moments.plan_chunks(s, spec.unit)
-        acc = self._accumulate(design, params, chunks, demeaned=False, pilot=None)
+        pilot = self._pilot(design, params)
+        acc = self._accumulate(design, params, chunks, demeaned=False, pilot=pilot)
         if acc.n_obs == 0:
             raise EstimationError(self._empty_message())
         accumulation = "one pass, shifted per-unit sums"
         ratio = self._cancellation(acc)
         if spec.estimator == "within" and ratio > CANCELLATION_LIMIT:
-            pilot = acc.meat.pilot if acc.meat is not None and acc.meat.by_unit else None
             acc = self._accumulate(design, params, chunks, demeaned=True, pilot=pilot)
             accumulation = "two passes, unit means subtracted in SQL"
         return self._finish(design, shifts, params, acc, accumulation)
@@ -519,11 +523,18 @@ class _Fit:
             meats, _ = self._sql_meats(design, params, sol.coef, kept_intercept)
             return variance.hc1(inverse, meats[0], n_obs, n_kept, absorbed)
         plan = self._cluster_plan()
-        if plan in ("unit", "nested") and not acc.not_nested:
-            meat = acc.meat.meat(sol.coef)
-            g = acc.n_clusters if plan == "unit" else len(acc.meat.groups)
-            # unit effects are nested in unit (or coarser nested) clusters: not counted in K'
-            return variance.cluster(inverse, meat, g, n_obs, n_kept)
+        if plan == "unit" and acc.expansion is not None:
+            k = len(sol.coef)
+            meat = np.zeros((k, k))
+            worst = 0.0
+            for row in acc.expansion:
+                part, ratio = moments.expanded_meat(row, k, acc.pilot, sol.coef)
+                meat += part
+                worst = max(worst, ratio)
+            if worst < EXPANSION_LIMIT:
+                # unit effects are nested in unit clusters: not counted in K'
+                return variance.cluster(inverse, meat, acc.n_units, n_obs, n_kept)
+            self.notes.append("the one-pass cluster meat cancelled too many digits; scores were recomputed in a second pass")
         meats, counts = self._sql_meats(design, params, sol.coef, kept_intercept)
         nested = [c == spec.unit for c in spec.cluster]
         if len(spec.cluster) == 1:

@@ -1,15 +1,28 @@
-"""Accumulating cross-products and cluster scores from per-unit sums, chunk by chunk.
+"""Accumulating cross-products and cluster scores, chunk by chunk, as SQL aggregates.
 
 DuckDB computes, for each unit i, n_i, s_i = sum z and S_i = sum z z' over the design
-columns z = (x_1..x_k, y) (shifted, see :mod:`bigpanel.fit`). Python turns each chunk's
-per-unit sums into the transformed cross-product A_i (within: S_i - s_i s_i'/n_i;
-pooled and differenced: the sums with a constant column) and adds them up. Nothing
-per row reaches Python; per-unit arrays live only while their chunk is folded in.
+columns z = (x_1..x_k, y) (shifted, see :mod:`bigpanel.fit`), then in the same query
+the unit's transformed cross-product A_i (within: S_i - s_i s_i'/n_i; pooled and
+differenced: the sums with a constant column) and sums over units. Only one row per
+chunk reaches Python.
+
+Unit-cluster meat in the same pass. With B_i, a_i the regressor block and outcome
+column of A_i, unit i's score at b is a_i - B_i b. Around a pilot q (an estimate from
+the first rows), r_i = a_i - B_i q and d = b - q:
+
+    sum_i s_i s_i' = sum r r' - C - C' + Q,  C[j,m] = sum_l (sum_i r_ij B_i[m,l]) d_l,
+    Q[j,m] = sum_{l,n} (sum_i B_i[j,l] B_i[m,n]) d_l d_n,
+
+which is exact for any q; a q near b keeps the terms from cancelling. The pass sums
+r r', r (x) B and B (x) B (k^4/4 sums), so it serves only small k; larger models get
+their scores from a second pass over the rows (sqlbuild.cluster_scores_sql).
 
 Chunks: when a Parquet source's files hold disjoint ranges of units (an extract
 sorted by unit), each group of files is its own query, so each GROUP BY hashes few
-units and stays in cache; the chunks run in parallel on cursors with one thread each.
-Otherwise the whole source is one chunk.
+units and stays in cache; the chunks run in parallel on cursors with one thread each,
+which also makes every sum's order, and so its last digits, the same on every run.
+Otherwise the whole source is one chunk on all threads, and sums are compensated
+(``fsum``) so that their result does not depend on the threads' timing.
 """
 
 from __future__ import annotations
@@ -17,7 +30,6 @@ from __future__ import annotations
 import os
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, field
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -30,8 +42,8 @@ CHUNK_ROWS = 1_500_000  # rows per chunk query: small enough for a cache-friendl
 def plan_chunks(session: Session, unit: str) -> list[tuple[str, ...] | None]:
     """Groups of Parquet files whose unit ranges do not overlap, or ``[None]`` (one chunk).
 
-    Uses only the files' footer statistics. A unit whose rows span two files puts
-    those files in the same group.
+    Uses only the files' footer statistics. Files whose unit ranges overlap go in the
+    same group, so every unit lies wholly inside one chunk.
     """
     src = session.source
     if src.kind != "parquet" or len(src.files) < 2:
@@ -43,8 +55,6 @@ def plan_chunks(session: Session, unit: str) -> list[tuple[str, ...] | None]:
     if ranges is None:
         return [None]
     stats = [(r, f) for r, f in zip(ranges, src.files) if r is not None]
-    if not stats:
-        return [None]
     try:
         stats.sort(key=lambda item: item[0][0])
     except TypeError:
@@ -66,18 +76,20 @@ def plan_chunks(session: Session, unit: str) -> list[tuple[str, ...] | None]:
     return [tuple(g) for g in groups]
 
 
+def sum_function(chunks: Sequence) -> str:
+    """``sum`` when every query runs on one thread (chunked), else ``fsum``."""
+    return "sum" if len(chunks) > 1 else "fsum"
+
+
 def run_chunks(
     session: Session,
     chunks: Sequence[tuple[str, ...] | None],
     make_sql: Callable[[tuple[str, ...] | None], str],
     params: dict,
-    fold: Callable[[object], None],
-) -> None:
-    """Run one query per chunk and pass each Arrow result to ``fold``, in chunk order,
-    on the calling thread (so folding is deterministic)."""
+) -> list:
+    """Run one query per chunk; return their Arrow results in chunk order."""
     if len(chunks) == 1:
-        fold(session.run(make_sql(chunks[0]), params))
-        return
+        return [session.run(make_sql(chunks[0]), params)]
     threads = session.source.engine.threads or os.cpu_count() or 1
 
     def one(chunk):
@@ -88,101 +100,67 @@ def run_chunks(
             cur.close()
 
     with ThreadPoolExecutor(max_workers=max(1, int(threads))) as pool:
-        for table in pool.map(one, chunks):
-            fold(table)
+        return list(pool.map(one, chunks))
 
 
-def unit_tensor(table, q: int) -> tuple[np.ndarray, np.ndarray]:
-    """Per-unit counts (m,) and moment matrices G (m, q+1, q+1) over (1, z_0..z_{q-1})."""
-    n = table.column("n").to_numpy().astype(np.float64)
-    m = len(n)
-    g = np.empty((m, q + 1, q + 1))
-    g[:, 0, 0] = n
-    for j in range(q):
-        s = table.column(f"s{j}").to_numpy()
-        g[:, 0, j + 1] = g[:, j + 1, 0] = s
-        for l in range(j, q):
-            p = table.column(f"p{j}_{l}").to_numpy()
-            g[:, j + 1, l + 1] = g[:, l + 1, j + 1] = p
-    return n, g
+def symmetric(row: dict, prefix: str, dim: int) -> np.ndarray:
+    """A symmetric matrix from upper-triangle entries named ``{prefix}{j}_{l}``."""
+    out = np.zeros((dim, dim))
+    for j in range(dim):
+        for l in range(j, dim):
+            out[j, l] = out[l, j] = row[f"{prefix}{j}_{l}"] or 0.0
+    return out
 
 
-def transform(g: np.ndarray, mode: str) -> np.ndarray:
-    """Per-unit transformed cross-products.
-
-    mode ``within``: S - s s'/n (unit-demeaned); ``intercept``: the full matrix with the
-    constant as the last regressor column; ``plain``: S without the constant.
-    Column order of the result: regressors first, then (for ``intercept``) the constant,
-    then the outcome last.
-    """
-    n = g[:, 0, 0]
-    inner = g[:, 1:, 1:]
-    if mode == "within":
-        s = g[:, 0, 1:]
-        return inner - s[:, :, None] * s[:, None, :] / n[:, None, None]
-    if mode == "plain":
-        return inner.copy()
-    q = inner.shape[1]
-    order = list(range(1, q)) + [0, q]  # x_1..x_k, constant, y (indices into g)
-    return g[:, order][:, :, order]
+def pairs(k: int) -> list[tuple[int, int]]:
+    """Upper-triangle index pairs (a <= b) in the order unit_pass_sql names them."""
+    return [(a, b) for a in range(k) for b in range(a, k)]
 
 
-@dataclass
-class ClusterMeat:
-    """Sum over clusters of s_g s_g', where s_g = a_g - B_g b comes from per-unit sums.
+def expanded_meat(row: dict, k: int, pilot: np.ndarray, coef: np.ndarray) -> tuple[np.ndarray, float]:
+    """The unit-cluster meat at ``coef`` from the expansion sums around ``pilot``, and
+    the ratio of the largest term to the result (a measure of digits cancelled)."""
+    rr = symmetric(row, "rr", k)
+    idx = pairs(k)
+    rb = np.zeros((k, k, k))
+    for j in range(k):
+        for (a, b) in idx:
+            rb[j, a, b] = rb[j, b, a] = row[f"rb{j}_{a}_{b}"] or 0.0
+    bb = np.zeros((k, k, k, k))
+    for u, (a, b) in enumerate(idx):
+        for v in range(u, len(idx)):
+            c, e = idx[v]
+            val = row[f"bb{u}_{v}"] or 0.0
+            for x, y in {(a, b), (b, a)}:
+                for z, w in {(c, e), (e, c)}:
+                    bb[x, y, z, w] = bb[z, w, x, y] = val
+    d = coef - pilot
+    cross = np.einsum("jml,l->jm", rb, d)
+    quad = np.einsum("jlmn,l,n->jm", bb, d, d)
+    meat = rr - cross - cross.T + quad
+    meat = (meat + meat.T) / 2
+    scale = max(np.abs(np.diag(rr)).max(), np.abs(np.diag(quad)).max(), 1e-300)
+    size = np.abs(np.diag(meat)).max()
+    return meat, float(scale / size) if size > 0 else float("inf")
 
-    Clusters are units (each complete in one chunk) or coarser groups that contain
-    whole units. Unit clusters are folded at once around a pilot coefficient b0, with
-    sums of r r', r (x) vec(B) and vec(B) vec(B)' (r = a - B b0), so that the meat for
-    the final b is exact without keeping per-unit data. Coarser clusters keep one
-    (k+1) x (k+1) matrix per cluster.
-    """
 
-    k: int
-    pilot: np.ndarray | None = None
-    by_unit: bool = True
-    rr: np.ndarray = field(init=False)
-    rb: np.ndarray = field(init=False)
-    bb: np.ndarray = field(init=False)
-    groups: dict = field(default_factory=dict)
-
-    def __post_init__(self) -> None:
-        k = self.k
-        self.rr = np.zeros((k, k))
-        self.rb = np.zeros((k, k * k))
-        self.bb = np.zeros((k * k, k * k))
-
-    def add(self, a_tensor: np.ndarray, keys: np.ndarray | None = None) -> None:
-        """Fold per-unit transformed cross-products (m, k+1, k+1), outcome last."""
-        k = self.k
-        if not self.by_unit:
-            uniq, inv = np.unique(keys, return_inverse=True)
-            sums = np.zeros((len(uniq), k + 1, k + 1))
-            np.add.at(sums, inv, a_tensor)
-            for key, mat in zip(uniq.tolist(), sums):
-                prev = self.groups.get(key)
-                self.groups[key] = mat if prev is None else prev + mat
-            return
-        b = a_tensor[:, :k, :k]
-        a = a_tensor[:, :k, k]
-        if self.pilot is None:  # any b0 is exact; one near b keeps the expansion from cancelling
-            self.pilot = np.linalg.lstsq(b.sum(axis=0), a.sum(axis=0), rcond=None)[0]
-        r = a - np.einsum("ijl,l->ij", b, self.pilot)
-        flat = b.reshape(len(b), k * k)
-        self.rr += r.T @ r
-        self.rb += r.T @ flat
-        self.bb += flat.T @ flat
-
-    def meat(self, coef: np.ndarray) -> np.ndarray:
-        k = self.k
-        if not self.by_unit:
-            out = np.zeros((k, k))
-            for mat in self.groups.values():
-                s = mat[:k, k] - mat[:k, :k] @ coef
-                out += np.outer(s, s)
-            return out
-        d = coef - self.pilot
-        cross = np.einsum("ajl,l->aj", self.rb.reshape(k, k, k), d)
-        quad = np.einsum("jlmn,l,n->jm", self.bb.reshape(k, k, k, k), d, d)
-        out = self.rr - cross - cross.T + quad
-        return (out + out.T) / 2
+def pooled_matrix(rows: list[dict], q: int, intercept: bool) -> tuple[np.ndarray, np.ndarray, int]:
+    """Add chunk sums (n, s_j, p_j_l) in chunk order; return the cross-product over
+    (regressors, [constant], outcome), the raw diagonal, and the row count."""
+    n = sum(int(r["n"] or 0) for r in rows)
+    s = np.zeros(q)
+    p = np.zeros((q, q))
+    for r in rows:
+        s += [r[f"s{j}"] or 0.0 for j in range(q)]
+        p += symmetric(r, "p", q)
+    if not intercept:
+        return p, np.diag(p).copy(), n
+    out = np.zeros((q + 1, q + 1))
+    x = slice(0, q - 1)
+    out[x, x] = p[:-1, :-1]
+    out[x, q] = out[q, x] = p[:-1, -1]
+    out[q, q] = p[-1, -1]
+    out[x, q - 1] = out[q - 1, x] = s[:-1]
+    out[q - 1, q] = out[q, q - 1] = s[-1]
+    out[q - 1, q - 1] = n
+    return out, np.diag(out).copy(), n

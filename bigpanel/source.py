@@ -246,9 +246,24 @@ class Session:
         target = con or self.con
         try:
             rel = target.sql(sql, params=params) if params else target.sql(sql)
-            return rel.to_arrow_table()
+            return None if rel is None else rel.to_arrow_table()
         except duckdb.Error as exc:
             raise self._explain(exc) from None
+
+    def execute(self, sql: str, params: dict | None = None) -> None:
+        """Run a statement that returns nothing of interest (CREATE, INSERT)."""
+        try:
+            self.con.execute(sql, params or {})
+        except duckdb.Error as exc:
+            raise self._explain(exc) from None
+
+    def describe(self, sql: str, params: dict | None = None) -> list[tuple[str, str]]:
+        """(name, type) of a query's result columns, binding it without running it."""
+        try:
+            rows = self.con.execute(f"DESCRIBE {sql}", params or {}).fetchall()
+        except duckdb.Error as exc:
+            raise self._explain(exc) from None
+        return [(r[0], r[1]) for r in rows]
 
     def cursor(self, threads: int | None = None) -> duckdb.DuckDBPyConnection:
         cur = self.con.cursor()

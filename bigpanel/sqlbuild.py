@@ -201,14 +201,79 @@ def valid_predicate(q: int, differenced: bool, step: int) -> str:
     return " AND ".join(terms)
 
 
-def unit_moments_sql(rows: str, q: int, n_clusters: int, valid: str) -> str:
-    """Per-unit n, sums s_j and products p_j_l (j <= l) of the q design columns."""
+def _moment_aggregates(q: int, total: str) -> list[str]:
     aggs = ["count(*) AS n", "min(k_period) AS t_min", "max(k_period) AS t_max"]
-    aggs += [f"sum({_z(j)}) AS s{j}" for j in range(q)]
-    aggs += [f"sum({_z(j)} * {_z(l)}) AS p{j}_{l}" for j in range(q) for l in range(j, q)]
+    aggs += [f"{total}({_z(j)}) AS s{j}" for j in range(q)]
+    aggs += [f"{total}({_z(j)} * {_z(l)}) AS p{j}_{l}" for j in range(q) for l in range(j, q)]
+    return aggs
+
+
+def unit_moments_sql(rows: str, q: int, n_clusters: int, valid: str, total: str = "sum") -> str:
+    """Per-unit n, sums s_j and products p_j_l (j <= l) of the q design columns.
+
+    ``total`` is ``sum``, or ``fsum`` (compensated, order-independent) when the query
+    runs on several threads and the result must not depend on their timing.
+    """
+    aggs = _moment_aggregates(q, total)
     for i in range(n_clusters):
         aggs += [f"min(k_c{i}) AS c{i}", f"max(k_c{i}) AS c{i}_max"]
     return render("unit_moments", rows=f"({rows})", aggregates=", ".join(aggs), valid=valid)
+
+
+def pooled_moments_sql(rows: str, q: int, valid: str, total: str = "sum") -> str:
+    return render("pooled_moments", rows=f"({rows})", aggregates=", ".join(_moment_aggregates(q, total)), valid=valid)
+
+
+def _p(j: int, l: int) -> str:
+    return f"p{min(j, l)}_{max(j, l)}"
+
+
+def _w(j: int, l: int) -> str:
+    return f"w{min(j, l)}_{max(j, l)}"
+
+
+def transformed_entry(j: int, l: int, q: int, mode: str) -> str:
+    """SQL for entry (j, l) of a unit's transformed cross-product over (regressors,
+    [constant], outcome), from its moments n, s_*, p_*_* (see moments.py)."""
+    if mode == "within":
+        return f"({_p(j, l)} - s{j} * s{l} / n)"
+    if mode == "plain":
+        return _p(j, l)
+    const = q - 1  # index of the constant in the intercept layout; the outcome follows it
+
+    def col(i: int) -> int | None:  # design column behind layout index i (None: constant)
+        return None if i == const else (q - 1 if i == q else i)
+
+    a, b = col(j), col(l)
+    if a is None and b is None:
+        return "n"
+    if a is None or b is None:
+        return f"s{a if b is None else b}"
+    return _p(a, b)
+
+
+def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum") -> str:
+    """Sums over units of the transformed cross-products and, with ``expand``, of the
+    products that give the unit-cluster meat for any coefficient vector (moments.py)."""
+    dim = q + (1 if mode == "intercept" else 0)
+    k = dim - 1
+    keep = "n > 1" if mode == "within" else "n > 0"
+    entries = [f"{transformed_entry(j, l, q, mode)} AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
+    entries += [f"p{j}_{j} AS raw{j}" for j in range(q)]
+    sums = [f"sum({_w(j, l)}) AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
+    sums += [f"sum(raw{j}) AS r{j}" for j in range(q)]
+    residuals = ""
+    if expand:
+        residuals = ", " + ", ".join(
+            f"{_w(j, k)} - (" + " + ".join(f"$q{l} * {_w(j, l)}" for l in range(k)) + f") AS e{j}" for j in range(k)
+        )
+        pairs = [(a, b) for a in range(k) for b in range(a, k)]
+        sums += [f"sum(e{j} * e{m}) AS rr{j}_{m}" for j in range(k) for m in range(j, k)]
+        sums += [f"sum(e{j} * {_w(a, b)}) AS rb{j}_{a}_{b}" for j in range(k) for a, b in pairs]
+        sums += [f"sum({_w(*pairs[u])} * {_w(*pairs[v])}) AS bb{u}_{v}" for u in range(len(pairs)) for v in range(u, len(pairs))]
+    sums = [total + item[3:] for item in sums]  # sum( -> fsum( when threads race
+    return render("unit_pass", units=f"({units})", entries=", ".join(entries), residuals=residuals,
+                  keep=keep, sums=", ".join(sums))
 
 
 def row_counts_sql(rows: str, q: int, differenced: bool, step: int) -> str:
@@ -300,7 +365,12 @@ def demeaned_rows_sql(used: str, q: int, n_clusters: int) -> str:
     return f"SELECT {keys}, {cols} FROM ({used}) AS r"
 
 
-def probe_sql(rows: str, q: int, limit: int) -> str:
-    """Means of the design columns over the first rows (the shift for accumulation)."""
+def probe_sql(rows: str, q: int) -> str:
+    """Means of the design columns over ``rows`` (built on the source's first rows):
+    the shift subtracted before accumulating."""
     means = ", ".join(f"avg({_z(j)}) FILTER (WHERE isfinite({_z(j)})) AS a{j}" for j in range(q))
-    return f"SELECT {means} FROM (SELECT * FROM ({rows}) AS r LIMIT {int(limit)}) AS head"
+    return f"SELECT {means} FROM ({rows}) AS head"
+
+
+def head_sql(source: str, limit: int) -> str:
+    return f"(SELECT * FROM {source} AS src LIMIT {int(limit)})"
