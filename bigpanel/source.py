@@ -336,7 +336,7 @@ class Session:
             return
         self.check_expression(where, "Filter")
         try:
-            self.con.execute(f"DESCRIBE SELECT * FROM {self.source.filtered()}")
+            self.con.execute(f"DESCRIBE SELECT * FROM {self.source.filtered()}").fetchall()
         except duckdb.Error as exc:
             raise InputError(f"Filter '{where}' is not valid on {self.source.label} ({_first_line(exc)}). Fix the SQL predicate.") from None
 
