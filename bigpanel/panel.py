@@ -1,0 +1,634 @@
+"""Panel checkup: keys, period grid, balance, gaps, duplicates, missing values and the
+within/between split of every numeric column, from a few aggregate-only scans.
+
+The scans (templates ``sql/checkup_*.sql``):
+
+1. ``checkup_periods``: GROUP BY period. Row counts, the distinct periods (from which the
+   regular step is found here, in Python, over at most ``MAX_PERIODS`` values), and per
+   period the count, mean and sum of squared deviations of each column. The periods are
+   combined into column totals with the exact two-pass formula over the few period rows.
+2. ``checkup_units``: GROUP BY unit, reduced in the same statement to one row. A unit's
+   distinct periods are counted with a bitmap over the period grid (exact, and far cheaper
+   than COUNT(DISTINCT)); its within-unit sum of squares is DuckDB's streaming
+   (Welford/Chan) ``regr_sxx``, which is exactly zero for a column constant in the unit and
+   keeps its digits when unit means are large next to the spread inside units.
+3. ``checkup_duplicates``: only when scan 2 found duplicate rows, the first offending keys.
+
+Peak memory is set by the unit scan's hash table (one small row per unit); give the
+source's :class:`~bigpanel.source.Engine` a ``memory_limit`` (and ``temp_directory``) to
+bound it on panels with millions of units: DuckDB then spills.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from . import sqlbuild
+from .errors import InputError
+from .source import Session, Source, is_numeric
+
+MAX_PERIODS = 1_000_000
+"""More distinct periods than this and the period column is taken to be the wrong one."""
+
+BITMAP_MAX_SLOTS = 4096
+"""Longest period grid counted with a per-unit bitmap (512 bytes a unit); longer grids use
+COUNT(DISTINCT), which is exact too but several times slower."""
+
+WITHIN_SHARE_FLOOR = 1e-12
+"""Within shares below this are rounding noise: the column does not vary within units.
+Common practice: a relative threshold some thousands of times machine epsilon (2.2e-16)."""
+
+N_DUPLICATE_EXAMPLES = 5
+
+_INTEGER_TYPES = (
+    "TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT",
+    "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "UHUGEINT",
+)  # fmt: skip
+_SUBDAY_UNITS = (("hour", 3_600_000_000), ("minute", 60_000_000), ("second", 1_000_000), ("microsecond", 1))
+
+
+# ---------------------------------------------------------------- the report
+
+
+@dataclass(frozen=True)
+class ColumnCheck:
+    """Missing values and, for a numeric column, its spread within and between units.
+
+    ``within_share`` is the within-unit sum of squares (deviations from each unit's mean)
+    over the total sum of squares (deviations from the overall mean); ``between_share`` is
+    the rest. ``units_varying`` counts units in which the column takes more than one value.
+    ``within_estimable`` is False when the column never changes inside a unit, so that its
+    effect cannot be estimated by within or first-difference regressions. The numeric
+    fields are None for other columns; the shares are None for a column with no spread.
+    """
+
+    name: str
+    dtype: str
+    numeric: bool
+    n_missing: int
+    mean: float | None = None
+    std: float | None = None
+    min: float | None = None
+    max: float | None = None
+    within_share: float | None = None
+    between_share: float | None = None
+    units_varying: int | None = None
+    within_estimable: bool | None = None
+
+
+@dataclass(frozen=True)
+class PanelReport:
+    """What :func:`inspect_panel` found. Periods are ints, dates or datetimes.
+
+    ``n_rows`` counts rows after the filter; rows missing the unit or the period (counted in
+    ``n_rows_missing_unit`` and ``n_rows_missing_period``, which may overlap) are left out
+    of every other figure, so those describe ``n_rows_used`` rows. ``periods_per_unit`` is
+    (min, lower quartile, median, upper quartile, max) of the distinct periods per unit.
+    ``n_grid_periods`` is the length of the regular grid from the first to the last period
+    (``n_empty_periods`` of them have no rows at all); ``n_missing_unit_periods`` counts
+    grid periods absent inside units' own spans. ``duplicate_examples`` holds
+    (unit, period, rows) for the first offending keys, in key order.
+    """
+
+    source: str
+    where: str | None
+    unit: str
+    unit_dtype: str
+    period: str
+    period_dtype: str
+    n_rows: int
+    n_rows_missing_unit: int
+    n_rows_missing_period: int
+    n_rows_used: int
+    n_units: int
+    n_periods: int
+    first_period: Any
+    last_period: Any
+    period_step: int | None
+    period_step_unit: str | None
+    n_grid_periods: int
+    n_empty_periods: int
+    n_balanced_units: int
+    n_singleton_units: int
+    periods_per_unit: tuple[int, int, int, int, int]
+    n_units_with_gaps: int
+    n_missing_unit_periods: int
+    n_duplicate_keys: int
+    n_duplicate_rows: int
+    duplicate_examples: tuple[tuple[Any, Any, int], ...]
+    columns: tuple[ColumnCheck, ...]
+
+    @property
+    def balanced_share(self) -> float:
+        """Share of units observed in every period of the panel."""
+        return self.n_balanced_units / self.n_units
+
+    @property
+    def not_estimable(self) -> tuple[str, ...]:
+        """Numeric columns that never change within a unit."""
+        return tuple(c.name for c in self.columns if c.within_estimable is False)
+
+    def duplicate_problem(self) -> str | None:
+        """One sentence naming the first duplicate keys, or None when every key is unique."""
+        if not self.n_duplicate_keys:
+            return None
+        shown = ", ".join(f"({_show(u)}, {_show(p)})" for u, p, _ in self.duplicate_examples)
+        more = ", ..." if self.n_duplicate_keys > len(self.duplicate_examples) else ""
+        plural = "s" if self.n_duplicate_keys != 1 else ""
+        return (
+            f"Source {self.source} has {self.n_duplicate_keys:,} duplicate ({self.unit}, {self.period}) "
+            f"key{plural}, first {shown}{more}; keep one row per unit and period (filter or aggregate "
+            "the source with a query) before estimating."
+        )
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-ready dict of the fields above (periods as ISO text), plus the derived
+        ``balanced_share`` and ``not_estimable``."""
+        out = _json_ready(dataclasses.asdict(self))
+        out["balanced_share"] = self.balanced_share
+        out["not_estimable"] = list(self.not_estimable)
+        return out
+
+    def to_polars(self):
+        """One row per checked column: type, missing values, moments and variance shares."""
+        import polars as pl
+
+        schema = {
+            "name": pl.String, "dtype": pl.String, "numeric": pl.Boolean, "n_missing": pl.Int64,
+            "mean": pl.Float64, "std": pl.Float64, "min": pl.Float64, "max": pl.Float64,
+            "within_share": pl.Float64, "between_share": pl.Float64, "units_varying": pl.Int64,
+            "within_estimable": pl.Boolean,
+        }  # fmt: skip
+        data = {name: [getattr(c, name) for c in self.columns] for name in schema}
+        return pl.DataFrame(data, schema=schema)
+
+    def render(self, color: bool = False) -> str:
+        """The report as plain text for a terminal; ``color`` marks problems in red."""
+        return _render(self, color)
+
+    def __str__(self) -> str:
+        return self.render()
+
+
+# ---------------------------------------------------------------- the checkup
+
+
+def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str] | None = None) -> PanelReport:
+    """Check a panel's structure and the within-unit variation of its columns.
+
+    Parameters
+    ----------
+    source : Source
+        From :func:`~bigpanel.source.open_source`; its row filter applies to every figure.
+    unit, period : str
+        The key columns. The period must be an integer, DATE or TIMESTAMP column.
+    columns : list of str, optional
+        Columns to check; each must be numeric. By default every other column is checked
+        (non-numeric ones for missing values only).
+
+    Returns
+    -------
+    PanelReport
+
+    Raises
+    ------
+    InputError
+        For an unknown or unsuitable column, a bad filter, or no rows after the filter.
+    """
+    with Session(source) as session:
+        kinds = _check_arguments(session, unit, period, columns)
+        session.check_filter()
+        schema = session.columns()
+        checked = [c for c in schema if c not in (unit, period)] if columns is None else list(dict.fromkeys(columns))
+        numeric = [c for c in checked if is_numeric(schema[c])]
+        period_value = _period_value(period, kinds)
+
+        by_period = _scan_periods(session, unit, period_value, checked, numeric)
+        grid = _period_grid(by_period["period_value"], kinds, session.source.label, period)
+        if grid is None:
+            raise InputError(_no_rows_message(session.source, unit, period, by_period["n_rows"]))
+        units = _scan_units(session, unit, period, period_value, numeric, grid)
+        duplicates: list[tuple[Any, Any, int]] = []
+        n_duplicate_keys = 0
+        if units["duplicate_rows"]:
+            duplicates, n_duplicate_keys = _scan_duplicates(session, unit, period_value)
+
+    keyed = by_period["keyed"]
+    column_checks = tuple(
+        _column_check(c, schema[c], j, by_period, units, c in numeric, numeric.index(c) if c in numeric else None)
+        for j, c in enumerate(checked)
+    )
+    quartiles = _quartiles(units["periods_per_unit"])
+    return PanelReport(
+        source=session.source.label,
+        where=session.source.where,
+        unit=unit,
+        unit_dtype=schema[unit],
+        period=period,
+        period_dtype=schema[period],
+        n_rows=by_period["total_rows"],
+        n_rows_missing_unit=by_period["missing_unit"],
+        n_rows_missing_period=by_period["missing_period"],
+        n_rows_used=int(np.sum(by_period["n_rows"][keyed])),
+        n_units=int(units["n_units"]),
+        n_periods=grid.n_periods,
+        first_period=grid.first,
+        last_period=grid.last,
+        period_step=grid.step,
+        period_step_unit=grid.step_unit,
+        n_grid_periods=grid.n_slots,
+        n_empty_periods=grid.n_slots - grid.n_periods,
+        n_balanced_units=int(units["balanced_units"]),
+        n_singleton_units=int(units["singleton_units"]),
+        periods_per_unit=quartiles,  # type: ignore[arg-type]
+        n_units_with_gaps=int(units["units_with_gaps"]),
+        n_missing_unit_periods=int(units["missing_unit_periods"]),
+        n_duplicate_keys=n_duplicate_keys,
+        n_duplicate_rows=int(units["duplicate_rows"]),
+        duplicate_examples=tuple(duplicates),
+        columns=column_checks,
+    )
+
+
+def _check_arguments(session: Session, unit: str, period: str, columns: Sequence[str] | None) -> str:
+    """Validate the key and column names; return the period kind (integer/date/timestamp)."""
+    label = session.source.label
+    if unit == period:
+        raise InputError(f"Unit and period are the same column '{unit}'. Give two different columns.")
+    if columns is not None:
+        if isinstance(columns, str):
+            raise InputError(f"Option 'columns' must be a list of column names, got the text '{columns}'.")
+        for name in (unit, period):
+            if name in columns:
+                raise InputError(f"Column '{name}' is a key of the panel, not a column to check. Leave it out of 'columns'.")
+    session.require_columns([unit, period, *(columns or [])], numeric=list(columns or []))
+    duck_type = session.columns()[period]
+    kind = _period_kind(duck_type)
+    if kind is None:
+        raise InputError(
+            f"Column '{period}' in {label} has type {duck_type}, which cannot be a period. "
+            "Use an integer, DATE or TIMESTAMP column, or convert it in a query (for example CAST(... AS DATE))."
+        )
+    return kind
+
+
+def _period_kind(duck_type: str) -> str | None:
+    base = duck_type.upper().split("(")[0].strip()
+    if base in _INTEGER_TYPES:
+        return "integer"
+    if base == "DATE":
+        return "date"
+    if base.startswith("TIMESTAMP"):
+        return "timestamp"
+    return None
+
+
+def _no_rows_message(source: Source, unit: str, period: str, n_rows: np.ndarray) -> str:
+    if int(np.sum(n_rows)) == 0:
+        where = f" after the filter '{source.where}'" if source.where else ""
+        return f"Source {source.label} has no rows{where}. Loosen the filter or check the source."
+    return f"No row of {source.label} has both a unit ('{unit}') and a period ('{period}'). Check the key columns."
+
+
+# ---------------------------------------------------------------- scan 1: periods
+
+
+def _period_value(period: str, kind: str) -> str:
+    """The period as the scans see it: timestamps of every precision and zone as TIMESTAMP."""
+    quoted = sqlbuild.quote_ident(period)
+    return f"CAST({quoted} AS TIMESTAMP)" if kind == "timestamp" else quoted
+
+
+def build_period_scan(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
+                      numeric: Sequence[str]) -> str:
+    """SQL of the period scan; column j's aggregates are named n_j, mean_j, ss_j, min_j, max_j."""
+    parts = []
+    for j, name in enumerate(checked):
+        q = sqlbuild.quote_ident(name)
+        parts.append(f"count({q}) AS n_{j}")
+        if name in numeric:
+            v = f"CAST({q} AS DOUBLE)"
+            parts += [f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}", f"min({v}) AS min_{j}", f"max({v}) AS max_{j}"]
+    return sqlbuild.render(
+        "checkup_periods",
+        source=source_sql,
+        period=period_value,
+        unit=sqlbuild.quote_ident(unit),
+        column_aggregates="".join(",\n       " + p for p in parts),
+    )
+
+
+def _scan_periods(session: Session, unit: str, period_value: str, checked: list[str], numeric: list[str]) -> dict:
+    sql = build_period_scan(session.source.filtered(), unit, period_value, checked, numeric)
+    max_groups = 2 * MAX_PERIODS + 2  # each period twice (with and without a unit), plus NULL periods
+    table = session.run(sql, {"max_groups": max_groups})
+    n_distinct = len(table.column("period_value").drop_null().unique())
+    if table.num_rows >= max_groups or n_distinct > MAX_PERIODS:
+        raise InputError(
+            f"The period column of {session.source.label} has more than {MAX_PERIODS:,} distinct values. "
+            "Check that the period option names the time column."
+        )
+    data = {name: table.column(name) for name in table.column_names}
+    n_rows = np.asarray(data["n_rows"].to_numpy(zero_copy_only=False), dtype=np.int64)
+    unit_missing = np.asarray(data["unit_missing"].to_numpy(zero_copy_only=False), dtype=bool)
+    period_missing = np.asarray(data["period_value"].is_null().to_numpy(zero_copy_only=False), dtype=bool)
+    keyed = ~unit_missing & ~period_missing
+    out = {name: data[name] for name in data}
+    out.update(
+        n_rows=n_rows,
+        keyed=keyed,
+        total_rows=int(n_rows.sum()),
+        missing_unit=int(n_rows[unit_missing].sum()),
+        missing_period=int(n_rows[period_missing].sum()),
+        period_value=data["period_value"].filter(keyed),
+    )
+    return out
+
+
+@dataclass(frozen=True)
+class _Grid:
+    """The regular grid of periods: ordinals are ints (the value, months, days or
+    microseconds), ``slot = (ordinal - first_ordinal) // slot_step``."""
+
+    n_periods: int
+    first: Any
+    last: Any
+    step: int | None
+    step_unit: str | None
+    mode: str  # integer | month | day | microsecond
+    first_ordinal: int
+    slot_step: int
+    n_slots: int
+
+
+def _period_grid(values, kind: str, label: str, period: str) -> _Grid | None:
+    """Distinct periods -> the grid: first, last and the gcd step of consecutive periods."""
+    if len(values) == 0:
+        return None
+    if kind == "integer":
+        ordinals = sorted(set(int(v) for v in values.to_pylist()))
+        mode, first, last = "integer", ordinals[0], ordinals[-1]
+    else:
+        stamps = np.unique(np.asarray(values.to_numpy(zero_copy_only=False)).astype("datetime64[us]"))
+        days = stamps.astype("datetime64[D]")
+        first, last = _from_numpy(stamps[0], kind), _from_numpy(stamps[-1], kind)
+        if np.any(stamps - days.astype("datetime64[us]") != stamps[0] - days[0].astype("datetime64[us]")):
+            mode, ordinals = "microsecond", stamps.astype(np.int64).tolist()
+        else:
+            months = days.astype("datetime64[M]")
+            day_of_month = (days - months.astype("datetime64[D]")).astype(np.int64)
+            month_end = (days + 1).astype("datetime64[M]") != months
+            if np.all(day_of_month == day_of_month[0]) or np.all(month_end):
+                # year * 12 + month - 1, as SQL computes it from year() and month()
+                mode, ordinals = "month", (months.astype(np.int64) + 1970 * 12).tolist()
+            else:
+                mode, ordinals = "day", days.astype(np.int64).tolist()
+    n_periods = len(ordinals)
+    gaps = [b - a for a, b in zip(ordinals, ordinals[1:])]
+    slot_step = math.gcd(*gaps) if gaps else 1
+    n_slots = (ordinals[-1] - ordinals[0]) // slot_step + 1
+    step, step_unit = _step_label(mode, slot_step) if gaps else (None, None)
+    return _Grid(n_periods, first, last, step, step_unit, mode, ordinals[0], slot_step, n_slots)
+
+
+def _step_label(mode: str, slot_step: int) -> tuple[int, str | None]:
+    if mode == "integer":
+        return slot_step, None
+    if mode == "month":
+        if slot_step % 12 == 0:
+            return slot_step // 12, "year"
+        if slot_step % 3 == 0:
+            return slot_step // 3, "quarter"
+        return slot_step, "month"
+    if mode == "day":
+        return (slot_step // 7, "week") if slot_step % 7 == 0 else (slot_step, "day")
+    for name, size in _SUBDAY_UNITS:
+        if slot_step % size == 0:
+            return slot_step // size, name
+    raise AssertionError("unreachable: every step is a whole number of microseconds")
+
+
+def _from_numpy(stamp: np.datetime64, kind: str) -> Any:
+    value = stamp.astype("datetime64[us]").item()
+    return value.date() if kind == "date" else value
+
+
+# ---------------------------------------------------------------- scan 2: units
+
+
+def slot_expression(period_value: str, mode: str) -> str:
+    """The period's slot on the grid; ``$first`` is the first period's ordinal, ``$step`` the step."""
+    ordinal = {
+        "integer": f"CAST({period_value} AS HUGEINT)",
+        "month": f"(year({period_value}) * 12 + month({period_value}) - 1)",
+        "day": f"date_diff('day', DATE '1970-01-01', CAST({period_value} AS DATE))",
+        "microsecond": f"epoch_us({period_value})",
+    }[mode]
+    return f"CAST(({ordinal} - $first) // $step AS BIGINT)"
+
+
+def build_unit_scan(source_sql: str, unit: str, period_value: str, numeric: Sequence[str], mode: str,
+                    bitmap: bool) -> str:
+    """SQL of the unit scan; column j of ``numeric`` gives within_ss_j and varying_units_j."""
+    values = [f"CAST({sqlbuild.quote_ident(c)} AS DOUBLE) AS v_{j}" for j, c in enumerate(numeric)]
+    per_unit = [f"regr_sxx(v_{j}, v_{j}) AS ss_{j}" for j in range(len(numeric))]
+    totals = [f"fsum(ss_{j}) AS within_ss_{j},\n       count(*) FILTER (WHERE ss_{j} > 0) AS varying_units_{j}"
+              for j in range(len(numeric))]
+    return sqlbuild.render(
+        "checkup_units",
+        source=source_sql,
+        unit=sqlbuild.quote_ident(unit),
+        period=period_value,
+        slot=slot_expression(period_value, mode),
+        distinct_slots="bit_count(bitstring_agg(slot, 0, $last_slot))" if bitmap else "count(DISTINCT slot)",
+        column_values="".join(", " + v for v in values),
+        unit_aggregates="".join(",\n           " + a for a in per_unit),
+        column_totals="".join(",\n       " + t for t in totals),
+    )
+
+
+def _scan_units(session: Session, unit: str, period: str, period_value: str, numeric: list[str], grid: _Grid) -> dict:
+    bitmap = grid.n_slots <= BITMAP_MAX_SLOTS
+    sql = build_unit_scan(session.source.filtered(), unit, period_value, numeric, grid.mode, bitmap)
+    params = {"first": grid.first_ordinal, "step": grid.slot_step, "n_periods": grid.n_periods}
+    if bitmap:
+        params["last_slot"] = grid.n_slots - 1
+    row = session.run(sql, params).to_pylist()[0]
+    return row
+
+
+def _quartiles(histogram) -> tuple[int, ...]:
+    """(min, q1, median, q3, max) from a {value: count} histogram: the value at 0-based rank
+    floor(q * (n - 1)) in sorted order (numpy's "lower" quantile)."""
+    pairs = sorted(dict(histogram).items())
+    values = np.array([v for v, _ in pairs], dtype=np.int64)
+    ends = np.cumsum([c for _, c in pairs])
+    n = int(ends[-1])
+    ranks = [math.floor(q * (n - 1)) for q in (0.0, 0.25, 0.5, 0.75, 1.0)]
+    return tuple(int(values[np.searchsorted(ends, r, side="right")]) for r in ranks)
+
+
+# ---------------------------------------------------------------- scan 3: duplicate keys
+
+
+def build_duplicate_scan(source_sql: str, unit: str, period_value: str) -> str:
+    return sqlbuild.render("checkup_duplicates", source=source_sql, unit=sqlbuild.quote_ident(unit), period=period_value)
+
+
+def _scan_duplicates(session: Session, unit: str, period_value: str) -> tuple[list[tuple[Any, Any, int]], int]:
+    sql = build_duplicate_scan(session.source.filtered(), unit, period_value)
+    rows = session.run(sql, {"n_examples": N_DUPLICATE_EXAMPLES}).to_pylist()
+    examples = [(r["unit_key"], r["period_key"], int(r["n_rows"])) for r in rows]
+    return examples, int(rows[0]["n_keys"]) if rows else 0
+
+
+# ---------------------------------------------------------------- columns
+
+
+def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, numeric: bool,
+                  k: int | None) -> ColumnCheck:
+    keyed = by_period["keyed"]
+    n_rows = by_period["n_rows"][keyed]
+    counts = _floats(by_period[f"n_{j}"])[keyed]
+    n_missing = int(n_rows.sum() - counts.sum())
+    if not numeric:
+        return ColumnCheck(name=name, dtype=dtype, numeric=False, n_missing=n_missing)
+    n = float(counts.sum())
+    if n == 0:
+        return ColumnCheck(name=name, dtype=dtype, numeric=True, n_missing=n_missing, units_varying=0, within_estimable=False)
+    present = counts > 0
+    counts = counts[present]
+    means = _floats(by_period[f"mean_{j}"])[keyed][present]
+    within_period = _floats(by_period[f"ss_{j}"])[keyed][present]
+    # Two passes over the period means (exact, few values): total SS = sum of the periods'
+    # own sums of squares + sum of n_t (mean_t - mean)^2.
+    mean = math.fsum(counts * means) / n
+    total_ss = math.fsum(within_period) + math.fsum(counts * (means - mean) ** 2)
+    within_ss = float(units[f"within_ss_{k}"] or 0.0)
+    varying = int(units[f"varying_units_{k}"])
+    if total_ss > 0:
+        # The two sums come from different scans; clip the rounding that can push a share
+        # a few ulps past 0 or 1.
+        within_share = min(1.0, max(0.0, within_ss / total_ss))
+        between_share = 1.0 - within_share
+    else:
+        within_share = between_share = None
+    estimable = varying > 0 and within_share is not None and within_share >= WITHIN_SHARE_FLOOR
+    return ColumnCheck(
+        name=name, dtype=dtype, numeric=True, n_missing=n_missing,
+        mean=mean,
+        std=math.sqrt(total_ss / (n - 1)) if n > 1 else None,
+        min=float(np.min(_floats(by_period[f"min_{j}"])[keyed][present])),
+        max=float(np.max(_floats(by_period[f"max_{j}"])[keyed][present])),
+        within_share=within_share, between_share=between_share,
+        units_varying=varying, within_estimable=estimable,
+    )  # fmt: skip
+
+
+def _floats(column) -> np.ndarray:
+    return np.asarray(column.to_numpy(zero_copy_only=False), dtype=np.float64)
+
+
+# ---------------------------------------------------------------- rendering
+
+
+def _show(value: Any) -> str:
+    if isinstance(value, dt.datetime):
+        return value.isoformat(sep=" ")
+    if isinstance(value, dt.date):
+        return value.isoformat()
+    return str(value)
+
+
+def _json_ready(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {k: _json_ready(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_ready(v) for v in value]
+    if isinstance(value, (dt.date, dt.datetime)):
+        return value.isoformat()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, (str, int, float, bool)) or value is None:
+        return value
+    return str(value)
+
+
+def _count(n: int, word: str) -> str:
+    return f"{n:,} {word}{'' if n == 1 else 's'}"
+
+
+def _share(x: float | None) -> str:
+    if x is None:
+        return "-"
+    if 0 < x < 0.001:
+        return f"{x:.1e}"
+    return f"{x:.3f}"
+
+
+def _number(x: float | None) -> str:
+    return "-" if x is None else f"{x:.6g}"
+
+
+def _render(r: PanelReport, color: bool) -> str:
+    def bad(text: str) -> str:
+        return f"\x1b[31m{text}\x1b[0m" if color else text
+
+    step = "-" if r.period_step is None else f"{r.period_step}" + (f" {r.period_step_unit}" if r.period_step_unit else "")
+    if r.period_step and r.period_step_unit and r.period_step != 1:
+        step += "s"
+    lines = [f"Panel checkup of {r.source}" + (f" where {r.where}" if r.where else "")]
+    lines.append(f"  rows              {r.n_rows:,}")
+    skipped = r.n_rows - r.n_rows_used
+    if skipped:
+        lines.append(bad(f"  left out          {_count(skipped, 'row')} without a unit or period "
+                         f"({r.n_rows_missing_unit:,} no {r.unit}, {r.n_rows_missing_period:,} no {r.period})"))
+    lines.append(f"  units             {r.n_units:,}  ({r.unit}, {r.unit_dtype})")
+    lines.append(f"  periods           {r.n_periods:,}  ({r.period}, {r.period_dtype}), "
+                 f"{_show(r.first_period)} to {_show(r.last_period)}, step {step}")
+    if r.n_empty_periods:
+        lines.append(f"  empty periods     {r.n_empty_periods:,} of the {r.n_grid_periods:,} on the grid have no rows")
+    lines.append("")
+    lines.append("Structure")
+    balanced = "yes" if r.n_balanced_units == r.n_units else "no"
+    lines.append(f"  balanced          {balanced}: {r.n_balanced_units:,} of {r.n_units:,} units "
+                 f"({100 * r.balanced_share:.1f}%) have every period")
+    lo, q1, med, q3, hi = r.periods_per_unit
+    lines.append(f"  periods per unit  min {lo}, quartiles {q1} / {med} / {q3}, max {hi}")
+    lines.append(f"  single period     {_count(r.n_singleton_units, 'unit')}")
+    if r.n_units_with_gaps:
+        lines.append(f"  gaps              {_count(r.n_units_with_gaps, 'unit')} miss a period inside their span "
+                     f"({r.n_missing_unit_periods:,} unit-periods missing)")
+    else:
+        lines.append("  gaps              none")
+    if r.n_duplicate_keys:
+        shown = ", ".join(f"({_show(u)}, {_show(p)}) x{n}" for u, p, n in r.duplicate_examples)
+        lines.append(bad(f"  duplicate keys    {r.n_duplicate_keys:,} ({r.n_duplicate_rows:,} surplus rows): {shown}"))
+    else:
+        lines.append("  duplicate keys    none")
+    lines.append("")
+    name_width = max([len("column")] + [len(c.name) for c in r.columns])
+    type_width = max([len("type")] + [len(c.dtype) for c in r.columns])
+    header = (f"  {'column':<{name_width}}  {'type':<{type_width}}  {'missing':>9}  {'mean':>11}  {'std':>11}  "
+              f"{'within':>7}  {'between':>7}  {'units varying':>13}")
+    lines.append("Columns (within/between: shares of the variance inside units and across unit means)")
+    lines.append(header)
+    for c in r.columns:
+        varying = "-" if c.units_varying is None else f"{c.units_varying:,}"
+        row = (f"  {c.name:<{name_width}}  {c.dtype:<{type_width}}  {c.n_missing:>9,}  {_number(c.mean):>11}  "
+               f"{_number(c.std):>11}  {_share(c.within_share):>7}  {_share(c.between_share):>7}  {varying:>13}")
+        lines.append(bad(row + "  no change within units") if c.within_estimable is False else row)
+    if r.not_estimable:
+        names = ", ".join(r.not_estimable)
+        lines.append("")
+        lines.append(bad(f"Not estimable by within or first-difference regressions (constant within every unit): {names}."))
+    if not r.columns:
+        lines.append("  (no columns to check)")
+    return "\n".join(lines)
