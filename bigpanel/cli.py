@@ -1,0 +1,165 @@
+"""The ``bigpanel`` command line: thin commands over the Python API.
+
+Results go to stdout, diagnostics to stderr. Exit codes: 0 done; 1 the run failed or found
+a problem that blocks estimation (such as duplicate keys); 2 bad usage or bad input, with
+one sentence on stderr and no traceback.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import sys
+from typing import Annotated, Optional
+
+import typer
+
+from .errors import BigpanelError, InputError
+from .source import Engine, Source, open_source
+
+app = typer.Typer(
+    name="bigpanel",
+    help="Within and first-difference panel regressions run as SQL over Parquet, CSV and DuckDB files.",
+    add_completion=False,
+    no_args_is_help=True,
+    pretty_exceptions_enable=False,
+    rich_markup_mode=None,
+)
+
+
+# ---------------------------------------------------------------- shared source options
+# Every command that reads a panel takes these; build the Source with _source_from_options.
+
+SourceArg = Annotated[
+    Optional[str],
+    typer.Argument(help="Parquet file, folder or glob; CSV file or glob; or a DuckDB file (with --table or --query).",
+                   show_default=False),
+]
+TableOpt = Annotated[Optional[str], typer.Option("--table", help="Table or view in the DuckDB file.")]
+QueryOpt = Annotated[Optional[str], typer.Option("--query", help="A SQL query giving the rows (inside the DuckDB file, or on its own).")]
+WhereOpt = Annotated[Optional[str], typer.Option("--where", help="SQL predicate keeping rows, e.g. \"region = 'north'\".")]
+CsvTypesOpt = Annotated[Optional[str], typer.Option("--csv-types", help="Override detected CSV column types: \"col=TYPE,col2=TYPE\".")]
+ThreadsOpt = Annotated[Optional[int], typer.Option("--threads", help="DuckDB worker threads (default: all cores).")]
+MemoryLimitOpt = Annotated[Optional[str], typer.Option("--memory-limit", help="DuckDB memory limit, e.g. 2GB; past it DuckDB spills to disk.")]
+TempDirectoryOpt = Annotated[Optional[str], typer.Option("--temp-directory", help="Folder for DuckDB's spill files.")]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print the result as JSON instead of text.")]
+
+
+def _source_from_options(
+    source: str | None,
+    *,
+    table: str | None = None,
+    query: str | None = None,
+    where: str | None = None,
+    csv_types: str | None = None,
+    threads: int | None = None,
+    memory_limit: str | None = None,
+    temp_directory: str | None = None,
+) -> Source:
+    """Build the Source described by the shared command-line options."""
+    engine = Engine(threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
+    return open_source(source, table=table, query=query, where=where, csv_types=_parse_csv_types(csv_types), engine=engine)
+
+
+_TYPE_SEPARATOR = re.compile(r",(?![^()]*\))")  # commas outside parentheses: DECIMAL(10,2) stays whole
+
+
+def _parse_csv_types(text: str | None) -> dict[str, str] | None:
+    if not text:
+        return None
+    out = {}
+    for item in _TYPE_SEPARATOR.split(text):
+        name, sep, duck_type = item.partition("=")
+        if not sep or not name.strip() or not duck_type.strip():
+            raise InputError(f"Option --csv-types has an item '{item.strip()}' that is not col=TYPE. "
+                             "Write pairs like \"month=DATE,depot=VARCHAR\".")
+        out[name.strip()] = duck_type.strip()
+    return out
+
+
+def _split_names(text: str | None) -> list[str] | None:
+    if text is None:
+        return None
+    names = [n.strip() for n in text.split(",") if n.strip()]
+    if not names:
+        raise InputError("Option --columns is empty. Give column names separated by commas, or leave it out.")
+    return names
+
+
+def _print_json(payload: dict) -> None:
+    typer.echo(json.dumps(payload, indent=2, ensure_ascii=False))
+
+
+def _use_color() -> bool:
+    return sys.stdout.isatty() and "NO_COLOR" not in os.environ
+
+
+# ---------------------------------------------------------------- commands
+
+
+@app.callback()
+def _group() -> None:
+    """Within and first-difference panel regressions run as SQL over Parquet, CSV and DuckDB files."""
+
+
+@app.command("checkup")
+def checkup_command(
+    source: SourceArg = None,
+    unit: Annotated[str, typer.Option("--unit", help="Column identifying the unit (depot, store, worker, ...).")] = ...,
+    period: Annotated[str, typer.Option("--period", help="Column identifying the period (integer, DATE or TIMESTAMP).")] = ...,
+    columns: Annotated[Optional[str], typer.Option("--columns", help="Numeric columns to check, comma-separated (default: all other columns).")] = None,
+    table: TableOpt = None,
+    query: QueryOpt = None,
+    where: WhereOpt = None,
+    csv_types: CsvTypesOpt = None,
+    threads: ThreadsOpt = None,
+    memory_limit: MemoryLimitOpt = None,
+    temp_directory: TempDirectoryOpt = None,
+    as_json: JsonOpt = False,
+) -> None:
+    """Check a panel: keys, period grid, balance, gaps, duplicate keys, missing values, and
+    how much each numeric column varies within units. Exits 1 when keys are duplicated."""
+    from .panel import inspect_panel
+
+    src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types,
+                               threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
+    report = inspect_panel(src, unit, period, _split_names(columns))
+    typer.echo(json.dumps(report.to_dict(), indent=2, ensure_ascii=False) if as_json else report.render(color=_use_color()))
+    problem = report.duplicate_problem()
+    if problem:
+        typer.echo(problem, err=True)
+        raise typer.Exit(1)
+
+
+# ---------------------------------------------------------------- entry point
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line and return its exit code (the console script exits with it)."""
+    command = typer.main.get_command(app)
+    try:
+        command.main(args=argv, prog_name="bigpanel", standalone_mode=True)
+    except SystemExit as exc:  # usage errors (2), --help (0) and typer.Exit(code)
+        code = exc.code
+        return code if isinstance(code, int) else (0 if code is None else 1)
+    except InputError as exc:
+        _say(exc)
+        return 2
+    except BigpanelError as exc:
+        _say(exc)
+        return 1
+    except KeyboardInterrupt:
+        _say("Interrupted.")
+        return 130
+    except Exception as exc:  # noqa: BLE001 - a bug must still end with one sentence, not a traceback
+        if os.environ.get("BIGPANEL_TRACEBACK"):
+            raise
+        _say(f"bigpanel stopped on an unexpected {type(exc).__name__}: {exc}. "
+             "Rerun with BIGPANEL_TRACEBACK=1 to see where, and report it.")
+        return 1
+    return 0
+
+
+def _say(message: object) -> None:
+    print(str(message).strip(), file=sys.stderr)
