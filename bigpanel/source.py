@@ -316,7 +316,7 @@ class Session:
     def check_expression(self, expression: str, what: str) -> None:
         """Refuse anything but a single scalar SQL expression over the source's columns."""
         sql, params = sqlbuild.parse_check_sql(expression)
-        tree = self.con.execute(sql, params).fetchone()[0]
+        tree = self.con.execute(sql, params).fetchall()[0][0]
         problem = sqlbuild.expression_problem(tree, self.function_kinds())
         if problem:
             raise InputError(f"{what} '{expression}' is refused: {problem}. Give one scalar SQL expression over the source's columns.")
@@ -343,7 +343,7 @@ class Session:
     def describe_expression(self, expression: str) -> str:
         """DuckDB type of an expression over the source (binding it, reading no rows)."""
         try:
-            row = self.con.execute(f"DESCRIBE SELECT {expression} AS x FROM {self.source.relation()}").fetchone()
+            row = self.con.execute(f"DESCRIBE SELECT {expression} AS x FROM {self.source.relation()}").fetchall()[0]
         except duckdb.Error as exc:
             raise InputError(f"Term '{expression}' cannot be evaluated on {self.source.label} ({_first_line(exc)}). Check the column names and SQL.") from None
         return row[1]
