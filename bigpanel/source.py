@@ -96,7 +96,15 @@ class Source:
         """A fresh in-memory connection with the engine settings and the source attached."""
         con = duckdb.connect(":memory:")
         for statement in self.engine.settings():
-            con.execute(statement)
+            try:
+                con.execute(statement)
+            except duckdb.Error as exc:
+                con.close()
+                setting = statement.split()[1]
+                raise InputError(
+                    f"Option '{setting}' was refused by DuckDB ({_first_line(exc)}). "
+                    "Give a size like 4GB for the memory limit, or an existing folder for the temporary directory."
+                ) from None
         if self.database is not None:
             try:
                 con.execute(sqlbuild.attach_sql(self.database, _ATTACHED))
