@@ -1,0 +1,212 @@
+"""One benchmark case in a fresh process: ``python tests/bench/worker.py CASE FOLDER [options]``.
+
+Started by run.py, once per case and repetition, so that each measurement has a process of
+its own. Prints one JSON object on stdout: the wall time of the work (interpreter start and
+imports excluded), the peak resident memory of this process, and the estimates.
+
+CASES is the table of cases. A new estimator, or a batch run where one scan serves several
+models, is one more entry: a function ``run(files, settings) -> dict`` that returns the
+estimates it wants checked (or an empty dict) and a group that says how it is reported.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import json
+import sys
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+OUTCOME = "parcels"
+REGRESSORS = ["staff_hours", "vans", "fuel_price", "rain_mm", "promo"]
+UNIT, PERIOD = "depot", "month"
+
+
+@dataclass(frozen=True)
+class Settings:
+    threads: int | None = None
+    memory_limit: str | None = None  # DuckDB's memory_limit, e.g. "4GB"
+    temp_directory: str | None = None  # DuckDB's spill folder
+
+
+@dataclass(frozen=True)
+class Case:
+    name: str
+    group: str  # "floor" | "bigpanel" | "in-memory"
+    run: Callable[[list[str], Settings], dict]
+    imports: tuple[str, ...]  # imported before the clock starts
+    about: str
+
+
+def _quote(name: str) -> str:
+    return '"' + name.replace('"', '""') + '"'
+
+
+def floor(files, settings):
+    """The bare scan: count, sums and all sums of products of outcome and regressors."""
+    import duckdb
+
+    config = {k: v for k, v in (("threads", settings.threads), ("memory_limit", settings.memory_limit),
+                                ("temp_directory", settings.temp_directory)) if v is not None}
+    columns = [_quote(c) for c in [OUTCOME, *REGRESSORS]]
+    sums = ["count(*)"] + [f"sum({c})" for c in columns]
+    sums += [f"sum({a} * {b})" for i, a in enumerate(columns) for b in columns[i:]]
+    with duckdb.connect(config=config) as con:
+        con.execute(f"SELECT {', '.join(sums)} FROM read_parquet($files)", {"files": files}).fetchall()
+    return {}
+
+
+def _bigpanel(estimator, effects=None):
+    def run(files, settings):
+        import bigpanel
+
+        engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                                 temp_directory=settings.temp_directory)
+        result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS, UNIT, PERIOD, estimator=estimator,
+                              effects=effects, se="cluster", cluster=UNIT, engine=engine)
+        return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
+                "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
+    return run
+
+
+def _cluster_sandwich(xtx, meat, coef, n_obs, n_clusters):
+    """Unit-cluster CR1 standard errors, the factor bigpanel uses for within with unit clusters:
+    G/(G-1) * (N-1)/(N-K), unit effects nested in the clusters not counted (ESTIMATION.md)."""
+    import numpy as np
+
+    bread = np.linalg.inv(xtx)
+    k = len(coef)
+    factor = n_clusters / (n_clusters - 1) * (n_obs - 1) / (n_obs - k)
+    vcov = factor * bread @ meat @ bread
+    return {"coefficients": [float(b) for b in coef], "std_errors": [float(s) for s in np.sqrt(np.diag(vcov))]}
+
+
+def pandas_within(files, settings):
+    """Read into pandas, demean by groupby-transform, numpy lstsq, scores summed by groupby."""
+    import numpy as np
+    import pandas as pd
+
+    columns = [OUTCOME, *REGRESSORS]
+    frame = pd.read_parquet(files, columns=[UNIT, *columns])
+    demeaned = frame[columns] - frame.groupby(UNIT)[columns].transform("mean")
+    x = demeaned[REGRESSORS].to_numpy()
+    y = demeaned[OUTCOME].to_numpy()
+    coef = np.linalg.lstsq(x, y, rcond=None)[0]
+    u = y - x @ coef
+    scores = pd.DataFrame(x * u[:, None]).groupby(frame[UNIT].to_numpy()).sum().to_numpy()
+    return _cluster_sandwich(x.T @ x, scores.T @ scores, coef, len(y), len(scores))
+
+
+def polars_eager_within(files, settings):
+    """Read into polars, demean with mean().over(unit), numpy lstsq, scores by group_by sum."""
+    import numpy as np
+    import polars as pl
+
+    columns = [OUTCOME, *REGRESSORS]
+    frame = pl.read_parquet(files, columns=[UNIT, *columns])
+    demeaned = frame.select(pl.col(UNIT), *[pl.col(c) - pl.col(c).mean().over(UNIT) for c in columns])
+    x = demeaned.select(REGRESSORS).to_numpy()
+    y = demeaned[OUTCOME].to_numpy()
+    coef = np.linalg.lstsq(x, y, rcond=None)[0]
+    u = y - x @ coef
+    scores = (pl.DataFrame(x * u[:, None], schema=REGRESSORS).with_columns(demeaned[UNIT])
+              .group_by(UNIT).sum().drop(UNIT).to_numpy())
+    return _cluster_sandwich(x.T @ x, scores.T @ scores, coef, len(y), len(scores))
+
+
+def polars_lazy_within(files, settings):
+    """One lazy query for the demeaned cross-product sums, numpy solve, a second lazy query
+    for the cluster scores (group-by sum) and their products: only sums are collected."""
+    import numpy as np
+    import polars as pl
+
+    columns = [OUTCOME, *REGRESSORS]
+    demeaned = pl.scan_parquet(files).select(pl.col(UNIT), *[pl.col(c) - pl.col(c).mean().over(UNIT) for c in columns])
+    k = len(REGRESSORS)
+    pairs = [(i, j) for i in range(k + 1) for j in range(i, k + 1)]  # over regressors then outcome
+    names = [*REGRESSORS, OUTCOME]
+    sums = demeaned.select(pl.len().alias("n"), *[(pl.col(names[i]) * pl.col(names[j])).sum().alias(f"{i}_{j}")
+                                                  for i, j in pairs]).collect().row(0, named=True)
+    cross = np.zeros((k + 1, k + 1))
+    for i, j in pairs:
+        cross[i, j] = cross[j, i] = sums[f"{i}_{j}"]
+    xtx, xty = cross[:k, :k], cross[:k, k]
+    coef = np.linalg.solve(xtx, xty)
+    residual = pl.col(OUTCOME) - pl.sum_horizontal([float(b) * pl.col(c) for b, c in zip(coef, REGRESSORS)])
+    scores = demeaned.group_by(UNIT).agg([(pl.col(c) * residual).sum().alias(c) for c in REGRESSORS])
+    meat_sums = scores.select(pl.len().alias("g"), *[(pl.col(REGRESSORS[i]) * pl.col(REGRESSORS[j])).sum().alias(f"{i}_{j}")
+                                                     for i in range(k) for j in range(i, k)]).collect().row(0, named=True)
+    meat = np.zeros((k, k))
+    for i in range(k):
+        for j in range(i, k):
+            meat[i, j] = meat[j, i] = meat_sums[f"{i}_{j}"]
+    return _cluster_sandwich(xtx, meat, coef, sums["n"], meat_sums["g"])
+
+
+_BP = ("bigpanel",)
+CASES = {case.name: case for case in [
+    Case("floor", "floor", floor, ("duckdb",),
+         "one DuckDB query: count, sums and sums of products of outcome and regressors"),
+    Case("pooled", "bigpanel", _bigpanel("pooled"), _BP, "bigpanel pooled, unit clusters"),
+    Case("within", "bigpanel", _bigpanel("within"), _BP, "bigpanel within (unit effects), unit clusters"),
+    Case("within-unit-period", "bigpanel", _bigpanel("within", f"{UNIT},{PERIOD}"), _BP,
+         "bigpanel within (unit and period effects), unit clusters"),
+    Case("first-difference", "bigpanel", _bigpanel("first-difference"), _BP,
+         "bigpanel first differences, unit clusters"),
+    Case("pandas", "in-memory", pandas_within, ("numpy", "pandas"),
+         "within in pandas: read, groupby-transform demean, lstsq, groupby-sum scores"),
+    Case("polars-eager", "in-memory", polars_eager_within, ("numpy", "polars"),
+         "within in polars eager: read, over() demean, lstsq, group_by-sum scores"),
+    Case("polars-lazy", "in-memory", polars_lazy_within, ("numpy", "polars"),
+         "within as polars lazy queries: demeaned cross-products and cluster scores collected as sums"),
+]}
+
+
+def peak_rss_bytes() -> int:
+    """Peak resident memory of this process image.
+
+    VmHWM belongs to the memory map made at exec, so, unlike getrusage's ru_maxrss (kept across
+    exec), it never includes the parent that started this process.
+    """
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    import resource
+
+    scale = 1 if sys.platform == "darwin" else 1024
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * scale
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(prog="worker.py")
+    parser.add_argument("case", choices=sorted(CASES))
+    parser.add_argument("folder", type=Path)
+    parser.add_argument("--threads", type=int)
+    parser.add_argument("--memory-limit")
+    parser.add_argument("--temp-directory")
+    args = parser.parse_args(argv)
+    settings = Settings(args.threads, args.memory_limit, args.temp_directory)
+    files = sorted(str(p) for p in args.folder.glob("*.parquet"))
+    if not files:
+        print(f"No Parquet files in {args.folder}. Generate the panel first.", file=sys.stderr)
+        return 2
+    case = CASES[args.case]
+    for module in case.imports:
+        importlib.import_module(module)
+    baseline = peak_rss_bytes()
+    start = time.perf_counter()
+    estimates = case.run(files, settings)
+    wall = time.perf_counter() - start
+    print(json.dumps({"case": case.name, "wall_s": wall, "peak_rss_bytes": peak_rss_bytes(),
+                      "baseline_rss_bytes": baseline, **estimates}))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
