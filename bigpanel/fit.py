@@ -35,6 +35,7 @@ from .source import Engine, Session, Source, is_numeric, open_source
 from .spec import FitSpec, Term
 
 PROBE_ROWS = 20_000  # first rows used for the shifts and the pilot coefficients
+MAX_PERIOD_SPAN = 10_000  # widest period range for unit + period effects (bits per unit)
 MAX_EXPANDED = 8  # largest model whose unit-cluster meat is summed in the first pass (k^4/4 sums)
 EXPANSION_LIMIT = 1e6  # largest-term/result ratio above which the expanded meat is recomputed
 MAX_LEVELS = 500
@@ -106,6 +107,7 @@ class _Design:
     columns: list[tuple[str, int]]  # (sql, lag) for regressors then the outcome
     is_effect: list[bool]  # period-effect indicator columns (not reported as coefficients)
     in_levels: frozenset[int] = frozenset()  # FD: columns not differenced
+    twoway: bool = False  # within with period effects solved from period sums (no SQL indicators)
 
 
 @dataclass
@@ -122,6 +124,7 @@ class _Pass:
     t_max: object = None
     expansion: list | None = None  # per-chunk sums for the unit-cluster meat (moments.py)
     pilot: np.ndarray | None = None
+    periods: list = field(default_factory=list)  # period-effect columns after the regressors
 
 
 class _Fit:
@@ -192,7 +195,8 @@ class _Fit:
                 columns.append((term.expr, term.lag))
                 is_effect.append(False)
         in_levels = set()
-        if spec.period_effects:
+        twoway = spec.period_effects and spec.estimator == "within" and self._integer_period()
+        if spec.period_effects and not twoway:
             quoted = sqlbuild.quote_ident(spec.period)
             periods = self._levels(quoted)
             order = sorted(periods, key=_period_key)
@@ -206,7 +210,24 @@ class _Fit:
                     is_effect.append(True)
         self._numeric_term(spec.outcome, "Outcome")
         columns.append((spec.outcome, 0))
-        return _Design(labels, columns, is_effect, frozenset(in_levels))
+        return _Design(labels, columns, is_effect, frozenset(in_levels), twoway)
+
+    def _integer_period(self) -> bool:
+        ptype = self.s.columns()[self.spec.period].upper()
+        return is_numeric(ptype) and not ptype.startswith(("FLOAT", "DOUBLE", "REAL", "DECIMAL", "BOOLEAN"))
+
+    def _period_range(self) -> tuple[int, int]:
+        p = sqlbuild.quote_ident(self.spec.period)
+        row = self.s.run(f"SELECT min({p}) AS lo, max({p}) AS hi FROM {self.s.source.filtered()} AS src").to_pylist()[0]
+        lo, hi = row["lo"], row["hi"]
+        if lo is None:
+            raise EstimationError(self._empty_message())
+        if hi - lo > MAX_PERIOD_SPAN:
+            raise InputError(
+                f"Column '{self.spec.period}' spans {hi - lo + 1} period values; period effects need a compact index "
+                f"(at most {MAX_PERIOD_SPAN + 1}). Use a period number such as months since the first month."
+            )
+        return int(lo), int(hi)
 
     # ------------------------------------------------------------------ SQL
     def _rows(self, design: _Design, files=None, head: bool = False) -> str:
@@ -263,6 +284,8 @@ class _Fit:
             rows = sqlbuild.used_rows_sql(self._rows(design, files, head), self._valid(q))
             return sqlbuild.demeaned_rows_sql(rows, q, n_cl) if demeaned else rows
 
+        if design.twoway:
+            return self._accumulate_twoway(design, params, chunks, used, total)
         if mode != "within" and pilot is None:
             results = moments.run_chunks(self.s, chunks, lambda f: sqlbuild.pooled_moments_sql(used(f), q, "true", total), params)
             rows = [t.to_pylist()[0] for t in results]
@@ -284,15 +307,7 @@ class _Fit:
         dim = q + (1 if mode == "intercept" else 0)
         acc = _Pass(total=np.zeros((dim, dim)), raw_diag=np.zeros(q), n_obs=0, n_units=0)
         for row in rows:
-            acc.total += moments.symmetric(row, "w", dim)
-            acc.raw_diag += [row[f"r{j}"] or 0.0 for j in range(q)]
-            acc.n_obs += int(row["n_obs"])
-            acc.n_units += int(row["n_units"])
-            acc.singletons += int(row["singletons"])
-            acc.singleton_rows += int(row["singleton_rows"])
-            if row["t_min"] is not None:
-                acc.t_min = row["t_min"] if acc.t_min is None else min(acc.t_min, row["t_min"])
-                acc.t_max = row["t_max"] if acc.t_max is None else max(acc.t_max, row["t_max"])
+            self._add_unit_row(acc, row, q, dim)
         if mode == "intercept":
             acc.raw_diag = np.r_[acc.raw_diag[:-1], acc.n_obs, acc.raw_diag[-1]]
         if expand:
@@ -300,10 +315,73 @@ class _Fit:
             acc.pilot = pilot
         return acc
 
+    def _accumulate_twoway(self, design: _Design, params: dict, chunks, used, total: str) -> _Pass:
+        """Unit and period effects: the cross-product over (regressors, period indicators
+        but the first, outcome) in the unit-demeaned space, from one pass (ESTIMATION.md):
+        D'Z = per-period sums of z minus, per presence pattern, the sums of unit means;
+        D'D = diag(n_t) - sum over patterns of (sum 1/n_i) c c'."""
+        q = len(design.columns)
+        first, last = self._period_range()
+        tables = moments.run_chunks(self.s, chunks, lambda f: sqlbuild.twoway_pass_sql(used(f), q, first, last, total), params)
+        acc = _Pass(total=np.zeros((q, q)), raw_diag=np.zeros(q), n_obs=0, n_units=0)
+        patterns: dict[str, np.ndarray] = {}
+        periods: dict[int, np.ndarray] = {}
+        for table in tables:
+            for row in table.to_pylist():
+                if row["kind"] == "total":
+                    self._add_unit_row(acc, row, q, q)
+                elif row["kind"] == "pattern":
+                    vec = np.array([row["pattern_units"], row["inv_n"]] + [row[f"m{j}"] for j in range(q)], dtype=float)
+                    patterns[row["pattern"]] = patterns.get(row["pattern"], 0) + vec
+                else:
+                    vec = np.array([row["period_n"]] + [row[f"s{j}"] for j in range(q)], dtype=float)
+                    periods[row["period"]] = periods.get(row["period"], 0) + vec
+        values = sorted(periods)
+        index = {v: i for i, v in enumerate(values)}
+        n_t = np.array([periods[v][0] for v in values])
+        sums = np.array([periods[v][1:] for v in values])
+        presence = np.zeros((len(patterns), len(values)))
+        weights, mean_sums = np.zeros(len(patterns)), np.zeros((len(patterns), q))
+        for r, (bits, vec) in enumerate(patterns.items()):
+            for offset in (i for i, b in enumerate(bits) if b == "1"):
+                presence[r, index[first + offset]] = 1.0
+            weights[r], mean_sums[r] = vec[1], vec[2:]
+        dup = sum(int(vec[0]) for bits, vec in patterns.items() if abs(bits.count("1") * vec[1] - vec[0]) > 1e-9 * vec[0])
+        if dup:
+            self._duplicates(reason="unit and period effects")
+        dz = sums - presence.T @ mean_sums  # D'Z (periods x q)
+        dd = np.diag(n_t) - presence.T @ (weights[:, None] * presence)  # D'D
+        eff = list(range(1, len(values)))  # the first period is the base
+        kx, e = q - 1, len(eff)
+        full = np.zeros((kx + e + 1, kx + e + 1))
+        w = acc.total
+        full[:kx, :kx] = w[:kx, :kx]
+        full[:kx, -1] = full[-1, :kx] = w[:kx, -1]
+        full[-1, -1] = w[-1, -1]
+        full[kx:kx + e, :kx] = dz[eff, :kx]
+        full[:kx, kx:kx + e] = dz[eff, :kx].T
+        full[kx:kx + e, kx:kx + e] = dd[np.ix_(eff, eff)]
+        full[kx:kx + e, -1] = full[-1, kx:kx + e] = dz[eff, -1]
+        acc.total = full
+        acc.raw_diag = np.r_[acc.raw_diag[:kx], n_t[eff], acc.raw_diag[-1]]
+        acc.periods = [values[i] for i in eff]
+        return acc
+
+    def _add_unit_row(self, acc: _Pass, row: dict, q: int, dim: int) -> None:
+        acc.total += moments.symmetric(row, "w", dim)
+        acc.raw_diag += [row[f"r{j}"] or 0.0 for j in range(q)]
+        acc.n_obs += int(row["n_obs"])
+        acc.n_units += int(row["n_units"])
+        acc.singletons += int(row["singletons"])
+        acc.singleton_rows += int(row["singleton_rows"])
+        if row["t_min"] is not None:
+            acc.t_min = row["t_min"] if acc.t_min is None else min(acc.t_min, row["t_min"])
+            acc.t_max = row["t_max"] if acc.t_max is None else max(acc.t_max, row["t_max"])
+
     def _pilot(self, design: _Design, params: dict) -> np.ndarray | None:
         """Coefficients from the first rows, the centre of the one-pass meat expansion;
         None when the model is too large for it or clusters are not units."""
-        if self._cluster_plan() != "unit":
+        if self._cluster_plan() != "unit" or design.twoway:
             return None
         q = len(design.columns)
         k = q - 1 + (1 if self._mode() == "intercept" else 0)
@@ -316,40 +394,69 @@ class _Fit:
         return np.linalg.lstsq(h, g, rcond=None)[0]
 
     # ------------------------------------------------------------------ score pass
-    def _sql_meats(self, design: _Design, params: dict, coef: np.ndarray, kept_intercept: bool):
+    def _score_params(self, design: _Design, params: dict, acc: _Pass, sol, intercept: bool) -> dict:
+        """Shifts, coefficients and (two-way) period effects with their projections Gamma."""
+        q = len(design.columns)
+        kx = q - 1
+        p = dict(params)
+        p.update({f"b{j}": float(sol.coef[j]) for j in range(kx)})
+        if intercept:
+            p["b_one"] = float(sol.coef[kx])
+        if design.twoway and acc.periods:
+            e = len(acc.periods)
+            kept = np.flatnonzero(sol.kept[kx:kx + e])
+            dd = acc.total[kx:kx + e, kx:kx + e][np.ix_(kept, kept)]
+            dx = acc.total[kx:kx + e, :kx][kept]
+            gamma_proj = np.zeros((e, kx))
+            if kept.size:
+                gamma_proj[kept] = np.linalg.lstsq(dd, dx, rcond=None)[0]
+            for i, value in enumerate(acc.periods):
+                p[f"t{i}"] = int(value)
+                p[f"g{i}"] = float(sol.coef[kx + i])
+                p.update({f"G{i}_{j}": float(gamma_proj[i, j]) for j in range(kx)})
+        return p
+
+    def _meats(self, design: _Design, params: dict, acc: _Pass, sol, intercept: bool, chunks, nested: bool):
+        """Meats over the score columns (regressors [and constant]) and cluster counts."""
         spec = self.spec
         q = len(design.columns)
+        k = q - 1 + (1 if intercept else 0)
         demean = spec.estimator == "within"
-        k = q - 1 + (1 if kept_intercept else 0)
-        p = dict(params)
-        for j in range(q - 1):
-            p[f"b{j}"] = float(coef[j])
-        if kept_intercept:
-            p["b_one"] = float(coef[q - 1])
-        used = sqlbuild.used_rows_sql(self._rows(design), self._valid(q))
-        n_cl = len(spec.cluster) if spec.se == "cluster" else 0
+        n_periods = len(acc.periods) if design.twoway else 0
+        p = self._score_params(design, params, acc, sol, intercept)
+
+        def used(files):
+            return sqlbuild.used_rows_sql(self._rows(design, files), self._valid(q))
+
+        if spec.se == "cluster" and len(spec.cluster) == 1 and (spec.cluster[0] == spec.unit or nested):
+            by_unit = spec.cluster[0] == spec.unit
+            total = moments.sum_function(chunks)
+            make = lambda f: sqlbuild.unit_scores_sql(used(f), q, intercept, demean, n_periods, by_unit, total)  # noqa: E731
+            tables = moments.run_chunks(self.s, chunks, make, p)
+            if by_unit:
+                rows = [t.to_pylist()[0] for t in tables]
+                return [sum(moments.symmetric(r, "o", k) for r in rows)], [sum(int(r["n_groups"]) for r in rows)]
+            groups: dict[str, np.ndarray] = {}
+            for t in tables:
+                for r in t.to_pylist():
+                    groups[r["g"]] = groups.get(r["g"], 0) + np.array([r[f"e{i}"] for i in range(k)], dtype=float)
+            scores = np.array([groups[g] for g in sorted(groups)]) if groups else np.zeros((0, k))
+            return [scores.T @ scores], [len(groups)]
+        all_rows = used(None)
         if spec.se == "hc1":
-            sql = sqlbuild.residual_moments_sql(used, q, demean, kept_intercept, n_cl)
-            row = self.s.run(sql, p).to_pylist()[0]
-            meat = np.zeros((k, k))
-            for i in range(k):
-                for j in range(i, k):
-                    meat[i, j] = meat[j, i] = row[f"h{i}_{j}"] or 0.0
-            return [meat], []
-        sql = sqlbuild.cluster_scores_sql(used, q, demean, kept_intercept, n_cl)
-        out, counts = [], []
-        for row in self.s.run(sql, p).to_pylist():
-            meat = np.zeros((k, k))
-            for i in range(k):
-                for j in range(i, k):
-                    meat[i, j] = meat[j, i] = row[f"o{i}_{j}"] or 0.0
-            out.append((row["gid"], meat, row["n_groups"]))
-        # GROUPING(c0, c1): 1 = grouped by c1 only... order sets as (c0, c1, both)
-        if n_cl == 1:
-            return [out[0][1]], [out[0][2]]
-        by_gid = {gid: (m, n) for gid, m, n in out}
-        order = [1, 2, 0]  # GROUPING bits: c0 only -> 01, c1 only -> 10, both -> 00
-        return [by_gid[g][0] for g in order], [by_gid[g][1] for g in order]
+            row = self.s.run(sqlbuild.residual_moments_sql(all_rows, q, intercept, demean, n_periods), p).to_pylist()[0]
+            return [moments.symmetric(row, "h", k)], []
+        n_cl = len(spec.cluster)
+        out = {r["gid"]: (moments.symmetric(r, "o", k), int(r["n_groups"]))
+               for r in self.s.run(sqlbuild.cluster_scores_sql(all_rows, q, intercept, demean, n_periods, n_cl), p).to_pylist()}
+        order = [0] if n_cl == 1 else [1, 2, 0]  # GROUPING(c0, c1): c0 only 01, c1 only 10, both 00
+        return [out[g][0] for g in order], [out[g][1] for g in order]
+
+    def _nested(self, design: _Design, params: dict) -> bool:
+        """Is the (single, non-unit) cluster column constant within every unit?"""
+        q = len(design.columns)
+        used = sqlbuild.used_rows_sql(self._rows(design), self._valid(q))
+        return int(self.s.run(sqlbuild.nesting_sql(used, 0), params).column("mixed")[0].as_py()) == 0
 
     # ------------------------------------------------------------------ run
     def run(self) -> FitResult:
@@ -369,7 +476,7 @@ class _Fit:
         if spec.estimator == "within" and ratio > CANCELLATION_LIMIT:
             acc = self._accumulate(design, params, chunks, demeaned=True, pilot=pilot)
             accumulation = "two passes, unit means subtracted in SQL"
-        return self._finish(design, shifts, params, acc, accumulation)
+        return self._finish(design, shifts, params, acc, accumulation, chunks)
 
     def _cancellation(self, acc: _Pass) -> float:
         diag = np.diag(acc.total)
@@ -410,23 +517,24 @@ class _Fit:
         out.pop("filtered_out")
         return out
 
-    def _duplicates(self) -> None:
+    def _duplicates(self, reason: str = "First differences and lags") -> None:
         spec = self.spec
         sql = sqlbuild.duplicate_keys_sql(self.s.source.filtered(), spec.unit, spec.period)
         rows = self.s.run(sql).to_pylist()
         shown = ", ".join(f"({r[spec.unit]}, {r[spec.period]})" for r in rows)
         raise InputError(
             f"Columns '{spec.unit}' and '{spec.period}' in {self.s.source.label} have duplicate keys, for example {shown}. "
-            "First differences and lags need one row per unit and period: filter or aggregate the duplicates."
+            f"{reason[0].upper() + reason[1:]} need one row per unit and period: filter or aggregate the duplicates."
         )
 
-    def _finish(self, design: _Design, shifts, params, acc: _Pass, accumulation: str) -> FitResult:
+    def _finish(self, design: _Design, shifts, params, acc: _Pass, accumulation: str, chunks) -> FitResult:
         spec = self.spec
         mode = self._mode()
         dim = acc.total.shape[0]
         k = dim - 1
-        labels = list(design.labels) + (["(intercept)"] if mode == "intercept" else [])
-        is_effect = list(design.is_effect) + ([False] if mode == "intercept" else [])
+        effect_labels = [f"{spec.period}[{v}]" for v in acc.periods]
+        labels = list(design.labels) + effect_labels + (["(intercept)"] if mode == "intercept" else [])
+        is_effect = list(design.is_effect) + [True] * len(effect_labels) + ([False] if mode == "intercept" else [])
         h, g, yy = acc.total[:k, :k], acc.total[:k, k], acc.total[k, k]
         terms_dropped: dict[str, str] = {}
         zero_var = np.zeros(k, dtype=bool)
@@ -455,7 +563,7 @@ class _Fit:
         n_obs = acc.n_obs
         n_kept = int(sol.kept.sum())
         absorbed = acc.n_units if spec.estimator == "within" else 0
-        var = self._variance(design, params, acc, sol, rss, n_obs, n_kept, absorbed, mode)
+        var = self._variance(design, params, acc, sol, rss, n_obs, n_kept, absorbed, mode, chunks)
         vcov = var.vcov
         estimate = coef.copy()
         if mode == "intercept":
@@ -513,34 +621,44 @@ class _Fit:
             where=self.s.source.where, warnings=tuple(self.notes),
         )
 
-    def _variance(self, design, params, acc: _Pass, sol, rss, n_obs, n_kept, absorbed, mode) -> variance.Variance:
+    def _variance(self, design, params, acc: _Pass, sol, rss, n_obs, n_kept, absorbed, mode, chunks) -> variance.Variance:
         spec = self.spec
-        inverse = sol.inverse
         if spec.se == "iid":
-            return variance.iid(inverse, rss, n_obs, n_kept, absorbed)
-        kept_intercept = mode == "intercept"
+            return variance.iid(sol.inverse, rss, n_obs, n_kept, absorbed)
+        intercept = mode == "intercept"
+        k = len(design.columns) - 1 + (1 if intercept else 0)  # score columns: regressors [, constant]
+        inverse = sol.inverse[:k, :k]  # two-way: (X''X'')^-1, the regressor block (Frisch-Waugh-Lovell)
         if spec.se == "hc1":
-            meats, _ = self._sql_meats(design, params, sol.coef, kept_intercept)
-            return variance.hc1(inverse, meats[0], n_obs, n_kept, absorbed)
-        plan = self._cluster_plan()
-        if plan == "unit" and acc.expansion is not None:
-            k = len(sol.coef)
-            meat = np.zeros((k, k))
-            worst = 0.0
+            meats, _ = self._meats(design, params, acc, sol, intercept, chunks, nested=False)
+            return _embed(variance.hc1(inverse, meats[0], n_obs, n_kept, absorbed), len(sol.coef))
+        if len(spec.cluster) == 1 and spec.cluster[0] == spec.unit and acc.expansion is not None:
+            meat, worst = np.zeros((k, k)), 0.0
             for row in acc.expansion:
                 part, ratio = moments.expanded_meat(row, k, acc.pilot, sol.coef)
-                meat += part
-                worst = max(worst, ratio)
+                meat, worst = meat + part, max(worst, ratio)
             if worst < EXPANSION_LIMIT:
                 # unit effects are nested in unit clusters: not counted in K'
-                return variance.cluster(inverse, meat, acc.n_units, n_obs, n_kept)
+                return _embed(variance.cluster(inverse, meat, acc.n_units, n_obs, n_kept), len(sol.coef))
             self.notes.append("the one-pass cluster meat cancelled too many digits; scores were recomputed in a second pass")
-        meats, counts = self._sql_meats(design, params, sol.coef, kept_intercept)
         nested = [c == spec.unit for c in spec.cluster]
+        if len(spec.cluster) == 1 and not nested[0]:
+            nested[0] = self._nested(design, params)
+        meats, counts = self._meats(design, params, acc, sol, intercept, chunks, nested=nested[0])
         if len(spec.cluster) == 1:
-            return variance.cluster(inverse, meats[0], counts[0], n_obs, n_kept + (0 if nested[0] else absorbed))
+            v = variance.cluster(inverse, meats[0], counts[0], n_obs, n_kept + (0 if nested[0] else absorbed))
+            return _embed(v, len(sol.coef))
         kp = (n_kept + (0 if nested[0] else absorbed), n_kept + (0 if nested[1] else absorbed), n_kept + absorbed)
-        return variance.two_way(inverse, tuple(meats), tuple(counts), n_obs, kp)
+        return _embed(variance.two_way(inverse, tuple(meats), tuple(counts), n_obs, kp), len(sol.coef))
+
+
+def _embed(var: variance.Variance, dim: int) -> variance.Variance:
+    """Place a variance over the leading score columns into the full coefficient layout."""
+    if var.vcov.shape[0] == dim:
+        return var
+    full = np.zeros((dim, dim))
+    k = var.vcov.shape[0]
+    full[:k, :k] = var.vcov
+    return variance.Variance(full, var.kind, var.df, var.small_sample_factor, var.n_clusters, var.clipped_eigenvalues)
 
 
 def _period_key(value: str):

@@ -297,55 +297,114 @@ def duplicate_keys_sql(source: str, unit: str, period: str, limit: int = 5) -> s
     )
 
 
-def _centered(q: int, demean: bool, intercept: bool, n_clusters: int) -> tuple[str, str]:
-    """x~_j and u~ from shifted rows: z_j (minus unit means when demeaning)."""
+def period_join_sql(n_periods: int, k: int) -> str:
+    """LEFT JOIN to a VALUES list of period effects: period $t_i, effect $g_i and the
+    projection of each regressor on the period indicators $G_i_j (base period absent: 0)."""
+    if n_periods == 0:
+        return ""
+    rows = ", ".join("(" + ", ".join([f"$t{i}", f"$g{i}"] + [f"$G{i}_{j}" for j in range(k)]) + ")" for i in range(n_periods))
+    names = ", ".join(["k_period", "g"] + [f"G{j}" for j in range(k)])
+    return f"LEFT JOIN (VALUES {rows}) AS pe({names}) ON r.k_period = pe.k_period"
+
+
+def adjusted_columns(q: int, intercept: bool, periods: bool) -> str:
+    """a_j = z_j - Gamma_t,j (regressor net of its period-effect projection) and the raw
+    residual e = y - x'b - gamma_t - b_one, from shifted design columns."""
     k = q - 1
+    cols = [f"r.{_z(j)} - coalesce(pe.G{j}, 0) AS a{j}" if periods else f"r.{_z(j)} AS a{j}" for j in range(k)]
+    resid = f"r.{_z(k)}" + "".join(f" - $b{j} * r.{_z(j)}" for j in range(k))
+    if periods:
+        resid += " - coalesce(pe.g, 0)"
+    if intercept:
+        cols.append("1.0 AS a_one")
+        resid += " - $b_one"
+    return ", ".join(cols) + f", {resid} AS e"
+
+
+def _a_names(q: int, intercept: bool) -> list[str]:
+    return [f"a{j}" for j in range(q - 1)] + (["a_one"] if intercept else [])
+
+
+def centered_ctes(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int) -> str:
+    """CTEs ending in ``centered``: per row x~_j AS x_j and u~ AS u (unit-demeaned under
+    within, after removing period effects), with the unit and cluster keys."""
+    keys = ["k_unit", "k_period"] + [f"k_c{i}" for i in range(n_clusters)]
+    names = _a_names(q, intercept)
+    adjusted = (f"adjusted AS (SELECT {', '.join('r.' + k for k in keys)}, "
+                f"{adjusted_columns(q, intercept, n_periods > 0)} FROM used AS r {period_join_sql(n_periods, q - 1)})")
+    parts = [f"used AS ({used})", adjusted]
     if demean:
-        xs = [f"r.{_z(j)} - m.m{j} AS x{j}" for j in range(k)]
-        resid = f"(r.{_z(k)} - m.m{k})" + "".join(f" - $b{j} * (r.{_z(j)} - m.m{j})" for j in range(k))
-        means = ", ".join(f"avg({_z(j)}) AS m{j}" for j in range(q))
-        join = f"JOIN (SELECT k_unit, {means} FROM used GROUP BY k_unit HAVING count(*) > 1) AS m USING (k_unit)"
+        means = ", ".join(f"avg({a}) AS m_{a}" for a in names)
+        parts.append(f"means AS (SELECT k_unit, {means}, avg(e) AS m_e FROM adjusted GROUP BY k_unit HAVING count(*) > 1)")
+        xs = ", ".join(f"{a} - m_{a} AS x{i}" for i, a in enumerate(names))
+        parts.append(f"centered AS (SELECT {', '.join(keys)}, {xs}, e - m_e AS u FROM adjusted JOIN means USING (k_unit))")
     else:
-        xs = [f"r.{_z(j)} AS x{j}" for j in range(k)]
-        resid = f"r.{_z(k)}" + "".join(f" - $b{j} * r.{_z(j)}" for j in range(k))
-        if intercept:
-            xs.append("1.0 AS x_one")
-            resid += " - $b_one"
-        join = ""
-    keys = "r.k_unit, r.k_period, " + "".join(f"r.k_c{i}, " for i in range(n_clusters))
-    return keys + ", ".join(xs) + f", {resid} AS u", join
-
-
-def _x_names(q: int, intercept: bool) -> list[str]:
-    return [f"x{j}" for j in range(q - 1)] + (["x_one"] if intercept else [])
+        xs = ", ".join(f"{a} AS x{i}" for i, a in enumerate(names))
+        parts.append(f"centered AS (SELECT {', '.join(keys)}, {xs}, e AS u FROM adjusted)")
+    return ",\n".join(parts)
 
 
 def used_rows_sql(rows: str, valid: str) -> str:
     return f"SELECT * FROM ({rows}) AS r WHERE {valid}"
 
 
-def cluster_scores_sql(used: str, q: int, demean: bool, intercept: bool, n_clusters: int) -> str:
-    """Meat of the cluster-robust sandwich for each cluster set (one-way: c0; two-way:
-    c0, c1 and their intersection)."""
-    centered, join = _centered(q, demean, intercept, n_clusters)
-    xs = _x_names(q, intercept)
-    scores = ", ".join(f"sum({x} * u) AS g{i}" for i, x in enumerate(xs))
-    outer = ", ".join(f"sum(g{i} * g{j}) AS o{i}_{j}" for i in range(len(xs)) for j in range(i, len(xs)))
+def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int) -> str:
+    """Meat for each cluster set (one-way: c0; two-way: c0, c1 and their intersection)."""
+    k = q - 1 + (1 if intercept else 0)
+    scores = ", ".join(f"sum(x{i} * u) AS g{i}" for i in range(k))
+    outer = ", ".join(f"sum(g{i} * g{j}) AS o{i}_{j}" for i in range(k) for j in range(i, k))
     if n_clusters == 1:
         sets, key = "GROUPING SETS ((k_c0))", "GROUPING(k_c0) AS gid"
     else:
         sets, key = "GROUPING SETS ((k_c0), (k_c1), (k_c0, k_c1))", "GROUPING(k_c0, k_c1) AS gid"
-    return render(
-        "cluster_scores", rows=used, centered=centered, join=join, sets_key=key, sets=sets, scores=scores, outer=outer
-    )
+    centered = centered_ctes(used, q, intercept, demean, n_periods, n_clusters)
+    return render("cluster_scores", centered=centered, sets_key=key, sets=sets, scores=scores, outer=outer)
 
 
-def residual_moments_sql(used: str, q: int, demean: bool, intercept: bool, n_clusters: int) -> str:
-    centered, join = _centered(q, demean, intercept, n_clusters)
-    xs = _x_names(q, intercept)
-    sums = [f"sum(u * u * {a} * {b}) AS h{i}_{j}" for i, a in enumerate(xs) for j, b in enumerate(xs) if j >= i]
-    sums.append("sum(u * u) AS rss")
-    return render("residual_moments", rows=used, centered=centered, join=join, sums=", ".join(sums))
+def residual_moments_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int) -> str:
+    k = q - 1 + (1 if intercept else 0)
+    sums = ", ".join(f"sum(u * u * x{i} * x{j}) AS h{i}_{j}" for i in range(k) for j in range(i, k))
+    return render("residual_moments", centered=centered_ctes(used, q, intercept, demean, n_periods, 0), sums=sums)
+
+
+def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, by_unit: bool, total: str) -> str:
+    """Cluster scores from per-unit sums (clusters that are units or unions of units)."""
+    names = _a_names(q, intercept)
+    k = len(names)
+    unit_sums = ", ".join(f"sum({a} * e) AS ae{i}, sum({a}) AS sa{i}" for i, a in enumerate(names))
+    if demean:
+        scores = ", ".join(f"ae{i} - sa{i} * se / n AS e{i}" for i in range(k))
+    else:
+        scores = ", ".join(f"ae{i} AS e{i}" for i in range(k))
+    outer = ", ".join(f"{total}(e{i} * e{j}) AS o{i}_{j}" for i in range(k) for j in range(i, k))
+    if by_unit:
+        final = f"SELECT count(*) AS n_groups, {outer} FROM scores" + (" WHERE true" if not demean else "")
+        pick = "k_unit"
+    else:
+        summed = ", ".join(f"{total}(e{i}) AS e{i}" for i in range(k))
+        final = f"SELECT CAST(g AS VARCHAR) AS g, {summed} FROM scores GROUP BY g ORDER BY g"
+        pick = "min(k_c0)"
+    adjusted = adjusted_columns(q, intercept, n_periods > 0)
+    if not by_unit:
+        adjusted = "r.k_c0, " + adjusted
+    return render("unit_scores", used=used, adjusted=adjusted, period_join=period_join_sql(n_periods, q - 1),
+                  pick=pick, unit_sums=unit_sums, scores=scores, final=final)
+
+
+def twoway_pass_sql(used: str, q: int, first: int, last: int, total: str = "sum") -> str:
+    """Unit + period effects in one pass: per-unit totals, presence patterns, period sums."""
+    moments = ", ".join(_moment_aggregates(q, total))
+    totals = unit_pass_sql("SELECT * FROM unit_rows", q, "within", False, total)
+    means = ", ".join(f"{total}(s{j} / n) AS m{j}" for j in range(q))
+    sums = ", ".join(f"s{j}" for j in range(q))
+    return render("twoway_pass", used=used, moments=moments, first=str(int(first)), last=str(int(last)),
+                  totals=totals, means=means, sums=sums)
+
+
+def nesting_sql(used: str, column: int) -> str:
+    """Units whose rows carry more than one value of cluster column k_c{column}."""
+    return (f"SELECT count(*) AS mixed FROM (SELECT k_unit FROM ({used}) AS r GROUP BY k_unit "
+            f"HAVING count(DISTINCT k_c{int(column)}) > 1) AS m")
 
 
 def indicator_sql(expr: str, level: str) -> str:

@@ -1,17 +1,13 @@
--- cluster_scores: the meat of the sandwich, sum over clusters of s_g s_g' with
--- s_g = sum of x~ u~ over the cluster's rows, given the coefficients.
--- inputs:  {{rows}}      design or differenced rows, already restricted to used rows;
---          {{centered}}  select list making x~ (z_j, or z_j minus the unit mean) AS x_j and
---                        the residual u~ AS u, from rows r joined to unit means m when needed;
---          {{join}}      nothing, or the join to unit means;
+-- cluster_scores: the meat of the sandwich for clusters that cut across units, over all
+-- rows: sum over clusters of s_g s_g', s_g = sum of x~ u~ over the cluster's rows.
+-- inputs:  {{centered}}  the CTEs making x~ AS x_j and u~ AS u per row (sqlbuild.centered_ctes);
 --          {{sets_key}}  GROUPING(cluster columns) AS gid, naming the set of each group;
 --          {{sets}}      GROUPING SETS over the cluster columns;
---          {{scores}}    sum(x_j * u) AS g_j for each design column;
---          {{outer}}     sum(g_j * g_l) over the groups of each set, and count(*) AS n_groups.
--- params:  $b0.. coefficients; $s0.. shifts.
+--          {{scores}}    sum(x_j * u) AS g_j for each coefficient;
+--          {{outer}}     sum(g_j * g_l) AS o_j_l over the groups of each set.
+-- params:  $s_j shifts, $b_j coefficients, period values and effects.
 -- output:  one row per grouping set: gid, n_groups and the meat's upper triangle.
-WITH used AS ({{rows}}),
-centered AS (SELECT {{centered}} FROM used AS r {{join}}),
+WITH {{centered}},
 per_group AS (SELECT {{sets_key}}, {{scores}} FROM centered GROUP BY {{sets}})
 SELECT gid, count(*) AS n_groups, {{outer}}
 FROM per_group
