@@ -230,9 +230,10 @@ class _Fit:
         return int(lo), int(hi)
 
     # ------------------------------------------------------------------ SQL
-    def _rows(self, design: _Design, files=None, head: bool = False) -> str:
+    def _rows(self, design: _Design, chunk: moments.Chunk | None = None, head: bool = False) -> str:
         spec = self.spec
-        source = self.s.source.filtered(files)
+        chunk = chunk or moments.Chunk()
+        source = self.s.source.filtered(chunk.files, chunk.unit_range(spec.unit))
         if head:
             source = sqlbuild.head_sql(source, PROBE_ROWS)
         rows = sqlbuild.design_rows_sql(source, spec.unit, spec.period, list(spec.cluster), design.columns, spec.period_step)
@@ -387,7 +388,7 @@ class _Fit:
         k = q - 1 + (1 if self._mode() == "intercept" else 0)
         if k > MAX_EXPANDED:
             return None
-        acc = self._accumulate(design, params, [None], demeaned=False, pilot=np.zeros(k), head=True)
+        acc = self._accumulate(design, params, [moments.Chunk()], demeaned=False, pilot=np.zeros(k), head=True)
         h, g = acc.total[:k, :k], acc.total[:k, k]
         if not np.isfinite(h).all() or acc.n_obs == 0:
             return np.zeros(k)
@@ -442,7 +443,7 @@ class _Fit:
                     groups[r["g"]] = groups.get(r["g"], 0) + np.array([r[f"e{i}"] for i in range(k)], dtype=float)
             scores = np.array([groups[g] for g in sorted(groups)]) if groups else np.zeros((0, k))
             return [scores.T @ scores], [len(groups)]
-        all_rows = used(None)
+        all_rows = used(moments.Chunk())
         if spec.se == "hc1":
             row = self.s.run(sqlbuild.residual_moments_sql(all_rows, q, intercept, demean, n_periods), p).to_pylist()[0]
             return [moments.symmetric(row, "h", k)], []

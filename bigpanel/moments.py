@@ -30,50 +30,68 @@ from __future__ import annotations
 import os
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pyarrow.parquet as pq
 
-from .source import Session, parquet_unit_ranges
+from . import sqlbuild
+from .source import Session, parquet_row_groups
 
-CHUNK_ROWS = 1_500_000  # rows per chunk query: small enough for a cache-friendly GROUP BY
+CHUNK_ROWS = 500_000  # rows per chunk query: small enough for a cache-friendly GROUP BY
 
 
-def plan_chunks(session: Session, unit: str) -> list[tuple[str, ...] | None]:
-    """Groups of Parquet files whose unit ranges do not overlap, or ``[None]`` (one chunk).
+@dataclass(frozen=True)
+class Chunk:
+    """Files to read and the half-open range of units [low, high) to keep (None: open)."""
 
-    Uses only the files' footer statistics. Files whose unit ranges overlap go in the
-    same group, so every unit lies wholly inside one chunk.
+    files: tuple[str, ...] | None = None
+    low: Any = None
+    high: Any = None
+
+    def unit_range(self, unit: str) -> tuple[str, Any, Any] | None:
+        return None if self.low is None and self.high is None else (unit, self.low, self.high)
+
+
+def plan_chunks(session: Session, unit: str) -> list[Chunk]:
+    """Split a Parquet source into unit ranges that each read few row groups.
+
+    When the row groups' unit ranges (footer statistics) follow one another, as in an
+    extract sorted by unit, consecutive row groups are cut into chunks of about
+    CHUNK_ROWS rows at unit boundaries; each chunk keeps the units in [low, high), so a
+    unit split across row groups still lies wholly in one chunk, and DuckDB skips the
+    row groups outside the range. Otherwise the whole source is one chunk.
     """
     src = session.source
-    if src.kind != "parquet" or len(src.files) < 2:
-        return [None]
+    whole = [Chunk()]
+    if src.kind != "parquet":
+        return whole
     try:
-        ranges = parquet_unit_ranges(src.files, unit)
+        groups = parquet_row_groups(src.files, unit)
     except Exception:  # noqa: BLE001 - unreadable footers are reported by the scan itself
-        return [None]
-    if ranges is None:
-        return [None]
-    stats = [(r, f) for r, f in zip(ranges, src.files) if r is not None]
+        return whole
+    if not groups or sum(g[1] for g in groups) < 2 * CHUNK_ROWS:
+        return whole
     try:
-        stats.sort(key=lambda item: item[0][0])
+        groups.sort(key=lambda g: (g[2], g[3]))
+        sorted_ok = all(a[3] <= b[2] for a, b in zip(groups, groups[1:]))
+        sqlbuild.value_literal(groups[0][2])
     except TypeError:
-        return [None]
-    rows = {f: pq.read_metadata(f).num_rows for _, f in stats}
-    groups: list[list[str]] = []
-    group_hi, group_rows = None, 0
-    for (lo, hi), f in stats:
-        overlaps = group_hi is not None and lo <= group_hi
-        if groups and (overlaps or group_rows + rows[f] <= CHUNK_ROWS):
-            groups[-1].append(f)
-            group_hi = max(group_hi, hi)
-            group_rows += rows[f]
-        else:
-            groups.append([f])
-            group_hi, group_rows = hi, rows[f]
-    if len(groups) < 2:
-        return [None]
-    return [tuple(g) for g in groups]
+        return whole
+    if not sorted_ok:
+        return whole
+    chunks: list[Chunk] = []
+    files: list[str] = []
+    rows, low = 0, None
+    for i, (f, n, lo, hi) in enumerate(groups):
+        if rows >= CHUNK_ROWS and lo > groups[i - 1][3]:
+            chunks.append(Chunk(tuple(dict.fromkeys(files)), low, lo))
+            files, rows, low = [], 0, lo
+        files.append(f)
+        rows += n
+    chunks.append(Chunk(tuple(dict.fromkeys(files)), low, None))
+    return chunks if len(chunks) > 1 else whole
 
 
 def sum_function(chunks: Sequence) -> str:
@@ -83,8 +101,8 @@ def sum_function(chunks: Sequence) -> str:
 
 def run_chunks(
     session: Session,
-    chunks: Sequence[tuple[str, ...] | None],
-    make_sql: Callable[[tuple[str, ...] | None], str],
+    chunks: Sequence[Chunk],
+    make_sql: Callable[[Chunk], str],
     params: dict,
 ) -> list:
     """Run one query per chunk; return their Arrow results in chunk order."""

@@ -43,6 +43,7 @@ class Engine:
             "SET enable_progress_bar = false",
             "SET enable_progress_bar_print = false",
             "SET preserve_insertion_order = true",
+            "SET parquet_metadata_cache = true",
         ]
         if self.threads is not None:
             if int(self.threads) < 1:
@@ -87,9 +88,17 @@ class Source:
             return sqlbuild.quote_ident(_FRAME_VIEW)
         return sqlbuild.query_relation(self.query or "")
 
-    def filtered(self, files: Sequence[str] | None = None) -> str:
-        """A subquery of the source's rows after the row filter."""
-        where = f" WHERE ({self.where})" if self.where else ""
+    def filtered(self, files: Sequence[str] | None = None, unit_range: tuple[str, Any, Any] | None = None) -> str:
+        """A subquery of the source's rows after the row filter; ``unit_range`` =
+        (column, low, high) keeps low <= column < high (either bound may be None)."""
+        conditions = [f"({self.where})"] if self.where else []
+        if unit_range is not None:
+            column, low, high = unit_range
+            if low is not None:
+                conditions.append(f"{sqlbuild.quote_ident(column)} >= {sqlbuild.value_literal(low)}")
+            if high is not None:
+                conditions.append(f"{sqlbuild.quote_ident(column)} < {sqlbuild.value_literal(high)}")
+        where = f" WHERE {' AND '.join(conditions)}" if conditions else ""
         return f"(SELECT * FROM {self.relation(files)}{where})"
 
     def connect(self) -> duckdb.DuckDBPyConnection:
@@ -370,22 +379,22 @@ def _find_corrupt_parquet(files: Sequence[str]) -> tuple[str, str] | None:
     return None
 
 
-def parquet_unit_ranges(files: Sequence[str], column: str) -> list[tuple[Any, Any] | None] | None:
-    """Per-file (min, max) of a column from Parquet footers (None for a file without
-    rows), or None when a file lacks the column or its statistics."""
+def parquet_row_groups(files: Sequence[str], column: str) -> list[tuple[str, int, Any, Any]] | None:
+    """(file, rows, min, max) of a column for every row group with rows, from the
+    Parquet footers; None when a file lacks the column or its statistics."""
     out = []
     for f in files:
         meta = pq.read_metadata(f)
-        names = meta.schema.names
+        names = [meta.schema.column(i).name for i in range(meta.num_columns)]
         if column not in names:
             return None
         idx = names.index(column)
-        lo = hi = None
         for g in range(meta.num_row_groups):
-            stats = meta.row_group(g).column(idx).statistics
+            group = meta.row_group(g)
+            if group.num_rows == 0:
+                continue
+            stats = group.column(idx).statistics
             if stats is None or not stats.has_min_max:
                 return None
-            lo = stats.min if lo is None or stats.min < lo else lo
-            hi = stats.max if hi is None or stats.max > hi else hi
-        out.append(None if lo is None else (lo, hi))
+            out.append((f, group.num_rows, stats.min, stats.max))
     return out

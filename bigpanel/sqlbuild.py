@@ -29,6 +29,14 @@ def quote_literal(value: str) -> str:
     return "'" + str(value).replace("'", "''") + "'"
 
 
+def value_literal(value) -> str:
+    """A whole number or a string as SQL literal text (used for chunk bounds, which
+    must be literals for DuckDB to skip row groups by their statistics)."""
+    if isinstance(value, bool) or not isinstance(value, (int, str)):
+        raise TypeError(f"no literal form for {type(value).__name__}")
+    return str(int(value)) if isinstance(value, int) else quote_literal(value)
+
+
 def _template_dir() -> Path:
     packaged = resources.files("bigpanel") / "sql"
     if packaged.is_dir():
