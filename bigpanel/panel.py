@@ -3,6 +3,9 @@ within/between split of every numeric column, from a few aggregate-only scans.
 
 The scans (templates ``sql/checkup_*.sql``):
 
+0. ``checkup_shifts``: the mean of each numeric column over the first rows (a tiny read),
+   subtracted in the scans below, so that values far from zero (a large offset) keep
+   their digits and the parallel sums differ from run to run only in the last bits.
 1. ``checkup_periods``: GROUP BY period. Row counts, the distinct periods (from which the
    regular step is found here, in Python, over at most ``MAX_PERIODS`` values), and per
    period the count, mean and sum of squared deviations of each column. The periods are
@@ -46,6 +49,9 @@ WITHIN_SHARE_FLOOR = 1e-12
 Common practice: a relative threshold some thousands of times machine epsilon (2.2e-16)."""
 
 N_DUPLICATE_EXAMPLES = 5
+
+PROBE_ROWS = 20_000
+"""First rows read for the columns' shifts."""
 
 _INTEGER_TYPES = (
     "TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT",
@@ -210,21 +216,19 @@ def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str]
         numeric = [c for c in checked if is_numeric(schema[c])]
         period_value = _period_value(period, kinds)
 
-        by_period = _scan_periods(session, unit, period_value, checked, numeric)
+        shifts = _probe_shifts(session, checked, numeric)
+        by_period = _scan_periods(session, unit, period_value, checked, shifts)
         grid = _period_grid(by_period["period_value"], kinds, session.source.label, period)
         if grid is None:
             raise InputError(_no_rows_message(session.source, unit, period, by_period["n_rows"]))
-        units = _scan_units(session, unit, period, period_value, numeric, grid)
+        units = _scan_units(session, unit, period_value, checked, shifts, grid)
         duplicates: list[tuple[Any, Any, int]] = []
         n_duplicate_keys = 0
         if units["duplicate_rows"]:
             duplicates, n_duplicate_keys = _scan_duplicates(session, unit, period_value)
 
     keyed = by_period["keyed"]
-    column_checks = tuple(
-        _column_check(c, schema[c], j, by_period, units, c in numeric, numeric.index(c) if c in numeric else None)
-        for j, c in enumerate(checked)
-    )
+    column_checks = tuple(_column_check(c, schema[c], j, by_period, units, shifts.get(j)) for j, c in enumerate(checked))
     quartiles = _quartiles(units["periods_per_unit"])
     return PanelReport(
         source=session.source.label,
@@ -306,16 +310,36 @@ def _period_value(period: str, kind: str) -> str:
     return f"CAST({quoted} AS TIMESTAMP)" if kind == "timestamp" else quoted
 
 
+def build_shift_probe(source_sql: str, checked: Sequence[str], numeric: Sequence[int]) -> str:
+    """SQL of the shift probe: c_j for each index j (into ``checked``) in ``numeric``."""
+    means = [f"favg(CAST({sqlbuild.quote_ident(checked[j])} AS DOUBLE)) AS c_{j}" for j in numeric]
+    return sqlbuild.render("checkup_shifts", source=source_sql, means=", ".join(means))
+
+
+def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> dict[int, float]:
+    """Column index -> shift, for the numeric columns (0.0 where the first rows have no value)."""
+    indices = [j for j, c in enumerate(checked) if c in numeric]
+    if not indices:
+        return {}
+    row = session.run(build_shift_probe(session.source.filtered(), checked, indices), {"probe_rows": PROBE_ROWS}).to_pylist()[0]
+    return {j: row[f"c_{j}"] if row[f"c_{j}"] is not None and math.isfinite(row[f"c_{j}"]) else 0.0 for j in indices}
+
+
+def _shifted(name: str, j: int) -> str:
+    return f"(CAST({sqlbuild.quote_ident(name)} AS DOUBLE) - $c_{j})"
+
+
 def build_period_scan(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
-                      numeric: Sequence[str]) -> str:
-    """SQL of the period scan; column j's aggregates are named n_j, mean_j, ss_j, min_j, max_j."""
+                      numeric: Sequence[int]) -> str:
+    """SQL of the period scan. Column j's aggregates are n_j and, for j in ``numeric``
+    (indices into ``checked``), the shifted mean_j and ss_j, and the unshifted min_j, max_j."""
     parts = []
     for j, name in enumerate(checked):
         q = sqlbuild.quote_ident(name)
         parts.append(f"count({q}) AS n_{j}")
-        if name in numeric:
-            v = f"CAST({q} AS DOUBLE)"
-            parts += [f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}", f"min({v}) AS min_{j}", f"max({v}) AS max_{j}"]
+        if j in numeric:
+            v, raw = _shifted(name, j), f"CAST({q} AS DOUBLE)"
+            parts += [f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}", f"min({raw}) AS min_{j}", f"max({raw}) AS max_{j}"]
     return sqlbuild.render(
         "checkup_periods",
         source=source_sql,
@@ -325,10 +349,10 @@ def build_period_scan(source_sql: str, unit: str, period_value: str, checked: Se
     )
 
 
-def _scan_periods(session: Session, unit: str, period_value: str, checked: list[str], numeric: list[str]) -> dict:
-    sql = build_period_scan(session.source.filtered(), unit, period_value, checked, numeric)
+def _scan_periods(session: Session, unit: str, period_value: str, checked: list[str], shifts: dict[int, float]) -> dict:
+    sql = build_period_scan(session.source.filtered(), unit, period_value, checked, list(shifts))
     max_groups = 2 * MAX_PERIODS + 2  # each period twice (with and without a unit), plus NULL periods
-    table = session.run(sql, {"max_groups": max_groups})
+    table = session.run(sql, {"max_groups": max_groups} | _shift_params(shifts))
     n_distinct = len(table.column("period_value").drop_null().unique())
     if table.num_rows >= max_groups or n_distinct > MAX_PERIODS:
         raise InputError(
@@ -420,6 +444,10 @@ def _from_numpy(stamp: np.datetime64, kind: str) -> Any:
     return value.date() if kind == "date" else value
 
 
+def _shift_params(shifts: dict[int, float]) -> dict[str, float]:
+    return {f"c_{j}": float(c) for j, c in shifts.items()}
+
+
 # ---------------------------------------------------------------- scan 2: units
 
 
@@ -434,13 +462,14 @@ def slot_expression(period_value: str, mode: str) -> str:
     return f"CAST(({ordinal} - $first) // $step AS BIGINT)"
 
 
-def build_unit_scan(source_sql: str, unit: str, period_value: str, numeric: Sequence[str], mode: str,
-                    bitmap: bool) -> str:
-    """SQL of the unit scan; column j of ``numeric`` gives within_ss_j and varying_units_j."""
-    values = [f"CAST({sqlbuild.quote_ident(c)} AS DOUBLE) AS v_{j}" for j, c in enumerate(numeric)]
-    per_unit = [f"regr_sxx(v_{j}, v_{j}) AS ss_{j}" for j in range(len(numeric))]
+def build_unit_scan(source_sql: str, unit: str, period_value: str, checked: Sequence[str], numeric: Sequence[int],
+                    mode: str, bitmap: bool) -> str:
+    """SQL of the unit scan; each j in ``numeric`` (indices into ``checked``) gives
+    within_ss_j and varying_units_j."""
+    values = [f"{_shifted(checked[j], j)} AS v_{j}" for j in numeric]
+    per_unit = [f"regr_sxx(v_{j}, v_{j}) AS ss_{j}" for j in numeric]
     totals = [f"fsum(ss_{j}) AS within_ss_{j},\n       count(*) FILTER (WHERE ss_{j} > 0) AS varying_units_{j}"
-              for j in range(len(numeric))]
+              for j in numeric]
     return sqlbuild.render(
         "checkup_units",
         source=source_sql,
@@ -454,10 +483,11 @@ def build_unit_scan(source_sql: str, unit: str, period_value: str, numeric: Sequ
     )
 
 
-def _scan_units(session: Session, unit: str, period: str, period_value: str, numeric: list[str], grid: _Grid) -> dict:
+def _scan_units(session: Session, unit: str, period_value: str, checked: list[str], shifts: dict[int, float],
+                grid: _Grid) -> dict:
     bitmap = grid.n_slots <= BITMAP_MAX_SLOTS
-    sql = build_unit_scan(session.source.filtered(), unit, period_value, numeric, grid.mode, bitmap)
-    params = {"first": grid.first_ordinal, "step": grid.slot_step, "n_periods": grid.n_periods}
+    sql = build_unit_scan(session.source.filtered(), unit, period_value, checked, list(shifts), grid.mode, bitmap)
+    params = {"first": grid.first_ordinal, "step": grid.slot_step, "n_periods": grid.n_periods} | _shift_params(shifts)
     if bitmap:
         params["last_slot"] = grid.n_slots - 1
     row = session.run(sql, params).to_pylist()[0]
@@ -492,13 +522,13 @@ def _scan_duplicates(session: Session, unit: str, period_value: str) -> tuple[li
 # ---------------------------------------------------------------- columns
 
 
-def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, numeric: bool,
-                  k: int | None) -> ColumnCheck:
+def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, shift: float | None) -> ColumnCheck:
+    """Column j's figures; ``shift`` (None for a non-numeric column) was subtracted in the scans."""
     keyed = by_period["keyed"]
     n_rows = by_period["n_rows"][keyed]
     counts = _floats(by_period[f"n_{j}"])[keyed]
     n_missing = int(n_rows.sum() - counts.sum())
-    if not numeric:
+    if shift is None:
         return ColumnCheck(name=name, dtype=dtype, numeric=False, n_missing=n_missing)
     n = float(counts.sum())
     if n == 0:
@@ -511,8 +541,8 @@ def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, n
     # own sums of squares + sum of n_t (mean_t - mean)^2.
     mean = math.fsum(counts * means) / n
     total_ss = math.fsum(within_period) + math.fsum(counts * (means - mean) ** 2)
-    within_ss = float(units[f"within_ss_{k}"] or 0.0)
-    varying = int(units[f"varying_units_{k}"])
+    within_ss = float(units[f"within_ss_{j}"] or 0.0)
+    varying = int(units[f"varying_units_{j}"])
     if total_ss > 0:
         # The two sums come from different scans; clip the rounding that can push a share
         # a few ulps past 0 or 1.
@@ -523,7 +553,7 @@ def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, n
     estimable = varying > 0 and within_share is not None and within_share >= WITHIN_SHARE_FLOOR
     return ColumnCheck(
         name=name, dtype=dtype, numeric=True, n_missing=n_missing,
-        mean=mean,
+        mean=shift + mean,
         std=math.sqrt(total_ss / (n - 1)) if n > 1 else None,
         min=float(np.min(_floats(by_period[f"min_{j}"])[keyed][present])),
         max=float(np.max(_floats(by_period[f"max_{j}"])[keyed][present])),

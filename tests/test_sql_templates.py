@@ -70,10 +70,12 @@ def test_built_scans_bind_in_duckdb(bitmap):
     con = duckdb.connect()
     con.execute('CREATE TABLE t ("order" INTEGER, "a""b" DATE, "sum x" DOUBLE, "select" VARCHAR)')
     source = "(SELECT * FROM t)"
+    checked = ["select", "sum x"]
     scans = [
-        (checkup.build_period_scan(source, "order", '"a""b"', ["sum x", "select"], ["sum x"]), {"max_groups": 10}),
-        (checkup.build_unit_scan(source, "order", '"a""b"', ["sum x"], "month", bitmap),
-         {"first": 0, "step": 1, "n_periods": 1} | ({"last_slot": 0} if bitmap else {})),
+        (checkup.build_shift_probe(source, checked, [1]), {"probe_rows": 3}),
+        (checkup.build_period_scan(source, "order", '"a""b"', checked, [1]), {"max_groups": 10, "c_1": 0.5}),
+        (checkup.build_unit_scan(source, "order", '"a""b"', checked, [1], "month", bitmap),
+         {"first": 0, "step": 1, "n_periods": 1, "c_1": 0.5} | ({"last_slot": 0} if bitmap else {})),
         (checkup.build_duplicate_scan(source, "order", '"a""b"'), {"n_examples": 5}),
     ]
     for sql, params in scans:
