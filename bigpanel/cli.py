@@ -11,11 +11,13 @@ import json
 import os
 import re
 import sys
+import warnings
+from enum import Enum
 from typing import Annotated, Optional
 
 import typer
 
-from .errors import BigpanelError, InputError
+from .errors import BigpanelError, BigpanelWarning, InputError
 from .source import Engine, Source, open_source
 
 app = typer.Typer(
@@ -130,6 +132,56 @@ def checkup_command(
     if problem:
         typer.echo(problem, err=True)
         raise typer.Exit(1)
+
+
+class Estimator(str, Enum):
+    pooled = "pooled"
+    within = "within"
+    first_difference = "first-difference"
+
+
+class VarianceKind(str, Enum):
+    iid = "iid"
+    hc1 = "hc1"
+    cluster = "cluster"
+
+
+@app.command("fit")
+def fit_command(
+    source: SourceArg = None,
+    outcome: Annotated[str, typer.Option("--outcome", help="Outcome column or SQL expression, e.g. \"log(parcels)\".")] = ...,
+    regressors: Annotated[str, typer.Option("--regressors", help="Terms separated by commas (not inside parentheses): columns, SQL expressions, lag(EXPR[, K]), levels(COLUMN[, 'BASE']).")] = ...,
+    unit: Annotated[str, typer.Option("--unit", help="Column identifying the unit.")] = ...,
+    period: Annotated[str, typer.Option("--period", help="Column identifying the period (whole numbers for differences and lags).")] = ...,
+    estimator: Annotated[Estimator, typer.Option("--estimator", help="pooled, within or first-difference.")] = Estimator.within,
+    effects: Annotated[Optional[str], typer.Option("--effects", help="Fixed effects: within defaults to the unit (add the period with --effects UNIT,PERIOD); first-difference takes the period for period intercepts.")] = None,
+    se: Annotated[Optional[VarianceKind], typer.Option("--se", help="Variance: iid, hc1 or cluster (default: cluster for within and first-difference, iid for pooled).")] = None,
+    cluster: Annotated[Optional[str], typer.Option("--cluster", help="One or two cluster columns, comma-separated (default: the unit).")] = None,
+    no_intercept: Annotated[bool, typer.Option("--no-intercept", help="Drop the intercept (pooled, first-difference).")] = False,
+    period_step: Annotated[int, typer.Option("--period-step", help="Distance between consecutive periods.")] = 1,
+    table: TableOpt = None,
+    query: QueryOpt = None,
+    where: WhereOpt = None,
+    csv_types: CsvTypesOpt = None,
+    threads: ThreadsOpt = None,
+    memory_limit: MemoryLimitOpt = None,
+    temp_directory: TempDirectoryOpt = None,
+    as_json: JsonOpt = False,
+) -> None:
+    """Estimate a pooled, within or first-difference regression with cluster-robust inference."""
+    from .fit import fit
+
+    src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types,
+                               threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", BigpanelWarning)
+        result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
+                     se=se.value if se else None, cluster=cluster, intercept=False if no_intercept else None,
+                     period_step=period_step)
+    for w in caught:
+        if issubclass(w.category, BigpanelWarning):
+            typer.echo(f"note: {w.message}", err=True)
+    typer.echo(result.to_json() if as_json else result.table())
 
 
 # ---------------------------------------------------------------- entry point

@@ -106,8 +106,8 @@ class _Design:
     labels: list[str]  # regressor labels, outcome excluded
     columns: list[tuple[str, int]]  # (sql, lag) for regressors then the outcome
     is_effect: list[bool]  # period-effect indicator columns (not reported as coefficients)
-    in_levels: frozenset[int] = frozenset()  # FD: columns not differenced
-    twoway: bool = False  # within with period effects solved from period sums (no SQL indicators)
+    absorbed_periods: str | None = None  # "twoway" (within) or "grouped" (pooled, FD): period
+    # effects solved from per-period sums instead of indicator columns in SQL
 
 
 @dataclass
@@ -124,7 +124,10 @@ class _Pass:
     t_max: object = None
     expansion: list | None = None  # per-chunk sums for the unit-cluster meat (moments.py)
     pilot: np.ndarray | None = None
-    periods: list = field(default_factory=list)  # period-effect columns after the regressors
+    extra_labels: list = field(default_factory=list)  # columns after the regressors, before y
+    extra_effect: list = field(default_factory=list)  # which of them are absorbed effects
+    effect_values: list = field(default_factory=list)  # every period with an effect (base included)
+    effect_rows: np.ndarray | None = None  # each period's indicator row over the extra columns
 
 
 class _Fit:
@@ -194,23 +197,18 @@ class _Fit:
                 labels.append(term.text)
                 columns.append((term.expr, term.lag))
                 is_effect.append(False)
-        in_levels = set()
-        twoway = spec.period_effects and spec.estimator == "within" and self._integer_period()
-        if spec.period_effects and not twoway:
+        absorbed = None
+        if spec.period_effects:
+            absorbed = "grouped" if spec.estimator != "within" else ("twoway" if self._integer_period() else None)
+        if spec.period_effects and absorbed is None:  # within, periods that are not whole numbers
             quoted = sqlbuild.quote_ident(spec.period)
-            periods = self._levels(quoted)
-            order = sorted(periods, key=_period_key)
-            skip = order[:2] if spec.estimator == "first-difference" else order[:1]
-            for value in order:
-                if value not in skip:
-                    if spec.estimator == "first-difference":
-                        in_levels.add(len(columns))
-                    labels.append(f"{spec.period}[{value}]")
-                    columns.append((sqlbuild.indicator_sql(quoted, value), 0))
-                    is_effect.append(True)
+            for value in sorted(self._levels(quoted), key=_period_key)[1:]:
+                labels.append(f"{spec.period}[{value}]")
+                columns.append((sqlbuild.indicator_sql(quoted, value), 0))
+                is_effect.append(True)
         self._numeric_term(spec.outcome, "Outcome")
         columns.append((spec.outcome, 0))
-        return _Design(labels, columns, is_effect, frozenset(in_levels), twoway)
+        return _Design(labels, columns, is_effect, absorbed)
 
     def _integer_period(self) -> bool:
         ptype = self.s.columns()[self.spec.period].upper()
@@ -238,7 +236,7 @@ class _Fit:
             source = sqlbuild.head_sql(source, PROBE_ROWS)
         rows = sqlbuild.design_rows_sql(source, spec.unit, spec.period, list(spec.cluster), design.columns, spec.period_step)
         if spec.estimator == "first-difference":
-            rows = sqlbuild.differenced_rows_sql(rows, len(spec.cluster), len(design.columns), design.in_levels)
+            rows = sqlbuild.differenced_rows_sql(rows, len(spec.cluster), len(design.columns))
         return rows
 
     def _valid(self, q: int) -> str:
@@ -285,15 +283,18 @@ class _Fit:
             rows = sqlbuild.used_rows_sql(self._rows(design, files, head), self._valid(q))
             return sqlbuild.demeaned_rows_sql(rows, q, n_cl) if demeaned else rows
 
-        if design.twoway:
+        if design.absorbed_periods == "twoway":
             return self._accumulate_twoway(design, params, chunks, used, total)
+        if design.absorbed_periods == "grouped":
+            return self._accumulate_grouped(design, params, chunks, used, total)
         if mode != "within" and pilot is None:
             results = moments.run_chunks(self.s, chunks, lambda f: sqlbuild.pooled_moments_sql(used(f), q, "true", total), params)
             rows = [t.to_pylist()[0] for t in results]
             mat, raw, n = moments.pooled_matrix(rows, q, mode == "intercept")
             lo = [r["t_min"] for r in rows if r["t_min"] is not None]
             hi = [r["t_max"] for r in rows if r["t_max"] is not None]
-            return _Pass(mat, raw, n, 0, t_min=min(lo) if lo else None, t_max=max(hi) if hi else None)
+            n_units = sum(int(r["n_units"]) for r in rows)  # chunks hold disjoint units
+            return _Pass(mat, raw, n, n_units, t_min=min(lo) if lo else None, t_max=max(hi) if hi else None)
 
         expand = pilot is not None
         p = dict(params)
@@ -365,7 +366,61 @@ class _Fit:
         full[kx:kx + e, -1] = full[-1, kx:kx + e] = dz[eff, -1]
         acc.total = full
         acc.raw_diag = np.r_[acc.raw_diag[:kx], n_t[eff], acc.raw_diag[-1]]
-        acc.periods = [values[i] for i in eff]
+        self._set_effects(acc, values, with_constant=False)
+        return acc
+
+    def _set_effects(self, acc: _Pass, values: list, with_constant: bool) -> None:
+        """Label the period-effect columns (all periods but the first, then the constant
+        when there is one) and record each period's indicator row over them."""
+        effects = values[1:] if with_constant or self.spec.estimator == "within" else values
+        acc.extra_labels = [f"{self.spec.period}[{v}]" for v in effects] + (["(intercept)"] if with_constant else [])
+        acc.extra_effect = [True] * len(acc.extra_labels)
+        rows = np.zeros((len(values), len(acc.extra_labels)))
+        for i, v in enumerate(values):
+            if v in effects:
+                rows[i, effects.index(v)] = 1.0
+            if with_constant:
+                rows[i, -1] = 1.0
+        acc.effect_values, acc.effect_rows = list(values), rows
+
+    def _accumulate_grouped(self, design: _Design, params: dict, chunks, used, total: str) -> _Pass:
+        """Period effects in pooled and differenced regressions: indicator cross-products
+        are per-period counts and sums, so one GROUP BY period gives the whole matrix over
+        (regressors, indicators but the first, constant, outcome)."""
+        q = len(design.columns)
+        by_period: dict = {}
+        for table in moments.run_chunks(self.s, chunks, lambda f: sqlbuild.period_moments_sql(used(f), q, total), params):
+            for row in table.to_pylist():
+                n_units = by_period.get(row["period"], {}).get("n_units", 0)
+                acc_row = by_period.setdefault(row["period"], {"n": 0, "s": np.zeros(q), "p": np.zeros((q, q))})
+                acc_row["n"] += int(row["n"])
+                acc_row["s"] += [row[f"s{j}"] for j in range(q)]
+                acc_row["p"] += moments.symmetric(row, "p", q)
+                acc_row["n_units"] = n_units + int(row["n_units"])
+        if not by_period:
+            return _Pass(np.zeros((q, q)), np.zeros(q), 0, 0)
+        values = sorted(by_period)
+        intercept = self.spec.intercept
+        kx = q - 1
+        effects = values[1:] if intercept else values
+        e = len(effects) + (1 if intercept else 0)
+        ys = kx + e  # layout: regressors, indicators, [constant], outcome
+        full = np.zeros((ys + 1, ys + 1))
+        z_index = list(range(kx)) + [ys]  # where the design columns (regressors, outcome) go
+        for v in values:
+            r = by_period[v]
+            full[np.ix_(z_index, z_index)] += r["p"]
+            cols = ([kx + effects.index(v)] if v in effects else []) + ([kx + e - 1] if intercept else [])
+            for c in cols:
+                full[c, z_index] += r["s"]
+                full[z_index, c] += r["s"]
+                for c2 in cols:
+                    full[c, c2] += r["n"]
+        n_obs = sum(by_period[v]["n"] for v in values)
+        raw = np.r_[np.diag(full)[:kx + e], full[ys, ys]]
+        units = max(by_period[v]["n_units"] for v in values)
+        acc = _Pass(full, raw, n_obs, units, t_min=min(values), t_max=max(values))
+        self._set_effects(acc, values, with_constant=intercept)
         return acc
 
     def _add_unit_row(self, acc: _Pass, row: dict, q: int, dim: int) -> None:
@@ -382,7 +437,7 @@ class _Fit:
     def _pilot(self, design: _Design, params: dict) -> np.ndarray | None:
         """Coefficients from the first rows, the centre of the one-pass meat expansion;
         None when the model is too large for it or clusters are not units."""
-        if self._cluster_plan() != "unit" or design.twoway:
+        if self._cluster_plan() != "unit" or design.absorbed_periods:
             return None
         q = len(design.columns)
         k = q - 1 + (1 if self._mode() == "intercept" else 0)
@@ -403,18 +458,21 @@ class _Fit:
         p.update({f"b{j}": float(sol.coef[j]) for j in range(kx)})
         if intercept:
             p["b_one"] = float(sol.coef[kx])
-        if design.twoway and acc.periods:
-            e = len(acc.periods)
+        if acc.effect_rows is not None:
+            # Frisch-Waugh-Lovell: Gamma projects the regressors on the kept effect columns
+            e = acc.effect_rows.shape[1]
             kept = np.flatnonzero(sol.kept[kx:kx + e])
             dd = acc.total[kx:kx + e, kx:kx + e][np.ix_(kept, kept)]
             dx = acc.total[kx:kx + e, :kx][kept]
-            gamma_proj = np.zeros((e, kx))
+            projection = np.zeros((e, kx))
             if kept.size:
-                gamma_proj[kept] = np.linalg.lstsq(dd, dx, rcond=None)[0]
-            for i, value in enumerate(acc.periods):
-                p[f"t{i}"] = int(value)
-                p[f"g{i}"] = float(sol.coef[kx + i])
-                p.update({f"G{i}_{j}": float(gamma_proj[i, j]) for j in range(kx)})
+                projection[kept] = np.linalg.lstsq(dd, dx, rcond=None)[0]
+            gamma = acc.effect_rows @ sol.coef[kx:kx + e]
+            big_gamma = acc.effect_rows @ projection
+            for i, value in enumerate(acc.effect_values):
+                p[f"t{i}"] = value
+                p[f"g{i}"] = float(gamma[i])
+                p.update({f"G{i}_{j}": float(big_gamma[i, j]) for j in range(kx)})
         return p
 
     def _meats(self, design: _Design, params: dict, acc: _Pass, sol, intercept: bool, chunks, nested: bool):
@@ -423,7 +481,7 @@ class _Fit:
         q = len(design.columns)
         k = q - 1 + (1 if intercept else 0)
         demean = spec.estimator == "within"
-        n_periods = len(acc.periods) if design.twoway else 0
+        n_periods = len(acc.effect_values)
         p = self._score_params(design, params, acc, sol, intercept)
 
         def used(files):
@@ -463,6 +521,8 @@ class _Fit:
     def run(self) -> FitResult:
         spec, s = self.spec, self.s
         self._check()
+        if any(t.kind == "lag" for t in spec.terms):
+            self._duplicates(only_if_any=True)
         design = self._design()
         q = len(design.columns)
         shifts = self._shifts(design)
@@ -518,10 +578,14 @@ class _Fit:
         out.pop("filtered_out")
         return out
 
-    def _duplicates(self, reason: str = "First differences and lags") -> None:
+    def _duplicates(self, reason: str = "First differences and lags", only_if_any: bool = False) -> None:
+        """Raise the error naming a few duplicate (unit, period) keys; with ``only_if_any``
+        first look for them and return quietly when there are none."""
         spec = self.spec
         sql = sqlbuild.duplicate_keys_sql(self.s.source.filtered(), spec.unit, spec.period)
         rows = self.s.run(sql).to_pylist()
+        if only_if_any and not rows:
+            return
         shown = ", ".join(f"({r[spec.unit]}, {r[spec.period]})" for r in rows)
         raise InputError(
             f"Columns '{spec.unit}' and '{spec.period}' in {self.s.source.label} have duplicate keys, for example {shown}. "
@@ -533,9 +597,9 @@ class _Fit:
         mode = self._mode()
         dim = acc.total.shape[0]
         k = dim - 1
-        effect_labels = [f"{spec.period}[{v}]" for v in acc.periods]
-        labels = list(design.labels) + effect_labels + (["(intercept)"] if mode == "intercept" else [])
-        is_effect = list(design.is_effect) + [True] * len(effect_labels) + ([False] if mode == "intercept" else [])
+        extra = acc.extra_labels or (["(intercept)"] if mode == "intercept" else [])
+        labels = list(design.labels) + extra
+        is_effect = list(design.is_effect) + (acc.extra_effect or [False] * len(extra))
         h, g, yy = acc.total[:k, :k], acc.total[:k, k], acc.total[k, k]
         terms_dropped: dict[str, str] = {}
         zero_var = np.zeros(k, dtype=bool)
@@ -567,9 +631,9 @@ class _Fit:
         var = self._variance(design, params, acc, sol, rss, n_obs, n_kept, absorbed, mode, chunks)
         vcov = var.vcov
         estimate = coef.copy()
-        if mode == "intercept":
+        if mode == "intercept" and not is_effect[k - 1]:
             # shifted columns: y - c_y = b0' + sum b_j (x_j - c_j); the intercept is b0' + c_y - c'b
-            c = np.array([0.0 if (spec.estimator == "first-difference" and j not in design.in_levels) else shifts[j] for j in range(k - 1)])
+            c = np.array([0.0 if spec.estimator == "first-difference" else shifts[j] for j in range(k - 1)])
             c_y = 0.0 if spec.estimator == "first-difference" else shifts[-1]
             t = np.eye(k)
             t[k - 1, : k - 1] = -c
@@ -626,7 +690,7 @@ class _Fit:
         spec = self.spec
         if spec.se == "iid":
             return variance.iid(sol.inverse, rss, n_obs, n_kept, absorbed)
-        intercept = mode == "intercept"
+        intercept = mode == "intercept" and design.absorbed_periods != "grouped"  # else absorbed
         k = len(design.columns) - 1 + (1 if intercept else 0)  # score columns: regressors [, constant]
         inverse = sol.inverse[:k, :k]  # two-way: (X''X'')^-1, the regressor block (Frisch-Waugh-Lovell)
         if spec.se == "hc1":

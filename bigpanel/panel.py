@@ -17,9 +17,16 @@ The scans (templates ``sql/checkup_*.sql``):
    keeps its digits when unit means are large next to the spread inside units.
 3. ``checkup_duplicates``: only when scan 2 found duplicate rows, the first offending keys.
 
-Peak memory is set by the unit scan's hash table (one small row per unit); give the
-source's :class:`~bigpanel.source.Engine` a ``memory_limit`` (and ``temp_directory``) to
-bound it on panels with millions of units: DuckDB then spills.
+Chunks: when a Parquet source is sorted by unit, :func:`bigpanel.moments.plan_chunks`
+cuts it into unit ranges that read disjoint row groups. Scans 1-3 then run once per chunk,
+each chunk on one thread (chunks in parallel), and Python adds the chunks' results in
+chunk order: the unit scan's hash table holds one chunk's units at a time, and every
+figure is the same, to the last bit, on every run. (Rows without a unit fall outside
+every range; scan 1 reads them with one more query, which row-group statistics make
+nearly free.) Otherwise each scan is one query on all threads: figures may then differ
+in their last bits from run to run, and peak memory is set by the unit scan's hash table
+(a small row per unit); an Engine ``memory_limit`` (and ``temp_directory``) bounds it,
+DuckDB then spills.
 """
 
 from __future__ import annotations
@@ -32,8 +39,9 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import pyarrow as pa
 
-from . import sqlbuild
+from . import moments, sqlbuild
 from .errors import InputError
 from .source import Session, Source, is_numeric
 
@@ -217,15 +225,16 @@ def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str]
         period_value = _period_value(period, kinds)
 
         shifts = _probe_shifts(session, checked, numeric)
-        by_period = _scan_periods(session, unit, period_value, checked, shifts)
-        grid = _period_grid(by_period["period_value"], kinds, session.source.label, period)
+        chunks = [session.source.filtered(c.files, c.unit_range(unit)) for c in moments.plan_chunks(session, unit)]
+        by_period = _scan_periods(session, chunks, unit, period_value, checked, shifts)
+        grid = _period_grid(by_period["period_value"], kinds)
         if grid is None:
             raise InputError(_no_rows_message(session.source, unit, period, by_period["n_rows"]))
-        units = _scan_units(session, unit, period_value, checked, shifts, grid)
+        units = _scan_units(session, chunks, unit, period_value, checked, shifts, grid)
         duplicates: list[tuple[Any, Any, int]] = []
         n_duplicate_keys = 0
         if units["duplicate_rows"]:
-            duplicates, n_duplicate_keys = _scan_duplicates(session, unit, period_value)
+            duplicates, n_duplicate_keys = _scan_duplicates(session, chunks, unit, period_value)
 
     keyed = by_period["keyed"]
     column_checks = tuple(_column_check(c, schema[c], j, by_period, units, shifts.get(j)) for j, c in enumerate(checked))
@@ -349,12 +358,18 @@ def build_period_scan(source_sql: str, unit: str, period_value: str, checked: Se
     )
 
 
-def _scan_periods(session: Session, unit: str, period_value: str, checked: list[str], shifts: dict[int, float]) -> dict:
-    sql = build_period_scan(session.source.filtered(), unit, period_value, checked, list(shifts))
+def _scan_periods(session: Session, chunks: list[str], unit: str, period_value: str, checked: list[str],
+                  shifts: dict[int, float]) -> dict:
+    """Scan 1 over each chunk; the chunks' period rows are kept side by side (every figure
+    taken from them is a sum, or a two-pass formula valid over any partition of the rows)."""
+    if len(chunks) > 1:
+        chunks = chunks + [f"(SELECT * FROM {session.source.filtered()} AS src WHERE {sqlbuild.quote_ident(unit)} IS NULL)"]
     max_groups = 2 * MAX_PERIODS + 2  # each period twice (with and without a unit), plus NULL periods
-    table = session.run(sql, {"max_groups": max_groups} | _shift_params(shifts))
+    tables = moments.run_chunks(session, chunks, lambda src: build_period_scan(src, unit, period_value, checked, list(shifts)),
+                                {"max_groups": max_groups} | _shift_params(shifts))
+    table = pa.concat_tables(tables)
     n_distinct = len(table.column("period_value").drop_null().unique())
-    if table.num_rows >= max_groups or n_distinct > MAX_PERIODS:
+    if any(t.num_rows >= max_groups for t in tables) or n_distinct > MAX_PERIODS:
         raise InputError(
             f"The period column of {session.source.label} has more than {MAX_PERIODS:,} distinct values. "
             "Check that the period option names the time column."
@@ -392,7 +407,7 @@ class _Grid:
     n_slots: int
 
 
-def _period_grid(values, kind: str, label: str, period: str) -> _Grid | None:
+def _period_grid(values, kind: str) -> _Grid | None:
     """Distinct periods -> the grid: first, last and the gcd step of consecutive periods."""
     if len(values) == 0:
         return None
@@ -483,15 +498,31 @@ def build_unit_scan(source_sql: str, unit: str, period_value: str, checked: Sequ
     )
 
 
-def _scan_units(session: Session, unit: str, period_value: str, checked: list[str], shifts: dict[int, float],
-                grid: _Grid) -> dict:
+def _scan_units(session: Session, chunks: list[str], unit: str, period_value: str, checked: list[str],
+                shifts: dict[int, float], grid: _Grid) -> dict:
+    """Scan 2 over each chunk (every unit lies in one chunk), added up in chunk order."""
     bitmap = grid.n_slots <= BITMAP_MAX_SLOTS
-    sql = build_unit_scan(session.source.filtered(), unit, period_value, checked, list(shifts), grid.mode, bitmap)
     params = {"first": grid.first_ordinal, "step": grid.slot_step, "n_periods": grid.n_periods} | _shift_params(shifts)
     if bitmap:
         params["last_slot"] = grid.n_slots - 1
-    row = session.run(sql, params).to_pylist()[0]
-    return row
+    tables = moments.run_chunks(
+        session, chunks, lambda src: build_unit_scan(src, unit, period_value, checked, list(shifts), grid.mode, bitmap), params
+    )
+    rows = [t.to_pylist()[0] for t in tables]
+    out: dict[str, Any] = {}
+    for name in rows[0]:
+        values = [r[name] for r in rows if r[name] is not None]
+        if name == "periods_per_unit":
+            histogram: dict[int, int] = {}
+            for pairs in values:
+                for n_periods, n_units in dict(pairs).items():
+                    histogram[n_periods] = histogram.get(n_periods, 0) + n_units
+            out[name] = histogram
+        elif name.startswith("within_ss_"):
+            out[name] = math.fsum(values)
+        else:
+            out[name] = sum(values)
+    return out
 
 
 def _quartiles(histogram) -> tuple[int, ...]:
@@ -512,11 +543,14 @@ def build_duplicate_scan(source_sql: str, unit: str, period_value: str) -> str:
     return sqlbuild.render("checkup_duplicates", source=source_sql, unit=sqlbuild.quote_ident(unit), period=period_value)
 
 
-def _scan_duplicates(session: Session, unit: str, period_value: str) -> tuple[list[tuple[Any, Any, int]], int]:
-    sql = build_duplicate_scan(session.source.filtered(), unit, period_value)
-    rows = session.run(sql, {"n_examples": N_DUPLICATE_EXAMPLES}).to_pylist()
-    examples = [(r["unit_key"], r["period_key"], int(r["n_rows"])) for r in rows]
-    return examples, int(rows[0]["n_keys"]) if rows else 0
+def _scan_duplicates(session: Session, chunks: list[str], unit: str, period_value: str) -> tuple[list[tuple[Any, Any, int]], int]:
+    """Scan 3 over each chunk: the first offending keys of all chunks, and their count."""
+    tables = moments.run_chunks(session, chunks, lambda src: build_duplicate_scan(src, unit, period_value),
+                                {"n_examples": N_DUPLICATE_EXAMPLES})
+    rows = [r for t in tables for r in t.to_pylist()]
+    n_keys = sum(int(t.column("n_keys")[0].as_py()) for t in tables if t.num_rows)
+    examples = sorted((r["unit_key"], r["period_key"], int(r["n_rows"])) for r in rows)
+    return examples[:N_DUPLICATE_EXAMPLES], n_keys
 
 
 # ---------------------------------------------------------------- columns

@@ -14,6 +14,14 @@ CAUTIONS = (
 )
 
 
+CAUTION_SHORT = (
+    "strict exogeneity of the time-varying error",
+    "a unit effect constant over time",
+    "enough variation within units",
+    "independent clusters",
+)
+
+
 @dataclass(frozen=True)
 class Coefficient:
     term: str
@@ -112,6 +120,7 @@ class FitResult:
             lines.append(f"  term left out: {term} ({why})")
         for w in self.warnings:
             lines.append(f"  note: {w}")
+        lines.append("  Read causally only under: " + "; ".join(CAUTION_SHORT) + ".")
         return "\n".join(lines)
 
 

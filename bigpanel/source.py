@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import glob as globmod
 import os
+import re
 import threading
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -362,6 +363,9 @@ class Session:
         try:
             row = self.con.execute(f"DESCRIBE SELECT {expression} AS x FROM {self.source.relation()}").fetchall()[0]
         except duckdb.Error as exc:
+            missing = re.search(r'Referenced column "([^"]+)" not found', str(exc))
+            if missing:
+                raise unknown_column(missing.group(1), self.source.label, self.columns()) from None
             raise InputError(f"Term '{expression}' cannot be evaluated on {self.source.label} ({_first_line(exc)}). Check the column names and SQL.") from None
         return row[1]
 

@@ -140,8 +140,8 @@ class FitSpec:
             eff = (unit,)
         if estimator == "within" and unit not in eff:
             raise InputError(f"Option 'effects' must include the unit column '{unit}' for the within estimator (got {', '.join(eff)}).")
-        if estimator == "pooled" and eff:
-            raise InputError("Option 'effects' is for within and first-difference; the pooled estimator has none. Add indicator terms with levels(COLUMN) instead.")
+        if estimator == "pooled" and unit in eff:
+            raise InputError(f"Option 'effects' names the unit '{unit}' for the pooled estimator; that is the within estimator. Use --estimator within.")
         for e in eff:
             if e not in (unit, period):
                 raise InputError(f"Option 'effects' names '{e}': effects on columns other than the unit '{unit}' and the period '{period}' are not supported yet.")

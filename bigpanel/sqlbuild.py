@@ -229,7 +229,13 @@ def unit_moments_sql(rows: str, q: int, n_clusters: int, valid: str, total: str 
 
 
 def pooled_moments_sql(rows: str, q: int, valid: str, total: str = "sum") -> str:
-    return render("pooled_moments", rows=f"({rows})", aggregates=", ".join(_moment_aggregates(q, total)), valid=valid)
+    aggs = _moment_aggregates(q, total) + ["count(DISTINCT k_unit) AS n_units"]
+    return render("pooled_moments", rows=f"({rows})", aggregates=", ".join(aggs), valid=valid)
+
+
+def period_moments_sql(used: str, q: int, total: str = "sum") -> str:
+    aggs = _moment_aggregates(q, total) + ["count(DISTINCT k_unit) AS n_units"]
+    return render("period_moments", rows=used, aggregates=", ".join(aggs))
 
 
 def _p(j: int, l: int) -> str:

@@ -4,7 +4,7 @@
 --          {{aggregates}} count(*) AS n, sum(z_j) AS s_j, sum(z_j * z_l) AS p_j_l;
 --          {{valid}}      the predicate that keeps a row.
 -- params:  those of {{rows}}.
--- output:  one row.
+-- output:  one row (with the count of distinct units).
 SELECT {{aggregates}}
 FROM {{rows}} AS r
 WHERE {{valid}}
