@@ -10,3 +10,7 @@ from .fit import fit  # noqa: E402
 from .results import FitResult  # noqa: E402
 
 __all__ += ["fit", "FitResult"]
+
+from .panel import ColumnCheck, PanelReport, inspect_panel  # noqa: E402
+
+__all__ += ["inspect_panel", "PanelReport", "ColumnCheck"]
