@@ -688,7 +688,9 @@ def _render(r: PanelReport, color: bool) -> str:
         varying = "-" if c.units_varying is None else f"{c.units_varying:,}"
         row = (f"  {c.name:<{name_width}}  {c.dtype:<{type_width}}  {c.n_missing:>9,}  {_number(c.mean):>11}  "
                f"{_number(c.std):>11}  {_share(c.within_share):>7}  {_share(c.between_share):>7}  {varying:>13}")
-        lines.append(bad(row + "  no change within units") if c.within_estimable is False else row)
+        if c.within_estimable is False:
+            row = bad(row + ("  no values" if c.mean is None else "  no change within units"))
+        lines.append(row)
     if r.not_estimable:
         names = ", ".join(r.not_estimable)
         lines.append("")

@@ -271,3 +271,11 @@ def test_unit_sorted_parquet_runs_in_chunks(tmp_path, monkeypatch, duplicates):
     assert_matches(first, reference_checkup(table.to_pandas(), "depot", "month", CHECKED))
     assert first.n_rows_missing_unit == 2
     assert inspect_panel(source, "depot", "month") == first
+
+
+def test_column_without_values():
+    table = pa.table({"unit": [1, 1, 2, 2], "when": [1, 2, 1, 2], "x": pa.array([None] * 4, pa.float64())})
+    report = inspect_panel(open_source(table), "unit", "when")
+    (check,) = report.columns
+    assert (check.n_missing, check.mean, check.within_share, check.within_estimable) == (4, None, None, False)
+    assert "no values" in report.render()
