@@ -106,8 +106,8 @@ def test_levels_expand_like_get_dummies_with_named_base(gappy, tmp_path):
     # named base level's column removed.
     rng = np.random.default_rng(32)
     df = gappy.copy()
-    df["kind"] = rng.choice(["hub", "kiosk", "van", "o'brien lane"], size=len(df))
-    df["y"] = df["y"] + df["kind"].map({"hub": 0.0, "kiosk": 1.0, "van": -2.0, "o'brien lane": 0.5})
+    df["kind"] = rng.choice(["hub", "kiosk", "van", "baker's van"], size=len(df))
+    df["y"] = df["y"] + df["kind"].map({"hub": 0.0, "kiosk": 1.0, "van": -2.0, "baker's van": 0.5})
     path = write_parquet(df, tmp_path / "kinds.parquet")
     ind = pd.get_dummies(df["kind"], dtype=float).drop(columns="kiosk")
     x = pd.concat([df[["x1"]], ind, pd.Series(1.0, index=df.index, name="const")], axis=1)
