@@ -200,15 +200,22 @@ def repro_sources(tmp_path_factory):
             "folder of 4 files": write_parquet_parts(df, root / "parts", 4)}
 
 
-@pytest.mark.parametrize("chunk_rows", [None, 1], ids=["default chunks", "one chunk per file"])
-@pytest.mark.parametrize("kind", ["single file", "folder of 4 files"])
-@pytest.mark.parametrize("se", ["cluster", "hc1"])
-def test_same_fit_twice_is_bitwise_identical(repro_sources, kind, chunk_rows, se, monkeypatch):
+VARIANCES = {"unit clusters": dict(se="cluster"), "hc1": dict(se="hc1"),
+             "two-way clusters": dict(se="cluster", cluster=["unit", "period"])}
+
+
+@pytest.mark.parametrize("variance", VARIANCES.keys())
+@pytest.mark.parametrize("kind, chunk_rows", [("single file", None), ("folder of 4 files", None),
+                                              ("folder of 4 files", 1)],
+                         ids=["single file", "folder, one query", "folder, one query per file"])
+def test_same_fit_twice_is_bitwise_identical(repro_sources, kind, chunk_rows, variance, monkeypatch):
     # Source: common practice for batch jobs (a rerun on the same extract must give the
-    # same digits); moments.py promises order-independent sums on every path.
+    # same digits); moments.py promises sums whose result does not depend on the
+    # threads' timing on every path.
     if chunk_rows is not None:
         monkeypatch.setattr(bigpanel.moments, "CHUNK_ROWS", chunk_rows)
-    runs = [bigpanel.fit(repro_sources[kind], "y", REGRESSORS, "unit", "period", se=se) for _ in range(2)]
+    runs = [bigpanel.fit(repro_sources[kind], "y", REGRESSORS, "unit", "period", **VARIANCES[variance])
+            for _ in range(2)]
     first, second = ([(c.estimate, c.std_error) for c in r.coefficients] for r in runs)
     assert first == second  # exact equality of floats
     assert runs[0].r_squared == runs[1].r_squared
