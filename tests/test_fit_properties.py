@@ -107,11 +107,20 @@ def test_number_of_files_changes_nothing(seed, shape, estimator, n_files, se):
     # path (one query per file, summed in Python). The issue asks ~1e-12 relative;
     # order_tolerance explains the bound.
     df = panel(seed, shape)
-    with tempfile.TemporaryDirectory() as folder:
+    planned = []
+    real_plan = bigpanel.moments.plan_chunks
+
+    def recording_plan(*args, **kwargs):
+        chunks = real_plan(*args, **kwargs)
+        planned.append(len(chunks))
+        return chunks
+
+    with tempfile.TemporaryDirectory() as folder, mock.patch.object(bigpanel.moments, "plan_chunks", recording_plan):
         one = fit(write_parquet(df, Path(folder) / "one.parquet"), estimator, se=se)
         parts = write_parquet_parts(df, Path(folder) / "parts", n_files)
         with mock.patch.object(bigpanel.moments, "CHUNK_ROWS", 1):
             many = fit(parts, estimator, se=se)
+    assert planned == [1, n_files]  # the two paths the property compares were taken
     tol = order_tolerance(one)
     ta, tb = table(one), table(many)
     assert ta.keys() == tb.keys()
