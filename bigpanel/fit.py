@@ -18,6 +18,7 @@ The plan for one fit:
 from __future__ import annotations
 
 import math
+import re
 import warnings
 from dataclasses import dataclass, field
 
@@ -27,7 +28,7 @@ import scipy.stats
 
 from . import moments, sqlbuild, variance
 from .errors import (
-    DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError,
+    BigpanelWarning, DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError,
 )  # fmt: skip
 from .results import Coefficient, FitResult
 from .solve import solve_normal
@@ -152,6 +153,10 @@ class _Fit:
 
     def _numeric_term(self, expr: str, what: str) -> None:
         self.s.check_expression(expr, what)
+        if _BASE_TEN_LOG.search(expr):
+            msg = f"{what} '{expr}' uses log(), which in SQL is the base-10 logarithm; ln() is the natural one"
+            self.notes.append(msg)
+            warnings.warn(msg, BigpanelWarning, stacklevel=4)
         cols = self.s.columns()
         bare = expr.strip().strip('"')
         if bare in cols:
@@ -301,11 +306,13 @@ class _Fit:
         if expand:
             p.update({f"q{j}": float(v) for j, v in enumerate(pilot)})
 
-        def make(files):
-            units = sqlbuild.unit_moments_sql(used(files), q, 0, "true", total)
-            return sqlbuild.unit_pass_sql(units, q, mode, expand, total)
-
-        rows = [t.to_pylist()[0] for t in moments.run_chunks(self.s, chunks, make, p)]
+        if len(chunks) > 1:  # one thread per chunk: fold each chunk's units in numpy
+            make = lambda c: sqlbuild.unit_moments_sql(used(c), q, 0, "true", total)  # noqa: E731
+            fold = lambda table: moments.fold_units(table, q, mode, pilot)  # noqa: E731
+            rows = moments.run_chunks(self.s, chunks, make, params, reduce=fold)
+        else:  # one query on all threads: keep the units inside DuckDB
+            make = lambda c: sqlbuild.unit_pass_sql(sqlbuild.unit_moments_sql(used(c), q, 0, "true", total), q, mode, expand, total)  # noqa: E731
+            rows = [t.to_pylist()[0] for t in moments.run_chunks(self.s, chunks, make, p)]
         dim = q + (1 if mode == "intercept" else 0)
         acc = _Pass(total=np.zeros((dim, dim)), raw_diag=np.zeros(q), n_obs=0, n_units=0)
         for row in rows:
@@ -724,6 +731,9 @@ def _embed(var: variance.Variance, dim: int) -> variance.Variance:
     k = var.vcov.shape[0]
     full[:k, :k] = var.vcov
     return variance.Variance(full, var.kind, var.df, var.small_sample_factor, var.n_clusters, var.clipped_eigenvalues)
+
+
+_BASE_TEN_LOG = re.compile(r"(?<![\w.])log\s*\(", re.IGNORECASE)
 
 
 def _period_key(value: str):

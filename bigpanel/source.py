@@ -248,6 +248,7 @@ class Session:
         self.con = source.connect()
         self._lock = threading.Lock()
         self._columns: dict[str, str] | None = None
+        self._function_kinds: dict[str, str] | None = None
 
     def close(self) -> None:
         self.con.close()
@@ -340,11 +341,15 @@ class Session:
             raise InputError(f"{what} '{expression}' is refused: {problem}. Give one scalar SQL expression over the source's columns.")
 
     def function_kinds(self) -> dict[str, str]:
+        """Function name -> its most restrictive DuckDB kind (read once per session)."""
+        if self._function_kinds is not None:
+            return self._function_kinds
         rank = {"table": 3, "table_macro": 3, "aggregate": 2, "pragma": 2}
         kinds: dict[str, str] = {}
         for name, kind in self.con.execute(sqlbuild.function_kinds_sql()).fetchall():
             if rank.get(kind, 0) >= rank.get(kinds.get(name, ""), 0):
                 kinds[name] = kind
+        self._function_kinds = kinds
         return kinds
 
     def check_filter(self) -> None:

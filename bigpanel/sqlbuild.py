@@ -339,7 +339,8 @@ def _a_names(q: int, intercept: bool) -> list[str]:
     return [f"a{j}" for j in range(q - 1)] + (["a_one"] if intercept else [])
 
 
-def centered_ctes(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int) -> str:
+def centered_ctes(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int,
+                  total: str = "fsum") -> str:
     """CTEs ending in ``centered``: per row x~_j AS x_j and u~ AS u (unit-demeaned under
     within, after removing period effects), with the unit and cluster keys."""
     keys = ["k_unit", "k_period"] + [f"k_c{i}" for i in range(n_clusters)]
@@ -348,8 +349,9 @@ def centered_ctes(used: str, q: int, intercept: bool, demean: bool, n_periods: i
                 f"{adjusted_columns(q, intercept, n_periods > 0)} FROM used AS r {period_join_sql(n_periods, q - 1)})")
     parts = [f"used AS ({used})", adjusted]
     if demean:
-        means = ", ".join(f"avg({a}) AS m_{a}" for a in names)
-        parts.append(f"means AS (SELECT k_unit, {means}, avg(e) AS m_e FROM adjusted GROUP BY k_unit HAVING count(*) > 1)")
+        means = ", ".join(f"{total}({a}) / count(*) AS m_{a}" for a in names)
+        parts.append(f"means AS (SELECT k_unit, {means}, {total}(e) / count(*) AS m_e FROM adjusted "
+                     "GROUP BY k_unit HAVING count(*) > 1)")
         xs = ", ".join(f"{a} - m_{a} AS x{i}" for i, a in enumerate(names))
         parts.append(f"centered AS (SELECT {', '.join(keys)}, {xs}, e - m_e AS u FROM adjusted JOIN means USING (k_unit))")
     else:
@@ -363,10 +365,14 @@ def used_rows_sql(rows: str, valid: str) -> str:
 
 
 def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int) -> str:
-    """Meat for each cluster set (one-way: c0; two-way: c0, c1 and their intersection)."""
+    """Meat for each cluster set (one-way: c0; two-way: c0, c1 and their intersection).
+
+    It runs over all rows on several threads, so every sum is compensated (``fsum``):
+    plain sums would change in the last digits with the threads' timing.
+    """
     k = q - 1 + (1 if intercept else 0)
-    scores = ", ".join(f"sum(x{i} * u) AS g{i}" for i in range(k))
-    outer = ", ".join(f"sum(g{i} * g{j}) AS o{i}_{j}" for i in range(k) for j in range(i, k))
+    scores = ", ".join(f"fsum(x{i} * u) AS g{i}" for i in range(k))
+    outer = ", ".join(f"fsum(g{i} * g{j}) AS o{i}_{j}" for i in range(k) for j in range(i, k))
     if n_clusters == 1:
         sets, key = "GROUPING SETS ((k_c0))", "GROUPING(k_c0) AS gid"
     else:
@@ -377,7 +383,7 @@ def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_perio
 
 def residual_moments_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int) -> str:
     k = q - 1 + (1 if intercept else 0)
-    sums = ", ".join(f"sum(u * u * x{i} * x{j}) AS h{i}_{j}" for i in range(k) for j in range(i, k))
+    sums = ", ".join(f"fsum(u * u * x{i} * x{j}) AS h{i}_{j}" for i in range(k) for j in range(i, k))
     return render("residual_moments", centered=centered_ctes(used, q, intercept, demean, n_periods, 0), sums=sums)
 
 
@@ -385,14 +391,14 @@ def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods:
     """Cluster scores from per-unit sums (clusters that are units or unions of units)."""
     names = _a_names(q, intercept)
     k = len(names)
-    unit_sums = ", ".join(f"sum({a} * e) AS ae{i}, sum({a}) AS sa{i}" for i, a in enumerate(names))
+    unit_sums = ", ".join(f"{total}({a} * e) AS ae{i}, {total}({a}) AS sa{i}" for i, a in enumerate(names))
     if demean:
         scores = ", ".join(f"ae{i} - sa{i} * se / n AS e{i}" for i in range(k))
     else:
         scores = ", ".join(f"ae{i} AS e{i}" for i in range(k))
     outer = ", ".join(f"{total}(e{i} * e{j}) AS o{i}_{j}" for i in range(k) for j in range(i, k))
     if by_unit:
-        final = f"SELECT count(*) AS n_groups, {outer} FROM scores" + (" WHERE true" if not demean else "")
+        final = f"SELECT count(*) AS n_groups, {outer} FROM scores"
         pick = "k_unit"
     else:
         summed = ", ".join(f"{total}(e{i}) AS e{i}" for i in range(k))
@@ -402,7 +408,7 @@ def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods:
     if not by_unit:
         adjusted = "r.k_c0, " + adjusted
     return render("unit_scores", used=used, adjusted=adjusted, period_join=period_join_sql(n_periods, q - 1),
-                  pick=pick, unit_sums=unit_sums, scores=scores, final=final)
+                  pick=pick, sum_e=f"{total}(e)", unit_sums=unit_sums, scores=scores, final=final)
 
 
 def twoway_pass_sql(used: str, q: int, first: int, last: int, total: str = "sum") -> str:

@@ -6,13 +6,14 @@
 --          {{adjusted}}    a_j and e per row (see sqlbuild.adjusted_columns);
 --          {{period_join}} nothing, or the join to the period effects' values;
 --          {{pick}}        the cluster key carried per unit (k_unit, or min(k_c0));
---          {{unit_sums}}   sum(a_j * e) AS ae_j, sum(a_j) AS sa_j;
+--          {{sum_e}}, {{unit_sums}}  sum(e); sum(a_j * e) AS ae_j, sum(a_j) AS sa_j (fsum on
+--                        one multi-threaded query);
 --          {{scores}}      the unit's score e_j from its sums;
 --          {{final}}       the outer sums over units (unit clusters) or per-cluster sums.
 -- params:  $s_j shifts, $b_j coefficients, period values and effects.
 -- output:  one row (n_groups, o_j_l), or one row per cluster (g, e_j).
 WITH used AS ({{used}}),
 adjusted AS (SELECT r.k_unit, {{adjusted}} FROM used AS r {{period_join}}),
-per_unit AS (SELECT {{pick}} AS g, count(*) AS n, sum(e) AS se, {{unit_sums}} FROM adjusted GROUP BY k_unit),
+per_unit AS (SELECT {{pick}} AS g, count(*) AS n, {{sum_e}} AS se, {{unit_sums}} FROM adjusted GROUP BY k_unit),
 scores AS (SELECT g, {{scores}} FROM per_unit)
 {{final}}
