@@ -127,7 +127,10 @@ def checkup_command(
     src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types,
                                threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
     report = inspect_panel(src, unit, period, _split_names(columns))
-    typer.echo(json.dumps(report.to_dict(), indent=2, ensure_ascii=False) if as_json else report.render(color=_use_color()))
+    if as_json:
+        _print_json(report.to_dict())
+    else:
+        typer.echo(report.render(color=_use_color()))
     problem = report.duplicate_problem()
     if problem:
         typer.echo(problem, err=True)
