@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import importlib.metadata
 import os
 import platform
@@ -27,10 +28,6 @@ def machine(repo) -> dict:
     except OSError:
         model = platform.processor() or model
 
-    def git(*args):
-        done = subprocess.run(["git", *args], cwd=repo, capture_output=True, text=True)
-        return done.stdout.strip() if done.returncode == 0 else None
-
     memory = psutil.virtual_memory()
     return {
         "cpu_model": model,
@@ -42,10 +39,26 @@ def machine(repo) -> dict:
         "python": platform.python_version(),
         "versions": {name: importlib.metadata.version(name)
                      for name in ("bigpanel", "duckdb", "polars", "pandas", "numpy", "pyarrow")},
-        "git_commit": git("rev-parse", "--short", "HEAD"),
-        "uncommitted_changes_in_bigpanel_or_sql": bool(git("status", "--porcelain", "--", "bigpanel", "sql")),
+        **code_state(repo),
         "load_average_start": list(os.getloadavg()),
     }
+
+
+def code_state(repo) -> dict:
+    """The commit, and a digest of uncommitted changes in bigpanel/ and sql/ (None if none).
+
+    The package is installed editable: every worker imports the working tree as it is at
+    that moment, so a change in between makes runs of one case measure different code.
+    """
+    def git(*args):
+        done = subprocess.run(["git", *args], cwd=repo, capture_output=True, text=True)
+        return done.stdout.strip() if done.returncode == 0 else None
+
+    changed = git("status", "--porcelain", "--", "bigpanel", "sql")
+    diff = git("diff", "HEAD", "--", "bigpanel", "sql") or ""
+    return {"git_commit": git("rev-parse", "--short", "HEAD"),
+            "uncommitted_state": hashlib.sha256((changed + diff).encode()).hexdigest()[:12]
+            if changed else None}
 
 
 def combine(attempts: list[dict]) -> dict:
@@ -60,7 +73,7 @@ def combine(attempts: list[dict]) -> dict:
     if "coefficients" in attempts[0]:
         out["coefficients"] = attempts[0]["coefficients"]
         out["std_errors"] = attempts[0]["std_errors"]
-        out["identical_across_runs"] = all(a["coefficients"] == out["coefficients"] for a in attempts)
+        out["run_to_run_rel_diff"] = max(_rel_diff(a["coefficients"], out["coefficients"]) for a in attempts)
     return out
 
 
@@ -113,8 +126,9 @@ def summarize(results: list[dict], settings: dict, machine: dict) -> dict:
         limit = FLOOR_TARGETS.get(r["case"])
         if limit is not None and r["ratio_to_floor"] is not None:
             r["target"] = {"ratio_to_floor_at_most": limit, "met": r["ratio_to_floor"] <= limit}
-        if not r.get("identical_across_runs", True):
-            notes.append(f"{r['panel']} {r['case']}: estimates differ between runs of the same data")
+        if r.get("run_to_run_rel_diff"):
+            notes.append(f"{r['panel']} {r['case']}: estimates differ between runs of the same data by up to "
+                         f"{r['run_to_run_rel_diff']:.1e} (relative)")
         reference, against = None, None
         if r["group"] == "in-memory":
             reference, against = ok.get((r["panel"], "within")), f"bigpanel within on {r['panel']}"
@@ -129,6 +143,10 @@ def summarize(results: list[dict], settings: dict, machine: dict) -> dict:
                 problems.append(f"MISMATCH {r['panel']} {r['case']}: estimates differ from {against} by "
                                 f"{r['check']['coef_rel_diff']:.2e} (coefficients) and {r['check']['se_rel_diff']:.2e} "
                                 f"(standard errors), tolerance {AGREEMENT:g}")
+    if (machine.get("git_commit_end"), machine.get("uncommitted_state_end")) != (
+            machine["git_commit"], machine["uncommitted_state"]):
+        notes.append("the code changed while the benchmark ran (commit or uncommitted changes in bigpanel/ or sql/ "
+                     "differ between start and end): runs of one case may have measured different code")
     return {"machine": machine, "settings": settings, "results": results, "versus": _versus(results, ok),
             "scaling": _scaling(results, ok), "memory_budget": _budget(results, settings["memory_budget_bytes"]),
             "problems": problems, "notes": notes}
@@ -215,6 +233,10 @@ def _rows_text(n: float) -> str:
     return f"{n / 1e6:,.1f}M" if n >= 1e6 else f"{n / 1e3:,.0f}k"
 
 
+def _code(commit, changed) -> str:
+    return f"commit {commit}" + (f" with uncommitted changes in bigpanel/ or sql/ (state {changed})" if changed else "")
+
+
 def machine_markdown(m: dict) -> str:
     v = m["versions"]
     load = " / ".join(f"{x:.1f}" for x in m["load_average_start"])
@@ -225,8 +247,8 @@ def machine_markdown(m: dict) -> str:
         f"- CPU: {m['cpu_model']}; {m['logical_cores']} logical cores ({m['physical_cores']} physical)",
         f"- Memory: {m['memory_bytes'] / 2**30:.1f} GiB ({m['memory_available_bytes_at_start'] / 2**30:.1f} GiB available at start)",
         f"- {m['os']}; Python {m['python']}; " + ", ".join(f"{k} {x}" for k, x in v.items()),
-        f"- Commit {m['git_commit']}" + (" with uncommitted changes in bigpanel/ or sql/"
-                                         if m["uncommitted_changes_in_bigpanel_or_sql"] else ""),
+        f"- Code: {_code(m['git_commit'], m['uncommitted_state'])} at start" + (
+            f", {_code(m['git_commit_end'], m['uncommitted_state_end'])} at end" if "git_commit_end" in m else ""),
         f"- Load average (1 / 5 / 15 min) at start {load}" + (
             f", at end {' / '.join(f'{x:.1f}' for x in end)}" if end else "") + " (a shared machine: other jobs add time)",
     ]

@@ -267,6 +267,8 @@ def main(argv=None) -> int:
                 "started_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(started)),
                 "elapsed_s": round(time.time() - started, 1)}
     machine["load_average_end"] = list(os.getloadavg())
+    end = report.code_state(REPO)
+    machine.update(git_commit_end=end["git_commit"], uncommitted_state_end=end["uncommitted_state"])
     summary = report.summarize(results, settings, machine)
     markdown = report.to_markdown(summary)
     write_atomic(args.out_dir / "latest.json", json.dumps(summary, indent=2) + "\n")
