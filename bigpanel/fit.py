@@ -136,6 +136,8 @@ class _Fit:
         self.s = session
         self.spec = spec
         self.notes: list[str] = []
+        self.streaming = False  # first differences in file order within chunks (see run)
+        self.counted: dict | None = None  # rows by reason, once counted
 
     # ------------------------------------------------------------------ checks
     def _check(self) -> None:
@@ -241,7 +243,9 @@ class _Fit:
             source = sqlbuild.head_sql(source, PROBE_ROWS)
         rows = sqlbuild.design_rows_sql(source, spec.unit, spec.period, list(spec.cluster), design.columns, spec.period_step)
         if spec.estimator == "first-difference":
-            rows = sqlbuild.differenced_rows_sql(rows, len(spec.cluster), len(design.columns))
+            # a real chunk runs on one thread in file order: difference without sorting
+            streaming = self.streaming and chunk.files is not None and not head
+            rows = sqlbuild.differenced_rows_sql(rows, len(spec.cluster), len(design.columns), streaming)
         return rows
 
     def _valid(self, q: int) -> str:
@@ -306,13 +310,11 @@ class _Fit:
         if expand:
             p.update({f"q{j}": float(v) for j, v in enumerate(pilot)})
 
-        if len(chunks) > 1:  # one thread per chunk: fold each chunk's units in numpy
-            make = lambda c: sqlbuild.unit_moments_sql(used(c), q, 0, "true", total)  # noqa: E731
-            fold = lambda table: moments.fold_units(table, q, mode, pilot)  # noqa: E731
-            rows = moments.run_chunks(self.s, chunks, make, params, reduce=fold)
-        else:  # one query on all threads: keep the units inside DuckDB
-            make = lambda c: sqlbuild.unit_pass_sql(sqlbuild.unit_moments_sql(used(c), q, 0, "true", total), q, mode, expand, total)  # noqa: E731
-            rows = [t.to_pylist()[0] for t in moments.run_chunks(self.s, chunks, make, p)]
+        def make(chunk):
+            units = sqlbuild.unit_moments_sql(used(chunk), q, 0, "true", total)
+            return sqlbuild.unit_pass_sql(units, q, mode, expand, total)
+
+        rows = [t.to_pylist()[0] for t in moments.run_chunks(self.s, chunks, make, p)]
         dim = q + (1 if mode == "intercept" else 0)
         acc = _Pass(total=np.zeros((dim, dim)), raw_diag=np.zeros(q), n_obs=0, n_units=0)
         for row in rows:
@@ -536,7 +538,14 @@ class _Fit:
         params = {f"s{j}": float(shifts[j]) for j in range(q)}
         chunks = moments.plan_chunks(s, spec.unit)
         pilot = self._pilot(design, params)
+        # Sorted extracts are differenced in scan order; if any consecutive pair was missed
+        # that way (files not sorted by period within unit), the pass is redone with sorting.
+        self.streaming = spec.estimator == "first-difference" and len(chunks) > 1 and not any(t.lag for t in spec.terms)
         acc = self._accumulate(design, params, chunks, demeaned=False, pilot=pilot)
+        if self.streaming and self._missed_pairs(design, params, acc):
+            self.streaming = False
+            self.notes.append("files are not sorted by unit and period; differences were formed after sorting")
+            acc = self._accumulate(design, params, chunks, demeaned=False, pilot=pilot)
         if acc.n_obs == 0:
             raise EstimationError(self._empty_message())
         accumulation = "one pass, shifted per-unit sums"
@@ -564,6 +573,23 @@ class _Fit:
             return sum(pq.read_metadata(f).num_rows for f in src.files)
         return int(self.s.run(f"SELECT count(*) AS n FROM {src.filtered()} AS src").column("n")[0].as_py())
 
+    def _count_rows(self, design: _Design, params: dict) -> dict:
+        """Rows by reason, over all rows (differences formed after sorting)."""
+        if self.counted is None:
+            spec = self.spec
+            fd = spec.estimator == "first-difference"
+            rows = self._rows(design)
+            self.counted = self.s.run(sqlbuild.row_counts_sql(rows, len(design.columns), fd, spec.period_step), params).to_pylist()[0]
+        return self.counted
+
+    def _missed_pairs(self, design: _Design, params: dict, acc: _Pass) -> bool:
+        """Did differencing in scan order miss consecutive pairs that sorting would find?"""
+        if self._rows_after_filter() == acc.n_obs + acc.n_units:  # every unit's rows all paired
+            return False
+        row = self._count_rows(design, params)
+        pairs = row["n_rows"] - row["first_of_unit"] - row["after_gap"] - row["duplicate_keys"] - row["missing"]
+        return pairs != acc.n_obs
+
     def _dropped(self, design: _Design, params: dict, acc: _Pass) -> dict:
         spec = self.spec
         total = self._rows_after_filter()
@@ -573,9 +599,7 @@ class _Fit:
         if fd:
             out.update(first_period_of_unit=acc.n_units, after_gap=0)
         if total != expected:
-            q = len(design.columns)
-            rows = self._rows(design)
-            row = self.s.run(sqlbuild.row_counts_sql(rows, q, fd, spec.period_step), params).to_pylist()[0]
+            row = self._count_rows(design, params)
             if fd and row["duplicate_keys"]:
                 self._duplicates()
             out["missing_or_not_finite"] = int(row["missing"])

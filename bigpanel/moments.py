@@ -39,7 +39,7 @@ import pyarrow.parquet as pq
 from . import sqlbuild
 from .source import Session, parquet_row_groups
 
-CHUNK_ROWS = 500_000  # rows per chunk query: small enough for a cache-friendly GROUP BY
+CHUNK_ROWS = 1_000_000  # rows per chunk query: a small GROUP BY, few queries to plan
 
 
 @dataclass(frozen=True)
@@ -104,19 +104,16 @@ def run_chunks(
     chunks: Sequence[Chunk],
     make_sql: Callable[[Chunk], str],
     params: dict,
-    reduce: Callable | None = None,
 ) -> list:
-    """Run one query per chunk; return their Arrow results (or ``reduce`` of each, computed
-    in the worker thread) in chunk order."""
-    reduce = reduce or (lambda table: table)
+    """Run one query per chunk; return their Arrow results in chunk order."""
     if len(chunks) == 1:
-        return [reduce(session.run(make_sql(chunks[0]), params))]
+        return [session.run(make_sql(chunks[0]), params)]
     threads = session.source.engine.threads or os.cpu_count() or 1
 
     def one(chunk):
         cur = session.cursor(threads=1)
         try:
-            return reduce(session.run(make_sql(chunk), params, con=cur))
+            return session.run(make_sql(chunk), params, con=cur)
         finally:
             cur.close()
 
@@ -163,55 +160,6 @@ def expanded_meat(row: dict, k: int, pilot: np.ndarray, coef: np.ndarray) -> tup
     scale = max(np.abs(np.diag(rr)).max(), np.abs(np.diag(quad)).max(), 1e-300)
     size = np.abs(np.diag(meat)).max()
     return meat, float(scale / size) if size > 0 else float("inf")
-
-
-def fold_units(table, q: int, mode: str, pilot: np.ndarray | None) -> dict:
-    """The sums unit_pass.sql computes, from a chunk's per-unit moments in numpy.
-
-    Used for chunks run on one thread each: the per-unit rows of one chunk (a few tens of
-    thousands) are folded by BLAS products in the worker, which is cheaper than DuckDB
-    evaluating the k^4/4 expansion sums one by one. Keys and meaning are those of the SQL.
-    """
-    n = table.column("n").to_numpy().astype(np.float64)
-    sums = np.column_stack([table.column(f"s{j}").to_numpy() for j in range(q)])
-    prods = np.empty((len(n), q, q))
-    for j in range(q):
-        for l in range(j, q):
-            prods[:, j, l] = prods[:, l, j] = table.column(f"p{j}_{l}").to_numpy()
-    if mode == "within":
-        entries = prods - sums[:, :, None] * (sums / n[:, None])[:, None, :]
-        keep = n > 1
-    elif mode == "plain":
-        entries, keep = prods, n > 0
-    else:  # layout: regressors, constant, outcome
-        order = list(range(q - 1))
-        entries = np.empty((len(n), q + 1, q + 1))
-        inner = order + [q - 1]
-        pos = list(range(q - 1)) + [q]
-        entries[np.ix_(np.arange(len(n)), pos, pos)] = prods[:, inner][:, :, inner]
-        entries[:, q - 1, pos] = entries[:, pos, q - 1] = sums
-        entries[:, q - 1, q - 1] = n
-        keep = n > 0
-    dim = entries.shape[1]
-    total = entries.sum(axis=0)
-    row = {f"w{j}_{l}": float(total[j, l]) for j in range(dim) for l in range(j, dim)}
-    row.update({f"r{j}": float(prods[:, j, j].sum()) for j in range(q)})
-    row.update(n_obs=int(n[keep].sum()), n_units=int(keep.sum()), singletons=int((~keep).sum()),
-               singleton_rows=int(n[~keep].sum()))
-    t_min, t_max = table.column("t_min"), table.column("t_max")
-    row["t_min"] = min(t_min.to_pylist()) if len(n) else None
-    row["t_max"] = max(t_max.to_pylist()) if len(n) else None
-    if pilot is not None:
-        k = dim - 1
-        b = entries[:, :k, :k]
-        r = entries[:, :k, k] - b @ pilot
-        idx = pairs(k)
-        flat = np.column_stack([b[:, a, c] for a, c in idx])
-        rr, rb, bb = r.T @ r, r.T @ flat, flat.T @ flat
-        row.update({f"rr{j}_{m}": float(rr[j, m]) for j in range(k) for m in range(j, k)})
-        row.update({f"rb{j}_{a}_{c}": float(rb[j, u]) for j in range(k) for u, (a, c) in enumerate(idx)})
-        row.update({f"bb{u}_{v}": float(bb[u, v]) for u in range(len(idx)) for v in range(u, len(idx))})
-    return row
 
 
 def pooled_matrix(rows: list[dict], q: int, intercept: bool) -> tuple[np.ndarray, np.ndarray, int]:

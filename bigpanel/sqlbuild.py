@@ -192,20 +192,19 @@ def design_rows_sql(
     return render("design_rows", source=source, columns=", ".join(items))
 
 
-def differenced_rows_sql(rows: str, n_clusters: int, q: int, kept_in_levels: frozenset[int] = frozenset()) -> str:
-    """Difference every design column except those in ``kept_in_levels`` (period
-    indicators added to the differenced equation)."""
+def differenced_rows_sql(rows: str, n_clusters: int, q: int, streaming: bool = False) -> str:
+    """Difference every design column within units. ``streaming`` differences rows in
+    their scan order (no sort): only for one-thread chunks of unit- and period-sorted files."""
     keys = ["k_unit", "k_period"] + [f"k_c{i}" for i in range(n_clusters)]
-    diffs = ", ".join(
-        f"{_z(j)} AS {_z(j)}" if j in kept_in_levels else f"{_z(j)} - lag({_z(j)}) OVER w AS {_z(j)}" for j in range(q)
-    )
-    return render("differenced_rows", rows=f"({rows})", keys=", ".join(keys), diffs=diffs)
+    diffs = ", ".join(f"{_z(j)} - lag({_z(j)}) OVER w AS {_z(j)}" for j in range(q))
+    window = "" if streaming else "PARTITION BY k_unit ORDER BY k_period"
+    return render("differenced_rows", rows=f"({rows})", keys=", ".join(keys), diffs=diffs, window=window)
 
 
 def valid_predicate(q: int, differenced: bool, step: int) -> str:
     terms = [f"isfinite({_z(j)})" for j in range(q)]
     if differenced:
-        terms.insert(0, f"k_prev = k_period - {int(step)}")
+        terms.insert(0, f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)}")
     return " AND ".join(terms)
 
 
@@ -292,7 +291,7 @@ def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum
 
 def row_counts_sql(rows: str, q: int, differenced: bool, step: int) -> str:
     finite = " AND ".join(f"isfinite({_z(j)})" for j in range(q))
-    usable = f"k_prev = k_period - {int(step)} AND " if differenced else ""
+    usable = f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)} AND " if differenced else ""
     counts = ["count(*) AS n_rows", f"count(*) FILTER (WHERE {usable}NOT coalesce({finite}, false)) AS missing"]
     if differenced:
         counts += [
