@@ -1,7 +1,8 @@
 """Panel checkup: keys, period grid, balance, gaps, duplicates, missing values and the
 within/between split of every numeric column, from a few aggregate-only scans.
 
-The scans (templates ``sql/checkup_*.sql``):
+The scans (templates ``sql/checkup_*.sql``, built by :mod:`bigpanel.sqlbuild`; this module
+runs them and reads their rows):
 
 0. ``checkup_shifts``: the mean of each numeric column over the first rows (a tiny read),
    subtracted in the scans below, so that values far from zero (a large offset) keep
@@ -222,7 +223,7 @@ def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str]
         schema = session.columns()
         checked = [c for c in schema if c not in (unit, period)] if columns is None else list(dict.fromkeys(columns))
         numeric = [c for c in checked if is_numeric(schema[c])]
-        period_value = _period_value(period, kinds)
+        period_value = sqlbuild.period_value(period, kinds)
 
         shifts = _probe_shifts(session, checked, numeric)
         chunks = [session.source.filtered(c.files, c.unit_range(unit)) for c in moments.plan_chunks(session, unit)]
@@ -313,49 +314,14 @@ def _no_rows_message(source: Source, unit: str, period: str, n_rows: np.ndarray)
 # ---------------------------------------------------------------- scan 1: periods
 
 
-def _period_value(period: str, kind: str) -> str:
-    """The period as the scans see it: timestamps of every precision and zone as TIMESTAMP."""
-    quoted = sqlbuild.quote_ident(period)
-    return f"CAST({quoted} AS TIMESTAMP)" if kind == "timestamp" else quoted
-
-
-def build_shift_probe(source_sql: str, checked: Sequence[str], numeric: Sequence[int]) -> str:
-    """SQL of the shift probe: c_j for each index j (into ``checked``) in ``numeric``."""
-    means = [f"favg(CAST({sqlbuild.quote_ident(checked[j])} AS DOUBLE)) AS c_{j}" for j in numeric]
-    return sqlbuild.render("checkup_shifts", source=source_sql, means=", ".join(means))
-
-
 def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> dict[int, float]:
     """Column index -> shift, for the numeric columns (0.0 where the first rows have no value)."""
     indices = [j for j, c in enumerate(checked) if c in numeric]
     if not indices:
         return {}
-    row = session.run(build_shift_probe(session.source.filtered(), checked, indices), {"probe_rows": PROBE_ROWS}).to_pylist()[0]
+    sql = sqlbuild.checkup_shift_probe_sql(session.source.filtered(), checked, indices)
+    row = session.run(sql, {"probe_rows": PROBE_ROWS}).to_pylist()[0]
     return {j: row[f"c_{j}"] if row[f"c_{j}"] is not None and math.isfinite(row[f"c_{j}"]) else 0.0 for j in indices}
-
-
-def _shifted(name: str, j: int) -> str:
-    return f"(CAST({sqlbuild.quote_ident(name)} AS DOUBLE) - $c_{j})"
-
-
-def build_period_scan(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
-                      numeric: Sequence[int]) -> str:
-    """SQL of the period scan. Column j's aggregates are n_j and, for j in ``numeric``
-    (indices into ``checked``), the shifted mean_j and ss_j, and the unshifted min_j, max_j."""
-    parts = []
-    for j, name in enumerate(checked):
-        q = sqlbuild.quote_ident(name)
-        parts.append(f"count({q}) AS n_{j}")
-        if j in numeric:
-            v, raw = _shifted(name, j), f"CAST({q} AS DOUBLE)"
-            parts += [f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}", f"min({raw}) AS min_{j}", f"max({raw}) AS max_{j}"]
-    return sqlbuild.render(
-        "checkup_periods",
-        source=source_sql,
-        period=period_value,
-        unit=sqlbuild.quote_ident(unit),
-        column_aggregates="".join(",\n       " + p for p in parts),
-    )
 
 
 def _scan_periods(session: Session, chunks: list[str], unit: str, period_value: str, checked: list[str],
@@ -363,10 +329,12 @@ def _scan_periods(session: Session, chunks: list[str], unit: str, period_value: 
     """Scan 1 over each chunk; the chunks' period rows are kept side by side (every figure
     taken from them is a sum, or a two-pass formula valid over any partition of the rows)."""
     if len(chunks) > 1:
-        chunks = chunks + [f"(SELECT * FROM {session.source.filtered()} AS src WHERE {sqlbuild.quote_ident(unit)} IS NULL)"]
+        chunks = chunks + [sqlbuild.rows_without_unit_sql(session.source.filtered(), unit)]
     max_groups = 2 * MAX_PERIODS + 2  # each period twice (with and without a unit), plus NULL periods
-    tables = moments.run_chunks(session, chunks, lambda src: build_period_scan(src, unit, period_value, checked, list(shifts)),
-                                {"max_groups": max_groups} | _shift_params(shifts))
+    tables = moments.run_chunks(
+        session, chunks, lambda src: sqlbuild.checkup_period_scan_sql(src, unit, period_value, checked, list(shifts)),
+        {"max_groups": max_groups} | _shift_params(shifts),
+    )
     table = pa.concat_tables(tables)
     n_distinct = len(table.column("period_value").drop_null().unique())
     if any(t.num_rows >= max_groups for t in tables) or n_distinct > MAX_PERIODS:
@@ -466,38 +434,6 @@ def _shift_params(shifts: dict[int, float]) -> dict[str, float]:
 # ---------------------------------------------------------------- scan 2: units
 
 
-def slot_expression(period_value: str, mode: str) -> str:
-    """The period's slot on the grid; ``$first`` is the first period's ordinal, ``$step`` the step."""
-    ordinal = {
-        "integer": f"CAST({period_value} AS HUGEINT)",
-        "month": f"(year({period_value}) * 12 + month({period_value}) - 1)",
-        "day": f"date_diff('day', DATE '1970-01-01', CAST({period_value} AS DATE))",
-        "microsecond": f"epoch_us({period_value})",
-    }[mode]
-    return f"CAST(({ordinal} - $first) // $step AS BIGINT)"
-
-
-def build_unit_scan(source_sql: str, unit: str, period_value: str, checked: Sequence[str], numeric: Sequence[int],
-                    mode: str, bitmap: bool) -> str:
-    """SQL of the unit scan; each j in ``numeric`` (indices into ``checked``) gives
-    within_ss_j and varying_units_j."""
-    values = [f"{_shifted(checked[j], j)} AS v_{j}" for j in numeric]
-    per_unit = [f"regr_sxx(v_{j}, v_{j}) AS ss_{j}" for j in numeric]
-    totals = [f"fsum(ss_{j}) AS within_ss_{j},\n       count(*) FILTER (WHERE ss_{j} > 0) AS varying_units_{j}"
-              for j in numeric]
-    return sqlbuild.render(
-        "checkup_units",
-        source=source_sql,
-        unit=sqlbuild.quote_ident(unit),
-        period=period_value,
-        slot=slot_expression(period_value, mode),
-        distinct_slots="bit_count(bitstring_agg(slot, 0, $last_slot))" if bitmap else "count(DISTINCT slot)",
-        column_values="".join(", " + v for v in values),
-        unit_aggregates="".join(",\n           " + a for a in per_unit),
-        column_totals="".join(",\n       " + t for t in totals),
-    )
-
-
 def _scan_units(session: Session, chunks: list[str], unit: str, period_value: str, checked: list[str],
                 shifts: dict[int, float], grid: _Grid) -> dict:
     """Scan 2 over each chunk (every unit lies in one chunk), added up in chunk order."""
@@ -506,7 +442,9 @@ def _scan_units(session: Session, chunks: list[str], unit: str, period_value: st
     if bitmap:
         params["last_slot"] = grid.n_slots - 1
     tables = moments.run_chunks(
-        session, chunks, lambda src: build_unit_scan(src, unit, period_value, checked, list(shifts), grid.mode, bitmap), params
+        session, chunks,
+        lambda src: sqlbuild.checkup_unit_scan_sql(src, unit, period_value, checked, list(shifts), grid.mode, bitmap),
+        params,
     )
     rows = [t.to_pylist()[0] for t in tables]
     out: dict[str, Any] = {}
@@ -539,13 +477,9 @@ def _quartiles(histogram) -> tuple[int, ...]:
 # ---------------------------------------------------------------- scan 3: duplicate keys
 
 
-def build_duplicate_scan(source_sql: str, unit: str, period_value: str) -> str:
-    return sqlbuild.render("checkup_duplicates", source=source_sql, unit=sqlbuild.quote_ident(unit), period=period_value)
-
-
 def _scan_duplicates(session: Session, chunks: list[str], unit: str, period_value: str) -> tuple[list[tuple[Any, Any, int]], int]:
     """Scan 3 over each chunk: the first offending keys of all chunks, and their count."""
-    tables = moments.run_chunks(session, chunks, lambda src: build_duplicate_scan(src, unit, period_value),
+    tables = moments.run_chunks(session, chunks, lambda src: sqlbuild.checkup_duplicate_scan_sql(src, unit, period_value),
                                 {"n_examples": N_DUPLICATE_EXAMPLES})
     rows = [r for t in tables for r in t.to_pylist()]
     n_keys = sum(int(t.column("n_keys")[0].as_py()) for t in tables if t.num_rows)

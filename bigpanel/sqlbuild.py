@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import re
+from collections.abc import Sequence
 from functools import cache
 from importlib import resources
 from pathlib import Path
@@ -452,3 +453,86 @@ def probe_sql(rows: str, q: int) -> str:
 
 def head_sql(source: str, limit: int) -> str:
     return f"(SELECT * FROM {source} AS src LIMIT {int(limit)})"
+
+
+# ---------------------------------------------------------------- checkup queries
+# The scans of bigpanel.panel (sql/checkup_*.sql). Checked columns are numbered j by
+# their place in ``checked``; ``numeric`` lists the j of the numeric ones, which arrive
+# shifted by $c_{j}.
+
+
+def period_value(period: str, kind: str) -> str:
+    """The period as the scans see it: timestamps of every precision and zone as TIMESTAMP."""
+    quoted = quote_ident(period)
+    return f"CAST({quoted} AS TIMESTAMP)" if kind == "timestamp" else quoted
+
+
+def checkup_shift_probe_sql(source_sql: str, checked: Sequence[str], numeric: Sequence[int]) -> str:
+    """SQL of the shift probe: c_j for each index j (into ``checked``) in ``numeric``."""
+    means = [f"favg(CAST({quote_ident(checked[j])} AS DOUBLE)) AS c_{j}" for j in numeric]
+    return render("checkup_shifts", source=source_sql, means=", ".join(means))
+
+
+def _shifted(name: str, j: int) -> str:
+    return f"(CAST({quote_ident(name)} AS DOUBLE) - $c_{j})"
+
+
+def rows_without_unit_sql(source_sql: str, unit: str) -> str:
+    """The rows of ``source_sql`` with no unit (they fall outside every unit-range chunk)."""
+    return f"(SELECT * FROM {source_sql} AS src WHERE {quote_ident(unit)} IS NULL)"
+
+
+def checkup_period_scan_sql(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
+                            numeric: Sequence[int]) -> str:
+    """SQL of the period scan. Column j's aggregates are n_j and, for j in ``numeric``
+    (indices into ``checked``), the shifted mean_j and ss_j, and the unshifted min_j, max_j."""
+    parts = []
+    for j, name in enumerate(checked):
+        q = quote_ident(name)
+        parts.append(f"count({q}) AS n_{j}")
+        if j in numeric:
+            v, raw = _shifted(name, j), f"CAST({q} AS DOUBLE)"
+            parts += [f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}", f"min({raw}) AS min_{j}", f"max({raw}) AS max_{j}"]
+    return render(
+        "checkup_periods",
+        source=source_sql,
+        period=period_value,
+        unit=quote_ident(unit),
+        column_aggregates="".join(",\n       " + p for p in parts),
+    )
+
+
+def slot_expression(period_value: str, mode: str) -> str:
+    """The period's slot on the grid; ``$first`` is the first period's ordinal, ``$step`` the step."""
+    ordinal = {
+        "integer": f"CAST({period_value} AS HUGEINT)",
+        "month": f"(year({period_value}) * 12 + month({period_value}) - 1)",
+        "day": f"date_diff('day', DATE '1970-01-01', CAST({period_value} AS DATE))",
+        "microsecond": f"epoch_us({period_value})",
+    }[mode]
+    return f"CAST(({ordinal} - $first) // $step AS BIGINT)"
+
+
+def checkup_unit_scan_sql(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
+                          numeric: Sequence[int], mode: str, bitmap: bool) -> str:
+    """SQL of the unit scan; each j in ``numeric`` (indices into ``checked``) gives
+    within_ss_j and varying_units_j."""
+    values = [f"{_shifted(checked[j], j)} AS v_{j}" for j in numeric]
+    per_unit = [f"regr_sxx(v_{j}, v_{j}) AS ss_{j}" for j in numeric]
+    totals = [f"fsum(ss_{j}) AS within_ss_{j},\n       count(*) FILTER (WHERE ss_{j} > 0) AS varying_units_{j}"
+              for j in numeric]
+    return render(
+        "checkup_units",
+        source=source_sql,
+        unit=quote_ident(unit),
+        period=period_value,
+        slot=slot_expression(period_value, mode),
+        distinct_slots="bit_count(bitstring_agg(slot, 0, $last_slot))" if bitmap else "count(DISTINCT slot)",
+        column_values="".join(", " + v for v in values),
+        unit_aggregates="".join(",\n           " + a for a in per_unit),
+        column_totals="".join(",\n       " + t for t in totals),
+    )
+
+
+def checkup_duplicate_scan_sql(source_sql: str, unit: str, period_value: str) -> str:
+    return render("checkup_duplicates", source=source_sql, unit=quote_ident(unit), period=period_value)

@@ -13,7 +13,6 @@ import pyarrow as pa
 import pytest
 
 from bigpanel import open_source, sqlbuild
-from bigpanel import panel as checkup
 from bigpanel.panel import inspect_panel
 
 SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
@@ -55,11 +54,24 @@ def test_template_placeholders_are_declared_and_filled(path):
     ],
 )
 def test_slot_expression(mode, expected):
-    assert checkup.slot_expression('"t"', mode) == expected
+    assert sqlbuild.slot_expression('"t"', mode) == expected
+
+
+@pytest.mark.parametrize(
+    ("sql", "expected"),
+    [
+        (sqlbuild.period_value('a"b', "integer"), '"a""b"'),
+        (sqlbuild.period_value('a"b', "timestamp"), 'CAST("a""b" AS TIMESTAMP)'),
+        (sqlbuild.rows_without_unit_sql("(SELECT * FROM x)", "order"),
+         '(SELECT * FROM (SELECT * FROM x) AS src WHERE "order" IS NULL)'),
+    ],
+)
+def test_checkup_fragment_text(sql, expected):
+    assert sql == expected
 
 
 def test_duplicate_scan_text():
-    sql = checkup.build_duplicate_scan("(SELECT * FROM x)", 'a"b', '"order"')
+    sql = sqlbuild.checkup_duplicate_scan_sql("(SELECT * FROM x)", 'a"b', '"order"')
     assert 'SELECT "a""b" AS unit_key, "order" AS period_key, count(*) AS n_rows' in sql
     assert 'FROM (SELECT * FROM x) AS src' in sql and "LIMIT $n_examples" in sql
 
@@ -72,11 +84,12 @@ def test_built_scans_bind_in_duckdb(bitmap):
     source = "(SELECT * FROM t)"
     checked = ["select", "sum x"]
     scans = [
-        (checkup.build_shift_probe(source, checked, [1]), {"probe_rows": 3}),
-        (checkup.build_period_scan(source, "order", '"a""b"', checked, [1]), {"max_groups": 10, "c_1": 0.5}),
-        (checkup.build_unit_scan(source, "order", '"a""b"', checked, [1], "month", bitmap),
+        (sqlbuild.checkup_shift_probe_sql(source, checked, [1]), {"probe_rows": 3}),
+        (sqlbuild.checkup_period_scan_sql(source, "order", '"a""b"', checked, [1]), {"max_groups": 10, "c_1": 0.5}),
+        (sqlbuild.checkup_unit_scan_sql(source, "order", '"a""b"', checked, [1], "month", bitmap),
          {"first": 0, "step": 1, "n_periods": 1, "c_1": 0.5} | ({"last_slot": 0} if bitmap else {})),
-        (checkup.build_duplicate_scan(source, "order", '"a""b"'), {"n_examples": 5}),
+        (sqlbuild.checkup_duplicate_scan_sql(source, "order", '"a""b"'), {"n_examples": 5}),
+        (f"SELECT count(*) FROM {sqlbuild.rows_without_unit_sql(source, 'order')}", {}),
     ]
     for sql, params in scans:
         con.execute(sql, params).fetchall()
