@@ -138,6 +138,7 @@ class _Fit:
         self.notes: list[str] = []
         self.streaming = False  # first differences in file order within chunks (see run)
         self.counted: dict | None = None  # rows by reason, once counted
+        self._bounds: tuple | None = None
 
     # ------------------------------------------------------------------ checks
     def _check(self) -> None:
@@ -221,10 +222,16 @@ class _Fit:
         ptype = self.s.columns()[self.spec.period].upper()
         return is_numeric(ptype) and not ptype.startswith(("FLOAT", "DOUBLE", "REAL", "DECIMAL", "BOOLEAN"))
 
+    def _period_bounds(self) -> tuple[object, object]:
+        """First and last period in the filtered source (reads the period column only)."""
+        if self._bounds is None:
+            p = sqlbuild.quote_ident(self.spec.period)
+            row = self.s.run(f"SELECT min({p}) AS lo, max({p}) AS hi FROM {self.s.source.filtered()} AS src").to_pylist()[0]
+            self._bounds = (row["lo"], row["hi"])
+        return self._bounds
+
     def _period_range(self) -> tuple[int, int]:
-        p = sqlbuild.quote_ident(self.spec.period)
-        row = self.s.run(f"SELECT min({p}) AS lo, max({p}) AS hi FROM {self.s.source.filtered()} AS src").to_pylist()[0]
-        lo, hi = row["lo"], row["hi"]
+        lo, hi = self._period_bounds()
         if lo is None:
             raise EstimationError(self._empty_message())
         if hi - lo > MAX_PERIOD_SPAN:
@@ -439,9 +446,6 @@ class _Fit:
         acc.n_units += int(row["n_units"])
         acc.singletons += int(row["singletons"])
         acc.singleton_rows += int(row["singleton_rows"])
-        if row["t_min"] is not None:
-            acc.t_min = row["t_min"] if acc.t_min is None else min(acc.t_min, row["t_min"])
-            acc.t_max = row["t_max"] if acc.t_max is None else max(acc.t_max, row["t_max"])
 
     def _pilot(self, design: _Design, params: dict) -> np.ndarray | None:
         """Coefficients from the first rows, the centre of the one-pass meat expansion;
@@ -702,6 +706,8 @@ class _Fit:
         lost = {k2: v for k2, v in dropped.items() if v and k2 != "first_period_of_unit"}
         if lost:
             warnings.warn("Rows left out: " + ", ".join(f"{v:,} {k2.replace('_', ' ')}" for k2, v in lost.items()), DroppedRowsWarning, stacklevel=3)
+        if acc.t_min is None:
+            acc.t_min, acc.t_max = self._period_bounds()
         n_periods = None
         if isinstance(acc.t_min, (int, np.integer)) and isinstance(acc.t_max, (int, np.integer)):
             n_periods = int((acc.t_max - acc.t_min) // spec.period_step) + 1

@@ -203,14 +203,17 @@ def differenced_rows_sql(rows: str, n_clusters: int, q: int, streaming: bool = F
 
 
 def valid_predicate(q: int, differenced: bool, step: int) -> str:
-    terms = [f"isfinite({_z(j)})" for j in range(q)]
+    """All design columns finite (and, for differences, the previous row the unit's previous
+    period). z * 0 is 0 for a finite z and NaN for an infinite or NaN one (NULL stays NULL),
+    so one comparison tests every column: cheaper than one isfinite() per column."""
+    terms = ["(" + " + ".join(f"{_z(j)} * 0" for j in range(q)) + ") = 0"]
     if differenced:
         terms.insert(0, f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)}")
     return " AND ".join(terms)
 
 
 def _moment_aggregates(q: int, total: str) -> list[str]:
-    aggs = ["count(*) AS n", "min(k_period) AS t_min", "max(k_period) AS t_max"]
+    aggs = ["count(*) AS n"]
     aggs += [f"{total}({_z(j)}) AS s{j}" for j in range(q)]
     aggs += [f"{total}({_z(j)} * {_z(l)}) AS p{j}_{l}" for j in range(q) for l in range(j, q)]
     return aggs
@@ -229,7 +232,8 @@ def unit_moments_sql(rows: str, q: int, n_clusters: int, valid: str, total: str 
 
 
 def pooled_moments_sql(rows: str, q: int, valid: str, total: str = "sum") -> str:
-    aggs = _moment_aggregates(q, total) + ["count(DISTINCT k_unit) AS n_units"]
+    aggs = _moment_aggregates(q, total) + ["count(DISTINCT k_unit) AS n_units", "min(k_period) AS t_min",
+                                           "max(k_period) AS t_max"]
     return render("pooled_moments", rows=f"({rows})", aggregates=", ".join(aggs), valid=valid)
 
 

@@ -1,7 +1,7 @@
 -- twoway_pass: one pass for unit and period effects (unbalanced panels exact, by
 -- Frisch-Waugh-Lovell with period indicators inside the unit-demeaned model).
 -- inputs:  {{used}}     used rows (design columns z_j, k_unit, k_period);
---          {{moments}}  count(*) AS n, t_min, t_max, sum(z_j) AS s_j, sum(z_j * z_l) AS p_j_l;
+--          {{moments}}  count(*) AS n, sum(z_j) AS s_j, sum(z_j * z_l) AS p_j_l;
 --          {{first}}, {{last}}  the smallest and largest period (whole numbers);
 --          {{totals}}   unit_pass.sql over the per-unit rows (FROM unit_rows);
 --          {{means}}    sum(s_j / n) AS m_j: per presence pattern, the sum of unit means;
