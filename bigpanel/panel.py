@@ -44,7 +44,7 @@ import pyarrow as pa
 
 from . import moments, sqlbuild
 from .errors import InputError
-from .source import Session, Source, is_numeric
+from .source import Session, Source, is_integer, is_numeric
 
 MAX_PERIODS = 1_000_000
 """More distinct periods than this and the period column is taken to be the wrong one."""
@@ -62,10 +62,6 @@ N_DUPLICATE_EXAMPLES = 5
 PROBE_ROWS = 20_000
 """First rows read for the columns' shifts."""
 
-_INTEGER_TYPES = (
-    "TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT",
-    "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "UHUGEINT",
-)  # fmt: skip
 _SUBDAY_UNITS = (("hour", 3_600_000_000), ("minute", 60_000_000), ("second", 1_000_000), ("microsecond", 1))
 
 
@@ -294,9 +290,9 @@ def _check_arguments(session: Session, unit: str, period: str, columns: Sequence
 
 
 def _period_kind(duck_type: str) -> str | None:
-    base = duck_type.upper().split("(")[0].strip()
-    if base in _INTEGER_TYPES:
+    if is_integer(duck_type):
         return "integer"
+    base = duck_type.upper().split("(")[0].strip()
     if base == "DATE":
         return "date"
     if base.startswith("TIMESTAMP"):

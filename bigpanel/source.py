@@ -23,10 +23,11 @@ import pyarrow.parquet as pq
 from . import sqlbuild
 from .errors import InputError, unknown_column
 
-NUMERIC_TYPES = (
+INTEGER_TYPES = (
     "TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
-    "UBIGINT", "UHUGEINT", "FLOAT", "DOUBLE", "REAL", "DECIMAL", "BOOLEAN",
+    "UBIGINT", "UHUGEINT",
 )  # fmt: skip
+NUMERIC_TYPES = INTEGER_TYPES + ("FLOAT", "DOUBLE", "REAL", "DECIMAL", "BOOLEAN")
 _FRAME_VIEW = "bigpanel_frame"
 _ATTACHED = "bigpanel_src"
 
@@ -377,6 +378,11 @@ class Session:
 
 def is_numeric(duck_type: str) -> bool:
     return duck_type.upper().split("(")[0] in NUMERIC_TYPES
+
+
+def is_integer(duck_type: str) -> bool:
+    """A whole-number type (a period that can be differenced or lagged)."""
+    return duck_type.upper().split("(")[0] in INTEGER_TYPES
 
 
 def _find_corrupt_parquet(files: Sequence[str]) -> tuple[str, str] | None:
