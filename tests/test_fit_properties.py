@@ -54,6 +54,15 @@ def order_tolerance(result) -> float:
     return max(1e-12, 2**6 * result.condition_number * EPS)
 
 
+def assert_same_coefficients(a, b) -> None:
+    """The same terms, and estimates and standard errors within order_tolerance(a)."""
+    tol = order_tolerance(a)
+    ta, tb = table(a), table(b)
+    assert ta.keys() == tb.keys()
+    for term in ta:
+        np.testing.assert_allclose(tb[term], ta[term], rtol=tol, err_msg=term)
+
+
 @SETTINGS
 @given(seed=seeds, shape=shapes, estimator=estimators, target=st.sampled_from(["y", "x1", "x2"]),
        scale=st.floats(min_value=1e-2, max_value=1e3))
@@ -90,11 +99,7 @@ def test_row_order_changes_nothing(seed, shape, estimator):
     with tempfile.TemporaryDirectory() as folder:
         a = fit(write_parquet(df, Path(folder) / "sorted.parquet"), estimator)
         b = fit(write_parquet(shuffled, Path(folder) / "shuffled.parquet"), estimator)
-    tol = order_tolerance(a)
-    ta, tb = table(a), table(b)
-    assert ta.keys() == tb.keys()
-    for term in ta:
-        np.testing.assert_allclose(tb[term], ta[term], rtol=tol, err_msg=term)
+    assert_same_coefficients(a, b)
     assert (a.n_obs, a.n_units, a.rows_dropped) == (b.n_obs, b.n_units, b.rows_dropped)
 
 
@@ -121,11 +126,7 @@ def test_number_of_files_changes_nothing(seed, shape, estimator, n_files, se):
         with mock.patch.object(bigpanel.moments, "CHUNK_ROWS", 1):
             many = fit(parts, estimator, se=se)
     assert planned == [1, n_files]  # the two paths the property compares were taken
-    tol = order_tolerance(one)
-    ta, tb = table(one), table(many)
-    assert ta.keys() == tb.keys()
-    for term in ta:
-        np.testing.assert_allclose(tb[term], ta[term], rtol=tol, err_msg=term)
+    assert_same_coefficients(one, many)
     assert (one.n_obs, one.n_units, one.variance["n_clusters"]) == (many.n_obs, many.n_units, many.variance["n_clusters"])
 
 
