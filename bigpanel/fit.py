@@ -32,7 +32,7 @@ from .errors import (
 )  # fmt: skip
 from .results import Coefficient, FitResult
 from .solve import solve_normal
-from .source import Engine, Session, Source, is_numeric, open_source
+from .source import Engine, Session, Source, is_integer, is_numeric, open_source
 from .spec import FitSpec, Term
 
 PROBE_ROWS = 20_000  # first rows used for the shifts and the pilot coefficients
@@ -148,7 +148,7 @@ class _Fit:
         s.check_filter()
         if spec.needs_order:
             ptype = s.columns()[spec.period]
-            if not is_numeric(ptype) or ptype.upper().startswith(("FLOAT", "DOUBLE", "REAL", "DECIMAL", "BOOLEAN")):
+            if not is_integer(ptype):
                 raise InputError(
                     f"Column '{spec.period}' in {s.source.label} has type {ptype}; first differences and lags need "
                     "whole-number periods. Use a period index column (for example months since a start date)."
@@ -220,13 +220,12 @@ class _Fit:
 
     def _integer_period(self) -> bool:
         ptype = self.s.columns()[self.spec.period].upper()
-        return is_numeric(ptype) and not ptype.startswith(("FLOAT", "DOUBLE", "REAL", "DECIMAL", "BOOLEAN"))
+        return is_integer(ptype)
 
     def _period_bounds(self) -> tuple[object, object]:
         """First and last period in the filtered source (reads the period column only)."""
         if self._bounds is None:
-            p = sqlbuild.quote_ident(self.spec.period)
-            row = self.s.run(f"SELECT min({p}) AS lo, max({p}) AS hi FROM {self.s.source.filtered()} AS src").to_pylist()[0]
+            row = self.s.run(sqlbuild.period_bounds_sql(self.s.source.filtered(), self.spec.period)).to_pylist()[0]
             self._bounds = (row["lo"], row["hi"])
         return self._bounds
 
@@ -575,7 +574,7 @@ class _Fit:
         src = self.s.source
         if src.kind == "parquet" and not src.where:
             return sum(pq.read_metadata(f).num_rows for f in src.files)
-        return int(self.s.run(f"SELECT count(*) AS n FROM {src.filtered()} AS src").column("n")[0].as_py())
+        return int(self.s.run(sqlbuild.count_rows_sql(src.filtered())).column("n")[0].as_py())
 
     def _count_rows(self, design: _Design, params: dict) -> dict:
         """Rows by reason, over all rows (differences formed after sorting)."""
@@ -617,11 +616,11 @@ class _Fit:
         """Raise the error naming a few duplicate (unit, period) keys; with ``only_if_any``
         first look for them and return quietly when there are none."""
         spec = self.spec
-        sql = sqlbuild.duplicate_keys_sql(self.s.source.filtered(), spec.unit, spec.period)
-        rows = self.s.run(sql).to_pylist()
+        sql = sqlbuild.checkup_duplicate_scan_sql(self.s.source.filtered(), spec.unit, sqlbuild.quote_ident(spec.period))
+        rows = self.s.run(sql, {"n_examples": 5}).to_pylist()
         if only_if_any and not rows:
             return
-        shown = ", ".join(f"({r[spec.unit]}, {r[spec.period]})" for r in rows)
+        shown = ", ".join(f"({r['unit_key']}, {r['period_key']})" for r in rows)
         raise InputError(
             f"Columns '{spec.unit}' and '{spec.period}' in {self.s.source.label} have duplicate keys, for example {shown}. "
             f"{reason[0].upper() + reason[1:]} need one row per unit and period: filter or aggregate the duplicates."

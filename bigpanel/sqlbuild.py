@@ -307,12 +307,13 @@ def row_counts_sql(rows: str, q: int, differenced: bool, step: int) -> str:
     return render("row_counts", rows=f"({rows})", counts=", ".join(counts))
 
 
-def duplicate_keys_sql(source: str, unit: str, period: str, limit: int = 5) -> str:
-    u, p = quote_ident(unit), quote_ident(period)
-    return (
-        f"SELECT {u}, {p}, count(*) AS n FROM {source} AS src GROUP BY {u}, {p} "
-        f"HAVING count(*) > 1 ORDER BY {u}, {p} LIMIT {int(limit)}"
-    )
+def period_bounds_sql(source: str, period: str) -> str:
+    p = quote_ident(period)
+    return f"SELECT min({p}) AS lo, max({p}) AS hi FROM {source} AS src"
+
+
+def count_rows_sql(source: str) -> str:
+    return f"SELECT count(*) AS n FROM {source} AS src"
 
 
 def period_join_sql(n_periods: int, k: int) -> str:
