@@ -303,7 +303,7 @@ class _Fit:
         if design.absorbed_periods == "grouped":
             return self._accumulate_grouped(design, params, chunks, used, total)
         if mode != "within" and pilot is None:
-            results = moments.run_chunks(self.s, chunks, lambda f: sqlbuild.pooled_moments_sql(used(f), q, "true", total), params)
+            results = moments.run_chunks(self.s, chunks, lambda f: sqlbuild.pooled_moments_sql(used(f), q, total), params)
             rows = [t.to_pylist()[0] for t in results]
             mat, raw, n = moments.pooled_matrix(rows, q, mode == "intercept")
             lo = [r["t_min"] for r in rows if r["t_min"] is not None]
@@ -317,7 +317,7 @@ class _Fit:
             p.update({f"q{j}": float(v) for j, v in enumerate(pilot)})
 
         def make(chunk):
-            units = sqlbuild.unit_moments_sql(used(chunk), q, 0, "true", total)
+            units = sqlbuild.unit_moments_sql(used(chunk), q, total)
             return sqlbuild.unit_pass_sql(units, q, mode, expand, total)
 
         rows = [t.to_pylist()[0] for t in moments.run_chunks(self.s, chunks, make, p)]

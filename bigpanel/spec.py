@@ -161,7 +161,7 @@ class FitSpec:
         if intercept is None:
             intercept = estimator != "within"
         if estimator == "within" and intercept:
-            raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects absorb it.")
+            raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects already remove it.")
         if int(period_step) < 1:
             raise InputError(f"Option 'period_step' must be a whole number of 1 or more, got {period_step}.")
         return cls(

@@ -219,22 +219,19 @@ def _moment_aggregates(q: int, total: str) -> list[str]:
     return aggs
 
 
-def unit_moments_sql(rows: str, q: int, n_clusters: int, valid: str, total: str = "sum") -> str:
+def unit_moments_sql(used: str, q: int, total: str = "sum") -> str:
     """Per-unit n, sums s_j and products p_j_l (j <= l) of the q design columns.
 
     ``total`` is ``sum``, or ``fsum`` (compensated, order-independent) when the query
     runs on several threads and the result must not depend on their timing.
     """
-    aggs = _moment_aggregates(q, total)
-    for i in range(n_clusters):
-        aggs += [f"min(k_c{i}) AS c{i}", f"max(k_c{i}) AS c{i}_max"]
-    return render("unit_moments", rows=f"({rows})", aggregates=", ".join(aggs), valid=valid)
+    return render("unit_moments", rows=f"({used})", aggregates=", ".join(_moment_aggregates(q, total)))
 
 
-def pooled_moments_sql(rows: str, q: int, valid: str, total: str = "sum") -> str:
+def pooled_moments_sql(used: str, q: int, total: str = "sum") -> str:
     aggs = _moment_aggregates(q, total) + ["count(DISTINCT k_unit) AS n_units", "min(k_period) AS t_min",
                                            "max(k_period) AS t_max"]
-    return render("pooled_moments", rows=f"({rows})", aggregates=", ".join(aggs), valid=valid)
+    return render("pooled_moments", rows=f"({used})", aggregates=", ".join(aggs))
 
 
 def period_moments_sql(used: str, q: int, total: str = "sum") -> str:
