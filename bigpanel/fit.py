@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pyarrow.parquet as pq
-import scipy.stats
+import scipy.special  # t and F tails; scipy.stats alone takes ~0.8 s to import
 
 from . import moments, sqlbuild, variance
 from .errors import (
@@ -673,14 +673,14 @@ class _Fit:
             t[k - 1, : k - 1] = -c
             estimate[k - 1] = coef[k - 1] + c_y - c @ coef[: k - 1]
             vcov = t @ vcov @ t.T
-        crit = scipy.stats.t.ppf(0.975, var.df) if var.df > 0 else float("nan")
+        crit = float(scipy.special.stdtrit(var.df, 0.975)) if var.df > 0 else float("nan")
         coefs = []
         for j in range(k):
             if is_effect[j] or not sol.kept[j]:
                 continue
             se = math.sqrt(vcov[j, j]) if vcov[j, j] >= 0 else float("nan")
             tval = estimate[j] / se if se > 0 else float("nan")
-            p = 2 * scipy.stats.t.sf(abs(tval), var.df) if var.df > 0 else float("nan")
+            p = 2 * float(scipy.special.stdtr(var.df, -abs(tval))) if var.df > 0 else float("nan")
             coefs.append(Coefficient(labels[j], float(estimate[j]), se, float(tval), float(p),
                                      float(estimate[j] - crit * se), float(estimate[j] + crit * se)))
         slopes = [j for j in range(k) if sol.kept[j] and not is_effect[j] and labels[j] != "(intercept)"]
@@ -690,7 +690,7 @@ class _Fit:
             bs = estimate[slopes]
             try:
                 f_stat = float(bs @ np.linalg.solve(vs, bs) / len(slopes))
-                f_p = float(scipy.stats.f.sf(f_stat, len(slopes), var.df))
+                f_p = float(scipy.special.fdtrc(len(slopes), var.df, f_stat))
             except np.linalg.LinAlgError:
                 pass
         if var.n_clusters is not None:

@@ -39,7 +39,8 @@ import pyarrow.parquet as pq
 from . import sqlbuild
 from .source import Session, parquet_row_groups
 
-CHUNK_ROWS = 1_000_000  # rows per chunk query: a small GROUP BY, few queries to plan
+CHUNK_ROWS = 2_000_000  # most rows per chunk query: a small GROUP BY, few queries to plan
+MIN_CHUNK_ROWS = 250_000  # fewest rows worth a query of their own (planning costs ~10 ms)
 
 
 @dataclass(frozen=True)
@@ -59,7 +60,7 @@ def plan_chunks(session: Session, unit: str) -> list[Chunk]:
 
     When the row groups' unit ranges (footer statistics) follow one another, as in an
     extract sorted by unit, consecutive row groups are cut into chunks of about
-    CHUNK_ROWS rows at unit boundaries; each chunk keeps the units in [low, high), so a
+    four per thread (between MIN_CHUNK_ROWS and CHUNK_ROWS rows) at unit boundaries; each chunk keeps the units in [low, high), so a
     unit split across row groups still lies wholly in one chunk, and DuckDB skips the
     row groups outside the range. Otherwise the whole source is one chunk.
     """
@@ -71,7 +72,10 @@ def plan_chunks(session: Session, unit: str) -> list[Chunk]:
         groups = parquet_row_groups(src.files, unit)
     except Exception:  # noqa: BLE001 - unreadable footers are reported by the scan itself
         return whole
-    if not groups or sum(g[1] for g in groups) < 2 * CHUNK_ROWS:
+    total = sum(g[1] for g in groups) if groups else 0
+    threads = src.engine.threads or os.cpu_count() or 1
+    size = min(CHUNK_ROWS, max(MIN_CHUNK_ROWS, total // (4 * threads)))  # ~4 chunks per thread
+    if not groups or total < 2 * size:
         return whole
     try:
         groups.sort(key=lambda g: (g[2], g[3]))
@@ -85,7 +89,7 @@ def plan_chunks(session: Session, unit: str) -> list[Chunk]:
     files: list[str] = []
     rows, low = 0, None
     for i, (f, n, lo, hi) in enumerate(groups):
-        if rows >= CHUNK_ROWS and lo > groups[i - 1][3]:
+        if rows >= size and lo > groups[i - 1][3]:
             chunks.append(Chunk(tuple(dict.fromkeys(files)), low, lo))
             files, rows, low = [], 0, lo
         files.append(f)
