@@ -1,11 +1,13 @@
 """bigpanel.fit against dense statsmodels OLS on small unbalanced panels with gaps.
 
 Reference: statsmodels OLS with indicator columns (LSDV) or on differences computed in
-pandas (tests/panel_cases.py). Slopes agree to 1e-9 relative (1e-10 for the two-way
-effects design); standard errors to 1e-8 once the small-sample factors are matched:
-statsmodels counts every dummy column in K, bigpanel follows ESTIMATION.md (unit
-effects nested in the clusters do not count in CR1's K'), so each test computes both
-factors from N, K and G and rescales.
+pandas (tests/panel_cases.py); robust variances from statsmodels' sandwich_covariance
+module (cov_hc1, cov_cluster, cov_cluster_2groups) applied to the plain OLS fit.
+Slopes agree to 1e-9 relative (1e-10 for the two-way effects design); standard errors
+to 1e-8 once the small-sample factors are matched: statsmodels counts every dummy
+column in K, bigpanel follows ESTIMATION.md (unit effects nested in the clusters do
+not count in CR1's K'), so each test computes both factors from N, K and G and
+rescales.
 """
 
 from __future__ import annotations
@@ -14,6 +16,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from statsmodels.stats import sandwich_covariance as sw
 
 import bigpanel
 from panel_cases import codes, cr1_factor, differences, lsdv, unbalanced_panel, write_parquet
@@ -41,6 +44,10 @@ def ours(result, terms=REGRESSORS):
     return est, se
 
 
+def std_errors(vcov):
+    return np.sqrt(np.diag(vcov))
+
+
 # ------------------------------------------------------------------ within, one-way
 
 
@@ -62,65 +69,71 @@ def test_within_iid_matches_lsdv(panel):
 
 
 def test_within_hc1_matches_lsdv(panel):
-    # Source: statsmodels OLS (LSDV) with cov_type="HC1". By Frisch-Waugh-Lovell the
-    # slope block of the dense HC0 sandwich equals the within one; HC1 multiplies by
-    # N/(N - K_dense) there and by N/(N - K - absorbed) here.
+    # Source: statsmodels OLS (LSDV) and sandwich_covariance.cov_hc1. By
+    # Frisch-Waugh-Lovell the slope block of the dense HC0 sandwich equals the within
+    # one; HC1 multiplies by N/(N - K_dense) there and by N/(N - K - absorbed) here.
     df, path = panel
     model, k_dense = lsdv(df, REGRESSORS)
-    ref = model.fit(cov_type="HC1")
+    ref = model.fit()
+    ref_se = std_errors(sw.cov_hc1(ref))
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="hc1")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, g = len(df), df["unit"].nunique()
     ours_factor = n / (n - len(REGRESSORS) - g)
     sm_factor = n / (n - k_dense)
-    np.testing.assert_allclose(se, ref.bse[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
+    np.testing.assert_allclose(se, ref_se[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
     assert res.variance["small_sample_factor"] == pytest.approx(ours_factor, rel=1e-14)
 
 
 def test_within_cr1_unit_clusters_matches_lsdv(panel):
-    # Source: statsmodels OLS (LSDV) with cov_type="cluster" (CR1 with K_dense, every
-    # dummy counted); ESTIMATION.md / Cameron and Miller (2015): unit effects nested in
-    # unit clusters do not count in K'.
+    # Source: statsmodels OLS (LSDV) and sandwich_covariance.cov_cluster with
+    # use_correction=True (CR1 with K_dense, every dummy counted); ESTIMATION.md /
+    # Cameron and Miller (2015): unit effects nested in unit clusters do not count in K'.
     df, path = panel
     model, k_dense = lsdv(df, REGRESSORS)
-    ref = model.fit(cov_type="cluster", cov_kwds={"groups": codes(df["unit"])})
+    ref = model.fit()
+    ref_se = std_errors(sw.cov_cluster(ref, codes(df["unit"]), use_correction=True))
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster="unit")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, g = len(df), df["unit"].nunique()
     ours_factor = cr1_factor(g, n, len(REGRESSORS))
     sm_factor = cr1_factor(g, n, k_dense)
-    np.testing.assert_allclose(se, ref.bse[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
+    np.testing.assert_allclose(se, ref_se[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
     assert res.variance["n_clusters"] == g
     assert res.variance["df"] == g - 1
     assert res.variance["small_sample_factor"] == pytest.approx(ours_factor, rel=1e-14)
 
 
 def test_within_cr1_clusters_across_units_matches_lsdv(panel):
-    # Source: statsmodels OLS (LSDV), cov_type="cluster" on a column that varies within
-    # units ("shift"): the unit effects are not nested in these clusters, so K' counts
-    # them (ESTIMATION.md) and both factors use K + units.
+    # Source: statsmodels OLS (LSDV), sandwich_covariance.cov_cluster
+    # (use_correction=True) on a column that varies within units ("shift"): the unit
+    # effects are not nested in these clusters, so K' counts them (ESTIMATION.md) and
+    # both factors use K + units.
     df, path = panel
     model, k_dense = lsdv(df, REGRESSORS)
-    ref = model.fit(cov_type="cluster", cov_kwds={"groups": codes(df["shift"])})
+    ref = model.fit()
+    ref_se = std_errors(sw.cov_cluster(ref, codes(df["shift"]), use_correction=True))
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster="shift")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, g_units, g = len(df), df["unit"].nunique(), df["shift"].nunique()
     ours_factor = cr1_factor(g, n, len(REGRESSORS) + g_units)
     sm_factor = cr1_factor(g, n, k_dense)
-    np.testing.assert_allclose(se, ref.bse[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
+    np.testing.assert_allclose(se, ref_se[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
     assert res.variance["n_clusters"] == g
 
 
 def test_within_cr1_clusters_nesting_units_matches_lsdv(panel):
-    # Source: statsmodels OLS (LSDV), cov_type="cluster" on "region", a group of units:
-    # every unit lies inside one region, so the unit effects are nested in the clusters
-    # and do not count in K' (Cameron and Miller 2015, as ESTIMATION.md states).
+    # Source: statsmodels OLS (LSDV), sandwich_covariance.cov_cluster
+    # (use_correction=True) on "region", a group of units: every unit lies inside one
+    # region, so the unit effects are nested in the clusters and do not count in K'
+    # (Cameron and Miller 2015, as ESTIMATION.md states).
     df, path = panel
     model, k_dense = lsdv(df, REGRESSORS)
-    ref = model.fit(cov_type="cluster", cov_kwds={"groups": codes(df["region"])})
+    ref = model.fit()
+    ref_se = std_errors(sw.cov_cluster(ref, codes(df["region"]), use_correction=True))
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster="region")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
@@ -128,30 +141,31 @@ def test_within_cr1_clusters_nesting_units_matches_lsdv(panel):
     ours_factor = cr1_factor(g, n, len(REGRESSORS))
     sm_factor = cr1_factor(g, n, k_dense)
     assert res.variance["small_sample_factor"] == pytest.approx(ours_factor, rel=1e-12)
-    np.testing.assert_allclose(se, ref.bse[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
+    np.testing.assert_allclose(se, ref_se[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
 
 
 def test_within_two_way_clusters_matches_statsmodels(panel):
-    # Source: statsmodels OLS (LSDV), cov_type="cluster" with a two-column groups array
-    # (Cameron, Gelbach and Miller 2011: V_unit + V_period - V_intersection, each with
-    # its own CR1 factor). statsmodels uses K_dense in all three; ESTIMATION.md leaves
-    # the unit effects out of K' for the unit component only (they are nested there,
-    # not in periods or in unit-period cells). So the unit component is rescaled, using
-    # statsmodels' one-way unit-cluster variance.
+    # Source: statsmodels OLS (LSDV) and sandwich_covariance.cov_cluster_2groups with
+    # use_correction=True (Cameron, Gelbach and Miller 2011: V_unit + V_period -
+    # V_intersection, each a cov_cluster with its own G and CR1 factor). It returns
+    # (V_both, V_unit, V_period); statsmodels uses K_dense in all three components;
+    # ESTIMATION.md leaves the unit effects out of K' for the unit component only (they
+    # are nested there, not in periods or in unit-period cells). So the unit component
+    # is rescaled, using the V_unit it returns (statsmodels' one-way unit-cluster variance).
     df, path = panel
     model, k_dense = lsdv(df, REGRESSORS)
     unit_codes, period_codes = codes(df["unit"]), codes(df["period"])
-    two_way = model.fit(cov_type="cluster", cov_kwds={"groups": np.column_stack([unit_codes, period_codes])})
-    unit_part = model.fit(cov_type="cluster", cov_kwds={"groups": unit_codes})
+    ref = model.fit()
+    two_way, unit_part, _ = sw.cov_cluster_2groups(ref, unit_codes, group2=period_codes, use_correction=True)
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster=["unit", "period"])
     est, se = ours(res)
-    np.testing.assert_allclose(est, two_way.params[:2], rtol=SLOPE_RTOL)
+    np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, k = len(df), len(REGRESSORS)
     g_unit, g_period = df["unit"].nunique(), df["period"].nunique()
     g_cell = len(df[["unit", "period"]].drop_duplicates())
     factors = [cr1_factor(g_unit, n, k), cr1_factor(g_period, n, k + g_unit), cr1_factor(g_cell, n, k + g_unit)]
     adjust = factors[0] / cr1_factor(g_unit, n, k_dense) - 1.0
-    expected = two_way.cov_params()[:2, :2] + adjust * unit_part.cov_params()[:2, :2]
+    expected = two_way[:2, :2] + adjust * unit_part[:2, :2]
     # ESTIMATION.md: a two-way variance that is not positive semi-definite has its
     # negative eigenvalues set to zero, and the result says so (the 4-period panel).
     eigval, eigvec = np.linalg.eigh(expected)
@@ -182,18 +196,20 @@ def test_within_unit_and_period_effects_matches_lsdv(panel):
 
 
 def test_within_unit_and_period_effects_cr1_matches_lsdv(panel):
-    # Source: statsmodels OLS (LSDV, both sets), cov_type="cluster" by unit. K' here
-    # counts the slopes and the period indicators, not the unit effects (nested).
+    # Source: statsmodels OLS (LSDV, both sets), sandwich_covariance.cov_cluster
+    # (use_correction=True) by unit. K' here counts the slopes and the period
+    # indicators, not the unit effects (nested).
     df, path = panel
     model, k_dense = lsdv(df, REGRESSORS, period_dummies=True)
-    ref = model.fit(cov_type="cluster", cov_kwds={"groups": codes(df["unit"])})
+    ref = model.fit()
+    ref_se = std_errors(sw.cov_cluster(ref, codes(df["unit"]), use_correction=True))
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", effects=["unit", "period"])
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=TWO_EFFECTS_RTOL)
     n, g, t = len(df), df["unit"].nunique(), df["period"].nunique()
     ours_factor = cr1_factor(g, n, len(REGRESSORS) + t - 1)
     sm_factor = cr1_factor(g, n, k_dense)
-    np.testing.assert_allclose(se, ref.bse[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
+    np.testing.assert_allclose(se, ref_se[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
 
 
 # ------------------------------------------------------------------ pooled
@@ -201,18 +217,23 @@ def test_within_unit_and_period_effects_cr1_matches_lsdv(panel):
 
 @pytest.mark.parametrize("se", ["iid", "hc1", "cluster"])
 def test_pooled_matches_ols_with_constant(panel, se):
-    # Source: statsmodels OLS with a constant (plain pooled least squares); no effects
-    # are absorbed, so K is the same on both sides and the factors agree.
+    # Source: statsmodels OLS with a constant (plain pooled least squares): iid errors
+    # from its bse, hc1 and cluster from sandwich_covariance.cov_hc1 and cov_cluster
+    # (use_correction=True); no effects are absorbed, so K is the same on both sides and
+    # the factors agree.
     df, path = panel
     model, _ = lsdv(df, REGRESSORS, unit_dummies=False, constant=True)
-    kwargs = {"cov_type": "nonrobust"} if se == "iid" else {"cov_type": "HC1"} if se == "hc1" else {
-        "cov_type": "cluster", "cov_kwds": {"groups": codes(df["unit"])}}
-    ref = model.fit(**kwargs)
+    ref = model.fit()
+    ref_se = {
+        "iid": ref.bse,
+        "hc1": std_errors(sw.cov_hc1(ref)),
+        "cluster": std_errors(sw.cov_cluster(ref, codes(df["unit"]), use_correction=True)),
+    }[se]
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", estimator="pooled", se=se)
     terms = REGRESSORS + ["(intercept)"]
     est, errs = ours(res, terms)
     np.testing.assert_allclose(est, ref.params, rtol=SLOPE_RTOL)
-    np.testing.assert_allclose(errs, ref.bse, rtol=SE_RTOL)
+    np.testing.assert_allclose(errs, ref_se, rtol=SE_RTOL)
     assert res.n_obs == len(df)
 
 
@@ -221,19 +242,21 @@ def test_pooled_matches_ols_with_constant(panel, se):
 
 def test_first_difference_matches_ols_on_differences(panel):
     # Source: statsmodels OLS with a constant on differences computed by hand in pandas
-    # (consecutive periods only), cluster-robust by unit. K = slopes + constant on both
+    # (consecutive periods only), cluster-robust by unit through
+    # sandwich_covariance.cov_cluster (use_correction=True). K = slopes + constant on both
     # sides; G = units with at least one difference.
     df, path = panel
     d = differences(df, ["y", *REGRESSORS])
     x = sm.add_constant(d[REGRESSORS].to_numpy(), prepend=False)
-    ref = sm.OLS(d["y"].to_numpy(), x).fit(cov_type="cluster", cov_kwds={"groups": codes(d["unit"])})
+    ref = sm.OLS(d["y"].to_numpy(), x).fit()
+    ref_se = std_errors(sw.cov_cluster(ref, codes(d["unit"]), use_correction=True))
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", estimator="first-difference")
     terms = REGRESSORS + ["(intercept)"]
     est, se = ours(res, terms)
     np.testing.assert_allclose(est, ref.params, rtol=SLOPE_RTOL)
     n, g = len(d), d["unit"].nunique()
     ratio = cr1_factor(g, n, len(terms)) / cr1_factor(g, n, x.shape[1])
-    np.testing.assert_allclose(se, ref.bse * np.sqrt(ratio), rtol=SE_RTOL)
+    np.testing.assert_allclose(se, ref_se * np.sqrt(ratio), rtol=SE_RTOL)
     assert res.n_obs == n
     assert res.variance["n_clusters"] == g
 
@@ -252,15 +275,17 @@ def test_first_difference_iid_matches_ols_on_differences(panel):
 def test_first_difference_with_period_effects_matches_ols(panel):
     # Source: statsmodels OLS on hand-made differences with a constant and one
     # indicator per differenced period but the first (period intercepts in the
-    # differenced equation), cluster-robust by unit; K counts the indicators on both
-    # sides.
+    # differenced equation), cluster-robust by unit through
+    # sandwich_covariance.cov_cluster (use_correction=True); K counts the indicators on
+    # both sides.
     df, path = panel
     d = differences(df, ["y", *REGRESSORS])
     periods = pd.get_dummies(d["period"], drop_first=True, dtype=float).to_numpy()
     x = np.column_stack([d[REGRESSORS].to_numpy(), np.ones(len(d)), periods])
-    ref = sm.OLS(d["y"].to_numpy(), x).fit(cov_type="cluster", cov_kwds={"groups": codes(d["unit"])})
+    ref = sm.OLS(d["y"].to_numpy(), x).fit()
+    ref_se = std_errors(sw.cov_cluster(ref, codes(d["unit"]), use_correction=True))
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", estimator="first-difference", effects="period")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
-    np.testing.assert_allclose(se, ref.bse[:2], rtol=SE_RTOL)  # same K, N, G: same factor
+    np.testing.assert_allclose(se, ref_se[:2], rtol=SE_RTOL)  # same K, N, G: same factor
     assert res.n_obs == len(d)
