@@ -39,7 +39,7 @@ import pyarrow.parquet as pq
 from . import sqlbuild
 from .source import Session, parquet_row_groups
 
-CHUNK_ROWS = 2_000_000  # most rows per chunk query: a small GROUP BY, few queries to plan
+CHUNK_ROWS = 1_000_000  # most rows per chunk query: bounds the GROUP BY (memory flat in rows)
 MIN_CHUNK_ROWS = 250_000  # fewest rows worth a query of their own (planning costs ~10 ms)
 
 
