@@ -60,7 +60,7 @@ def plan_chunks(session: Session, unit: str) -> list[Chunk]:
 
     When the row groups' unit ranges (footer statistics) follow one another, as in an
     extract sorted by unit, consecutive row groups are cut into chunks of about
-    four per thread (between MIN_CHUNK_ROWS and CHUNK_ROWS rows) at unit boundaries; each chunk keeps the units in [low, high), so a
+    two or more per thread (between MIN_CHUNK_ROWS and CHUNK_ROWS rows) at unit boundaries; each chunk keeps the units in [low, high), so a
     unit split across row groups still lies wholly in one chunk, and DuckDB skips the
     row groups outside the range. Otherwise the whole source is one chunk.
     """
@@ -74,7 +74,7 @@ def plan_chunks(session: Session, unit: str) -> list[Chunk]:
         return whole
     total = sum(g[1] for g in groups) if groups else 0
     threads = src.engine.threads or os.cpu_count() or 1
-    size = min(CHUNK_ROWS, max(MIN_CHUNK_ROWS, total // (4 * threads)))  # ~4 chunks per thread
+    size = min(CHUNK_ROWS, max(MIN_CHUNK_ROWS, total // (2 * threads)))  # at least 2 chunks per thread
     if not groups or total < 2 * size:
         return whole
     try:
