@@ -455,7 +455,7 @@ class _Fit:
         k = q - 1 + (1 if self._mode() == "intercept" else 0)
         if k > MAX_EXPANDED:
             return None
-        acc = self._accumulate(design, params, [moments.Chunk()], demeaned=False, pilot=np.zeros(k), head=True)
+        acc = self._accumulate(design, params, [moments.Chunk()], demeaned=False, pilot=None, head=True)
         h, g = acc.total[:k, :k], acc.total[:k, k]
         if not np.isfinite(h).all() or acc.n_obs == 0:
             return np.zeros(k)
