@@ -404,14 +404,16 @@ class _Fit:
         (regressors, indicators but the first, constant, outcome)."""
         q = len(design.columns)
         by_period: dict = {}
+        units = 0  # chunks hold disjoint units, so their distinct counts add up
         for table in moments.run_chunks(self.s, chunks, lambda f: sqlbuild.period_moments_sql(used(f), q, total), params):
             for row in table.to_pylist():
-                n_units = by_period.get(row["period"], {}).get("n_units", 0)
+                if row["all_periods"]:
+                    units += int(row["n_units"])
+                    continue
                 acc_row = by_period.setdefault(row["period"], {"n": 0, "s": np.zeros(q), "p": np.zeros((q, q))})
                 acc_row["n"] += int(row["n"])
                 acc_row["s"] += [row[f"s{j}"] for j in range(q)]
                 acc_row["p"] += moments.symmetric(row, "p", q)
-                acc_row["n_units"] = n_units + int(row["n_units"])
         if not by_period:
             return _Pass(np.zeros((q, q)), np.zeros(q), 0, 0)
         values = sorted(by_period)
@@ -433,7 +435,6 @@ class _Fit:
                     full[c, c2] += r["n"]
         n_obs = sum(by_period[v]["n"] for v in values)
         raw = np.r_[np.diag(full)[:kx + e], full[ys, ys]]
-        units = max(by_period[v]["n_units"] for v in values)
         acc = _Pass(full, raw, n_obs, units, t_min=min(values), t_max=max(values))
         self._set_effects(acc, values, with_constant=intercept)
         return acc

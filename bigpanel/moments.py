@@ -15,10 +15,10 @@ the first rows), r_i = a_i - B_i q and d = b - q:
 
 which is exact for any q; a q near b keeps the terms from cancelling. The pass sums
 r r', r (x) B and B (x) B (k^4/4 sums), so it serves only small k; larger models get
-their scores from a second pass over the rows (sqlbuild.cluster_scores_sql).
+their scores from a second pass over the rows (sqlbuild.unit_scores_sql).
 
-Chunks: when a Parquet source's files hold disjoint ranges of units (an extract
-sorted by unit), each group of files is its own query, so each GROUP BY hashes few
+Chunks: when a Parquet source's row groups hold consecutive ranges of units (an extract
+sorted by unit), each range of units is its own query, so each GROUP BY hashes few
 units and stays in cache; the chunks run in parallel on cursors with one thread each,
 which also makes every sum's order, and so its last digits, the same on every run.
 Otherwise the whole source is one chunk on all threads, and sums are compensated

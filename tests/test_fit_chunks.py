@@ -53,3 +53,16 @@ def test_chunked_differences_match_one_file(tmp_path, shuffle_within_unit):
     assert (many.n_obs, many.rows_dropped) == (one.n_obs, one.rows_dropped)
     noted = any("not sorted" in w for w in many.warnings)
     assert noted == shuffle_within_unit
+
+
+@pytest.mark.parametrize("effects", [None, "period"])
+def test_first_difference_counts_units_with_a_difference(tmp_path, effects):
+    # Reference: pandas, units with at least one pair of consecutive periods (the rows a
+    # first-difference fit uses); period effects must not change the count.
+    df = unbalanced_panel(5, 30, 7, n_full=3)
+    ordered = df.sort_values(["unit", "period"])
+    consecutive = ordered.groupby("unit")["period"].diff() == 1
+    expected_units = ordered.loc[consecutive, "unit"].nunique()
+    result = _fit(write_parquet(df, tmp_path / "panel.parquet"), effects=effects)
+    assert result.n_obs == int(consecutive.sum())
+    assert result.n_units == expected_units
