@@ -276,16 +276,9 @@ class _Fit:
             return "within"
         return "intercept" if self.spec.intercept else "plain"
 
-    def _cluster_plan(self) -> str:
-        """'none' | 'unit' (fast) | 'nested' (coarser, per-unit check) | 'sql' (score pass)."""
-        spec = self.spec
-        if spec.se != "cluster":
-            return "none"
-        if len(spec.cluster) == 2:
-            return "sql"
-        if spec.cluster[0] == spec.unit:
-            return "unit"
-        return "nested"
+    def _unit_clusters(self) -> bool:
+        """Standard errors clustered by the unit alone (the one-pass meat's case)."""
+        return self.spec.se == "cluster" and self.spec.cluster == (self.spec.unit,)
 
     def _accumulate(self, design: _Design, params: dict, chunks, demeaned: bool, pilot: np.ndarray | None,
                     head: bool = False) -> _Pass:
@@ -450,7 +443,7 @@ class _Fit:
     def _pilot(self, design: _Design, params: dict) -> np.ndarray | None:
         """Coefficients from the first rows, the centre of the one-pass meat expansion;
         None when the model is too large for it or clusters are not units."""
-        if self._cluster_plan() != "unit" or design.absorbed_periods:
+        if not self._unit_clusters() or design.absorbed_periods:
             return None
         q = len(design.columns)
         k = q - 1 + (1 if self._mode() == "intercept" else 0)
