@@ -33,7 +33,7 @@ from .errors import (
 from .results import Coefficient, FitResult
 from .solve import solve_normal
 from .source import Engine, Session, Source, is_integer, is_numeric, open_source
-from .spec import FitSpec, Term
+from .spec import FitSpec
 
 PROBE_ROWS = 20_000  # first rows used for the shifts and the pilot coefficients
 MAX_PERIOD_SPAN = 10_000  # widest period range for unit + period effects (bits per unit)
@@ -139,6 +139,7 @@ class _Fit:
         self.streaming = False  # first differences in file order within chunks (see run)
         self.counted: dict | None = None  # rows by reason, once counted
         self._bounds: tuple | None = None
+        self._n_filtered: int | None = None
 
     # ------------------------------------------------------------------ checks
     def _check(self) -> None:
@@ -565,10 +566,14 @@ class _Fit:
                 "Check the filter and the columns.")
 
     def _rows_after_filter(self) -> int:
-        src = self.s.source
-        if src.kind == "parquet" and not src.where:
-            return sum(pq.read_metadata(f).num_rows for f in src.files)
-        return int(self.s.run(sqlbuild.count_rows_sql(src.filtered())).column("n")[0].as_py())
+        """Rows left by the filter (footers only for unfiltered Parquet; counted once)."""
+        if self._n_filtered is None:
+            src = self.s.source
+            if src.kind == "parquet" and not src.where:
+                self._n_filtered = sum(pq.read_metadata(f).num_rows for f in src.files)
+            else:
+                self._n_filtered = int(self.s.run(sqlbuild.count_rows_sql(src.filtered())).column("n")[0].as_py())
+        return self._n_filtered
 
     def _count_rows(self, design: _Design, params: dict) -> dict:
         """Rows by reason, over all rows (differences formed after sorting)."""

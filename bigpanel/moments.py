@@ -34,7 +34,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import pyarrow.parquet as pq
 
 from . import sqlbuild
 from .source import Session, parquet_row_groups

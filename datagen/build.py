@@ -11,7 +11,7 @@ import numpy as np
 
 from . import model
 from .errors import DatagenError
-from .files import PartWriter, month_table, read_spool, unit_pieces, write_spool
+from .files import PartWriter, read_spool, unit_pieces, write_spool
 from .options import Options
 
 GENERATOR_VERSION = 1
