@@ -18,6 +18,7 @@ from typing import Annotated, Optional
 import typer
 
 from .errors import BigpanelError, BigpanelWarning, InputError
+from .params import PARAMETERS
 from .source import Engine, Source, open_source
 
 app = typer.Typer(
@@ -137,31 +138,30 @@ def checkup_command(
         raise typer.Exit(1)
 
 
-class Estimator(str, Enum):
-    pooled = "pooled"
-    within = "within"
-    first_difference = "first-difference"
+# The model options come from the one parameter table (bigpanel.params): names, help and
+# choices are declared there, so renaming an option is one line in that table.
+Estimator = Enum("Estimator", {v.replace("-", "_"): v for v in PARAMETERS["estimator"].choices}, type=str)
+VarianceKind = Enum("VarianceKind", {v: v for v in PARAMETERS["se"].choices}, type=str)
 
 
-class VarianceKind(str, Enum):
-    iid = "iid"
-    hc1 = "hc1"
-    cluster = "cluster"
+def _model_option(name: str):
+    p = PARAMETERS[name]
+    return typer.Option(p.option, help=p.help)
 
 
 @app.command("fit")
 def fit_command(
     source: SourceArg = None,
-    outcome: Annotated[str, typer.Option("--outcome", help="Outcome column or SQL expression, e.g. \"log(parcels)\".")] = ...,
-    regressors: Annotated[str, typer.Option("--regressors", help="Terms separated by commas (not inside parentheses): columns, SQL expressions, lag(EXPR[, K]), levels(COLUMN[, 'BASE']).")] = ...,
-    unit: Annotated[str, typer.Option("--unit", help="Column identifying the unit.")] = ...,
-    period: Annotated[str, typer.Option("--period", help="Column identifying the period (whole numbers for differences and lags).")] = ...,
-    estimator: Annotated[Estimator, typer.Option("--estimator", help="pooled, within or first-difference.")] = Estimator.within,
-    effects: Annotated[Optional[str], typer.Option("--effects", help="Fixed effects: within defaults to the unit (add the period with --effects UNIT,PERIOD); first-difference takes the period for period intercepts.")] = None,
-    se: Annotated[Optional[VarianceKind], typer.Option("--se", help="Variance: iid, hc1 or cluster (default: cluster for within and first-difference, iid for pooled).")] = None,
-    cluster: Annotated[Optional[str], typer.Option("--cluster", help="One or two cluster columns, comma-separated (default: the unit).")] = None,
-    no_intercept: Annotated[bool, typer.Option("--no-intercept", help="Drop the intercept (pooled, first-difference).")] = False,
-    period_step: Annotated[int, typer.Option("--period-step", help="Distance between consecutive periods.")] = 1,
+    outcome: Annotated[str, _model_option("outcome")] = ...,
+    regressors: Annotated[str, _model_option("regressors")] = ...,
+    unit: Annotated[str, _model_option("unit")] = ...,
+    period: Annotated[str, _model_option("period")] = ...,
+    estimator: Annotated[Estimator, _model_option("estimator")] = Estimator(PARAMETERS["estimator"].default),
+    effects: Annotated[Optional[str], _model_option("effects")] = None,
+    se: Annotated[Optional[VarianceKind], _model_option("se")] = None,
+    cluster: Annotated[Optional[str], _model_option("cluster")] = None,
+    no_intercept: Annotated[bool, _model_option("intercept")] = False,
+    period_step: Annotated[int, _model_option("period_step")] = PARAMETERS["period_step"].default,
     table: TableOpt = None,
     query: QueryOpt = None,
     where: WhereOpt = None,

@@ -14,33 +14,12 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass, field
 
+from . import params
 from .errors import InputError
-
-ESTIMATORS = ("pooled", "within", "first-difference")
-VARIANCES = ("iid", "hc1", "cluster")
+from .params import ESTIMATORS, VARIANCES, split_top_level  # noqa: F401 - re-exported
 
 _LAG = re.compile(r"^lag\s*\((.*)\)$", re.IGNORECASE | re.DOTALL)
 _LEVELS = re.compile(r"^levels\s*\((.*)\)$", re.IGNORECASE | re.DOTALL)
-
-
-def split_top_level(text: str, sep: str = ",") -> list[str]:
-    """Split on ``sep`` outside parentheses, brackets and quotes; strip the pieces."""
-    parts, depth, quote, start = [], 0, None, 0
-    for i, ch in enumerate(text):
-        if quote:
-            if ch == quote:
-                quote = None
-        elif ch in "'\"":
-            quote = ch
-        elif ch in "([{":
-            depth += 1
-        elif ch in ")]}":
-            depth -= 1
-        elif ch == sep and depth == 0:
-            parts.append(text[start:i].strip())
-            start = i + 1
-    parts.append(text[start:].strip())
-    return [p for p in parts if p]
 
 
 @dataclass(frozen=True)
@@ -86,14 +65,6 @@ def parse_term(text: str) -> Term:
     return Term(text=text, kind="expr", expr=text)
 
 
-def _as_list(value: str | list[str] | tuple[str, ...] | None) -> tuple[str, ...]:
-    if value is None:
-        return ()
-    if isinstance(value, str):
-        return tuple(split_top_level(value))
-    return tuple(str(v).strip() for v in value if str(v).strip())
-
-
 @dataclass(frozen=True)
 class FitSpec:
     """A checked model specification (see :func:`bigpanel.fit` for the meaning of each field)."""
@@ -124,18 +95,15 @@ class FitSpec:
         intercept: bool | None = None,
         period_step: int = 1,
     ) -> "FitSpec":
-        if estimator not in ESTIMATORS:
-            raise InputError(f"Option 'estimator' must be one of {', '.join(ESTIMATORS)}; got '{estimator}'.")
-        if not outcome or not str(outcome).strip():
-            raise InputError("Option 'outcome' is empty. Name the outcome column or expression.")
-        texts = _as_list(regressors)
-        if not texts:
-            raise InputError("Option 'regressors' is empty. Give at least one term, separated by commas.")
+        outcome = params.check("outcome", outcome)
+        texts = params.check("regressors", regressors)
+        unit, period = params.check("unit", unit), params.check("period", period)
+        estimator = params.check("estimator", estimator)
         if len(set(texts)) != len(texts):
             dup = next(t for t in texts if texts.count(t) > 1)
             raise InputError(f"Option 'regressors' lists '{dup}' twice. Give each term once.")
         terms = tuple(parse_term(t) for t in texts)
-        eff = _as_list(effects)
+        eff = params.check("effects", effects)
         if estimator == "within" and not eff:
             eff = (unit,)
         if estimator == "within" and unit not in eff:
@@ -149,9 +117,8 @@ class FitSpec:
             raise InputError(f"Option 'effects' names the unit '{unit}' for first differences, which already remove it. Use --effects {period} for period intercepts.")
         if se is None:
             se = "iid" if estimator == "pooled" and not cluster else "cluster"
-        if se not in VARIANCES:
-            raise InputError(f"Option 'se' must be one of {', '.join(VARIANCES)}; got '{se}'.")
-        clus = _as_list(cluster)
+        se = params.check("se", se)
+        clus = params.check("cluster", cluster)
         if se == "cluster" and not clus:
             clus = (unit,)
         if se != "cluster" and clus:
@@ -160,10 +127,10 @@ class FitSpec:
             raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported.")
         if intercept is None:
             intercept = estimator != "within"
+        intercept = params.check("intercept", intercept)
         if estimator == "within" and intercept:
             raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects already remove it.")
-        if int(period_step) < 1:
-            raise InputError(f"Option 'period_step' must be a whole number of 1 or more, got {period_step}.")
+        period_step = params.check("period_step", period_step)
         return cls(
             outcome=str(outcome).strip(), terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, se=se, cluster=clus, intercept=bool(intercept), period_step=int(period_step),

@@ -270,7 +270,7 @@ def transformed_entry(j: int, l: int, q: int, mode: str) -> str:
 def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum") -> str:
     """Sums over units of the transformed cross-products and, with ``expand``, of the
     products that give the unit-cluster meat for any coefficient vector (moments.py)."""
-    dim = q + (1 if mode == "intercept" else 0)
+    dim = q + (1 if mode == "constant" else 0)
     k = dim - 1
     keep = "n > 1" if mode == "within" else "n > 0"
     entries = [f"{transformed_entry(j, l, q, mode)} AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]

@@ -132,3 +132,27 @@ def test_python_dash_m_bigpanel(data):
     done = _module_cli("checkup", "corrupt.parquet", *KEYS, cwd=data)
     assert done.returncode == 2 and done.stdout == ""
     assert_one_sentence(done.stderr, "corrupt.parquet")
+
+
+@pytest.mark.filterwarnings("ignore::bigpanel.errors.DroppedRowsWarning")
+def test_fit_json_matches_the_python_api(data, capsys):
+    # Reference: bigpanel.fit on the same file (the CLI is a thin layer over it); the JSON
+    # must parse and carry the same numbers, with no notes on stdout.
+    import bigpanel
+
+    code, out, err = run(capsys, "fit", data / "depots.parquet", "--outcome", "parcels", "--regressors",
+                         "staff_hours", *KEYS, "--se", "hc1", "--json")
+    assert code == 0, err
+    payload = json.loads(out)
+    ref = bigpanel.fit(str(data / "depots.parquet"), "parcels", ["staff_hours"], "depot", "month", se="hc1")
+    assert payload["estimator"] == "within" and payload["variance"]["type"] == "hc1"
+    assert payload["n_obs"] == ref.n_obs
+    (coef,) = payload["coefficients"]
+    assert coef["term"] == "staff_hours"
+    assert coef["estimate"] == ref.coefficients[0].estimate and coef["std_error"] == ref.coefficients[0].std_error
+
+
+def test_fit_bad_option_value_exits_2(data, capsys):
+    code, out, err = run(capsys, "fit", data / "depots.parquet", "--outcome", "parcels", "--regressors",
+                         "staff_hours", *KEYS, "--estimator", "fe")
+    assert code == 2 and out == "" and "'fe' is not one of" in err

@@ -1,0 +1,160 @@
+"""The design: the model's columns as SQL expressions with their roles.
+
+Built once per model from the checked specification and the source's schema (no rows
+read, except one small ``SELECT DISTINCT`` per ``levels()`` term). A term equal to one of
+the source's column names is that column, quoted, even when the name is a SQL keyword or
+holds spaces or capitals (``union``, ``Sales 2024``); the label keeps the plain name.
+"""
+
+from __future__ import annotations
+
+import re
+import warnings
+from dataclasses import dataclass
+
+from . import sqlbuild
+from .errors import BigpanelWarning, InputError, unknown_column
+from .source import is_integer, is_numeric
+from .spec import FitSpec
+
+MAX_LEVELS = 500
+ROLES = ("regressor", "lag", "indicator", "effect", "outcome")
+
+
+@dataclass(frozen=True)
+class Column:
+    """One design column: ``sql`` is a checked scalar expression over the source's
+    columns, read ``lag`` periods earlier in the same unit; ``label`` is its name in the result."""
+
+    sql: str
+    role: str
+    label: str
+    lag: int = 0
+
+
+@dataclass(frozen=True)
+class Design:
+    """Regressor columns (terms, indicators, effect indicators) and the outcome, last."""
+
+    columns: tuple[Column, ...]
+    notes: tuple[str, ...] = ()
+
+    @property
+    def regressors(self) -> tuple[Column, ...]:
+        return self.columns[:-1]
+
+    @property
+    def labels(self) -> list[str]:
+        return [c.label for c in self.regressors]
+
+    @property
+    def is_effect(self) -> list[bool]:
+        return [c.role == "effect" for c in self.regressors]
+
+    @property
+    def sql_columns(self) -> tuple[tuple[str, int], ...]:
+        """(expression, lag) per column, outcome last: what the rows are built from."""
+        return tuple((c.sql, c.lag) for c in self.columns)
+
+    @property
+    def q(self) -> int:
+        return len(self.columns)
+
+    def with_effects(self, effects: list[Column]) -> "Design":
+        return Design(self.regressors + tuple(effects) + self.columns[-1:], self.notes)
+
+
+_BASE_TEN_LOG = re.compile(r"(?<![\w.])log\s*\(", re.IGNORECASE)
+
+
+def check_keys(session, spec: FitSpec) -> None:
+    """Unit, period and cluster columns exist; the filter is a predicate; lags and
+    differences have whole-number periods."""
+    session.require_columns([spec.unit, spec.period, *spec.cluster])
+    session.check_filter()
+    if spec.needs_order:
+        ptype = session.columns()[spec.period]
+        if not is_integer(ptype):
+            raise InputError(
+                f"Column '{spec.period}' in {session.source.label} has type {ptype}; first differences and lags need "
+                "whole-number periods. Use a period index column (for example months since a start date)."
+            )
+
+
+def integer_period(session, spec: FitSpec) -> bool:
+    return is_integer(session.columns()[spec.period].upper())
+
+
+def numeric_expression(session, text: str, what: str, notes: list[str]) -> str:
+    """The SQL for a numeric term or outcome: a column named exactly ``text`` (quoted),
+    else a checked scalar expression."""
+    cols = session.columns()
+    bare = text.strip()
+    if bare not in cols and bare.startswith('"') and bare.endswith('"') and bare[1:-1].replace('""', '"') in cols:
+        bare = bare[1:-1].replace('""', '"')
+    if bare in cols:
+        if not is_numeric(cols[bare]):
+            raise InputError(
+                f"Column '{bare}' in {session.source.label} has type {cols[bare]}, not a number. "
+                f"Use levels({bare}) for a categorical column, or convert it in an expression."
+            )
+        return sqlbuild.quote_ident(bare)
+    session.check_expression(text, what)
+    if _BASE_TEN_LOG.search(text):
+        msg = f"{what} '{text}' uses log(), which in SQL is the base-10 logarithm; ln() is the natural one"
+        if msg not in notes:
+            notes.append(msg)
+    kind = session.describe_expression(text)
+    if not is_numeric(kind):
+        raise InputError(f"{what} '{text}' has type {kind}, not a number. Give a numeric expression.")
+    return text
+
+
+def distinct_levels(session, quoted: str) -> list[str]:
+    sql = sqlbuild.distinct_values_sql(session.source.filtered(), quoted, MAX_LEVELS + 1)
+    values = session.run(sql).column("v").to_pylist()
+    if len(values) > MAX_LEVELS:
+        raise InputError(f"Column '{quoted.strip(chr(34))}' has more than {MAX_LEVELS} levels. Use it as a fixed effect or group it first.")
+    return values
+
+
+def build_design(session, spec: FitSpec) -> Design:
+    """The terms' columns (``levels()`` expanded) and the outcome."""
+    check_keys(session, spec)
+    notes: list[str] = []
+    columns: list[Column] = []
+    cols = session.columns()
+    for term in spec.terms:
+        if term.kind == "levels":
+            if term.expr not in cols:
+                raise unknown_column(term.expr, session.source.label, cols)
+            quoted = sqlbuild.quote_ident(term.expr)
+            levels = distinct_levels(session, quoted)
+            base = term.base if term.base is not None else (levels[0] if levels else None)
+            if base not in levels:
+                raise InputError(f"Term '{term.text}': base level '{base}' does not occur in column '{term.expr}'. Levels: {', '.join(levels[:10])}.")
+            columns += [Column(sqlbuild.indicator_sql(quoted, level), "indicator", f"{term.expr}[{level}]")
+                        for level in levels if level != base]
+        else:
+            sql = numeric_expression(session, term.expr, "Term", notes)
+            label = term.text if sql == term.expr or term.kind == "lag" else term.text.strip().strip('"')
+            columns.append(Column(sql, "lag" if term.lag else "regressor", label, term.lag))
+    outcome = numeric_expression(session, spec.outcome, "Outcome", notes)
+    columns.append(Column(outcome, "outcome", spec.outcome))
+    for msg in notes:
+        warnings.warn(msg, BigpanelWarning, stacklevel=4)
+    return Design(tuple(columns), tuple(notes))
+
+
+def period_indicators(session, spec: FitSpec) -> list[Column]:
+    """Indicator columns for every period but the first (period effects as columns)."""
+    quoted = sqlbuild.quote_ident(spec.period)
+    values = sorted(distinct_levels(session, quoted), key=_period_key)[1:]
+    return [Column(sqlbuild.indicator_sql(quoted, v), "effect", f"{spec.period}[{v}]") for v in values]
+
+
+def _period_key(value: str):
+    try:
+        return (0, float(value), value)
+    except ValueError:
+        return (1, 0.0, value)

@@ -1,0 +1,142 @@
+"""What every estimator shares: the equations it hands to the solver, and its interface.
+
+An estimator is a small stateless object made from the specification. It declares
+
+- its row transform (levels or first differences) and whether it absorbs the units;
+- its first moment request (:meth:`Estimator.first_pass`);
+- its algebra: the aggregates of that request become :class:`Equations`, the
+  cross-product over (regressors, absorbed effect columns, [constant], outcome).
+
+Everything after the equations (solve, variance, result) is common: :mod:`bigpanel.inference`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .. import moments
+from ..design import Design
+from ..requests import CrossProducts, Rows
+from ..spec import FitSpec
+
+
+@dataclass
+class Equations:
+    """The normal equations of one model, with the counts behind them.
+
+    ``total`` is (k+1)-by-(k+1) over (design regressors, extra columns, outcome); the
+    extra columns are absorbed period effects and the constant (labels ``extra_labels``).
+    """
+
+    total: np.ndarray
+    raw_diag: np.ndarray  # the diagonal before demeaning (for the digit-loss check)
+    n_obs: int
+    n_units: int
+    singletons: int = 0
+    singleton_rows: int = 0
+    t_min: object = None
+    t_max: object = None
+    expansion: list | None = None  # per-chunk sums for the unit-cluster meat (moments.py)
+    pilot: np.ndarray | None = None
+    extra_labels: list = field(default_factory=list)
+    extra_effect: list = field(default_factory=list)
+    effect_values: list = field(default_factory=list)  # every period with an effect (base included)
+    effect_rows: np.ndarray | None = None  # each period's indicator row over the extra columns
+
+    def cancellation(self) -> float:
+        """Largest ratio of raw to transformed sum of squares (digits lost by one pass)."""
+        diag = np.diag(self.total)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = np.where(diag > 0, self.raw_diag / diag, 1.0)
+        return float(np.max(r)) if r.size else 1.0
+
+
+class Estimator:
+    """The interface; subclasses set the class attributes and the two methods."""
+
+    name = ""
+    differenced = False  # rows are first differences within units
+    absorbs_units = False  # unit effects absorbed: counted in the df, scores demeaned
+    demeaned_retry = False  # redo the pass with unit means subtracted when digits cancel
+    checks_variation = False  # terms without variation within units are dropped by name
+    r2_kind = ""
+
+    def __init__(self, spec: FitSpec):
+        self.spec = spec
+
+    # ---- design and rows
+    def extend_design(self, session, design: Design) -> Design:
+        return design
+
+    def rows(self, design: Design) -> Rows:
+        return Rows(design.sql_columns, tuple(self.spec.cluster), self.differenced)
+
+    @property
+    def constant(self) -> bool:
+        """A constant column sits before the outcome (pooled and differenced intercepts)."""
+        return not self.absorbs_units and self.spec.intercept
+
+    def shifted(self) -> bool:
+        """Whether columns are shifted before summing (needs a constant or unit effects)."""
+        return self.absorbs_units or self.spec.intercept
+
+    def intercept_shifts(self, shifts: np.ndarray) -> np.ndarray:
+        """The shifts the intercept is restored with (levels: the shifts themselves)."""
+        return shifts
+
+    def absorbed(self, eq: Equations) -> int:
+        return eq.n_units if self.absorbs_units else 0
+
+    def constant_in_scores(self) -> bool:
+        """The constant is a score column (not absorbed into period effects)."""
+        return self.constant
+
+    # ---- moments
+    def first_pass(self, design: Design, pilot: np.ndarray | None = None) -> CrossProducts:
+        raise NotImplementedError
+
+    def equations(self, design: Design, request: CrossProducts, chunks: list[list[dict]], executor) -> Equations:
+        raise NotImplementedError
+
+
+def add_unit_rows(rows: list[dict], q: int, dim: int) -> Equations:
+    """Add the unit fold's chunk rows (unit_pass.sql) in chunk order."""
+    eq = Equations(total=np.zeros((dim, dim)), raw_diag=np.zeros(q), n_obs=0, n_units=0)
+    for row in rows:
+        eq.total += moments.symmetric(row, "w", dim)
+        eq.raw_diag += [row[f"r{j}"] or 0.0 for j in range(q)]
+        eq.n_obs += int(row["n_obs"])
+        eq.n_units += int(row["n_units"])
+        eq.singletons += int(row["singletons"])
+        eq.singleton_rows += int(row["singleton_rows"])
+    return eq
+
+
+def unit_fold(request: CrossProducts, chunks: list[list[dict]], q: int) -> Equations:
+    """Equations from the unit fold, with the expansion sums when a pilot was given."""
+    constant = request.layout == "constant"
+    dim = q + (1 if constant else 0)
+    rows = [c[0] for c in chunks]
+    eq = add_unit_rows(rows, q, dim)
+    if constant:
+        eq.raw_diag = np.r_[eq.raw_diag[:-1], eq.n_obs, eq.raw_diag[-1]]
+    if request.pilot is not None:
+        eq.expansion = [{key: r[key] for key in r if key.startswith(("rr", "rb", "bb"))} for r in rows]
+        eq.pilot = np.array(request.pilot)
+    return eq
+
+
+def set_effects(eq: Equations, period: str, values: list, effects: list, with_constant: bool) -> None:
+    """Label the period-effect columns (then the constant when there is one) and record
+    each period's indicator row over them."""
+    eq.extra_labels = [f"{period}[{v}]" for v in effects] + (["(intercept)"] if with_constant else [])
+    eq.extra_effect = [True] * len(eq.extra_labels)
+    rows = np.zeros((len(values), len(eq.extra_labels)))
+    for i, v in enumerate(values):
+        if v in effects:
+            rows[i, effects.index(v)] = 1.0
+        if with_constant:
+            rows[i, -1] = 1.0
+    eq.effect_values, eq.effect_rows = list(values), rows

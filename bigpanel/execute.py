@@ -1,0 +1,261 @@
+"""Execution: moment requests become SQL on the engine; aggregates come back.
+
+The :class:`Executor` is the one place with mutable state in a fit: the open session,
+the chunk plan, the scan counter, whether differences were formed in scan order, and
+the row counts once counted. Everything it returns is aggregates (one row per chunk, per
+cluster or per period) as plain dicts.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow.parquet as pq
+
+from . import moments, sqlbuild
+from .errors import EstimationError, InputError
+from .requests import CrossProducts, Nesting, Rows, Scores
+
+PROBE_ROWS = 20_000  # first rows used for the shifts and the pilot coefficients
+MAX_PERIOD_SPAN = 10_000  # widest period range for unit + period effects (bits per unit)
+
+
+@dataclass(frozen=True)
+class Keys:
+    """The panel's keys, shared by every model on a source."""
+
+    unit: str
+    period: str
+    step: int = 1
+
+
+class Executor:
+    """Runs requests on one open session (see :mod:`bigpanel.source`)."""
+
+    def __init__(self, session, keys: Keys):
+        self.session = session
+        self.keys = keys
+        self.scans = 0  # full passes over the source's rows
+        self.notes: list[str] = []
+        self.streaming = False  # differences formed in scan order (see moments)
+        self._chunks: list | None = None
+        self._bounds: tuple | None = None
+        self._n_filtered: int | None = None
+        self._counted: dict = {}
+
+    # ------------------------------------------------------------------ plumbing
+    @property
+    def label(self) -> str:
+        return self.session.source.label
+
+    def chunks(self) -> list:
+        if self._chunks is None:
+            self._chunks = moments.plan_chunks(self.session, self.keys.unit)
+        return self._chunks
+
+    def run_once(self, sql: str, params: dict | None = None, scan: bool = True) -> list[dict]:
+        """One query over all rows (``scan``: it reads every row)."""
+        self.scans += int(scan)
+        return self.session.run(sql, params).to_pylist()
+
+    def run_chunked(self, make_sql: Callable, params: dict, chunks: Sequence | None = None) -> list[list[dict]]:
+        chunks = self.chunks() if chunks is None else chunks
+        self.scans += 1
+        return [t.to_pylist() for t in moments.run_chunks(self.session, chunks, make_sql, params)]
+
+    def empty_message(self) -> str:
+        src = self.session.source
+        where = f" after the filter '{src.where}'" if src.where else ""
+        return (f"No usable rows in {src.label}{where}: every row was filtered out or has a missing value in a term. "
+                "Check the filter and the columns.")
+
+    # ------------------------------------------------------------------ rows
+    def rows_sql(self, rows: Rows, chunk=None, head: bool = False, streaming: bool = False) -> str:
+        k = self.keys
+        chunk = chunk or moments.Chunk()
+        source = self.session.source.filtered(chunk.files, chunk.unit_range(k.unit))
+        if head:
+            source = sqlbuild.head_sql(source, PROBE_ROWS)
+        sql = sqlbuild.design_rows_sql(source, k.unit, k.period, list(rows.clusters), list(rows.columns), k.step)
+        if rows.differenced:
+            sql = sqlbuild.differenced_rows_sql(sql, len(rows.clusters), rows.q, streaming and chunk.files is not None and not head)
+        return sql
+
+    def used_sql(self, rows: Rows, chunk=None, head: bool = False, streaming: bool = False) -> str:
+        valid = sqlbuild.valid_predicate(rows.q, rows.differenced, self.keys.step)
+        used = sqlbuild.used_rows_sql(self.rows_sql(rows, chunk, head, streaming), valid)
+        return sqlbuild.demeaned_rows_sql(used, rows.q, len(rows.clusters)) if rows.demeaned else used
+
+    # ------------------------------------------------------------------ probes
+    def shifts(self, columns: Sequence[tuple[str, int]]) -> np.ndarray:
+        """Means of the design columns (levels) over the first rows: subtracted before summing."""
+        q = len(columns)
+        k = self.keys
+        head = sqlbuild.head_sql(self.session.source.filtered(), PROBE_ROWS)
+        rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step)
+        row = self.session.run(sqlbuild.probe_sql(rows, q), {f"s{j}": 0.0 for j in range(q)}).to_pylist()[0]
+        shifts = np.array([row[f"a{j}"] if row[f"a{j}"] is not None else 0.0 for j in range(q)], dtype=float)
+        return np.where(np.isfinite(shifts), shifts, 0.0)
+
+    def period_bounds(self) -> tuple[object, object]:
+        """First and last period in the filtered source (reads the period column only)."""
+        if self._bounds is None:
+            sql = sqlbuild.period_bounds_sql(self.session.source.filtered(), self.keys.period)
+            row = self.run_once(sql)[0]
+            self._bounds = (row["lo"], row["hi"])
+        return self._bounds
+
+    def period_range(self) -> tuple[int, int]:
+        lo, hi = self.period_bounds()
+        if lo is None:
+            raise EstimationError(self.empty_message())
+        if hi - lo > MAX_PERIOD_SPAN:
+            raise InputError(
+                f"Column '{self.keys.period}' spans {hi - lo + 1} period values; period effects need a compact index "
+                f"(at most {MAX_PERIOD_SPAN + 1}). Use a period number such as months since the first month."
+            )
+        return int(lo), int(hi)
+
+    def rows_after_filter(self) -> int:
+        """Rows left by the filter (footers only for unfiltered Parquet; counted once)."""
+        if self._n_filtered is None:
+            src = self.session.source
+            if src.kind == "parquet" and not src.where:
+                self._n_filtered = sum(pq.read_metadata(f).num_rows for f in src.files)
+            else:
+                self._n_filtered = int(self.run_once(sqlbuild.count_rows_sql(src.filtered()))[0]["n"])
+        return self._n_filtered
+
+    def row_counts(self, rows: Rows, params: dict) -> dict:
+        """Rows by reason, over all rows (differences formed after sorting)."""
+        key = (rows.columns, rows.differenced)
+        if key not in self._counted:
+            sql = sqlbuild.row_counts_sql(self.rows_sql(rows), rows.q, rows.differenced, self.keys.step)
+            self._counted[key] = self.run_once(sql, params)[0]
+        return self._counted[key]
+
+    def duplicates(self, reason: str = "First differences and lags", only_if_any: bool = False) -> None:
+        """Raise the error naming a few duplicate (unit, period) keys; with ``only_if_any``
+        first look for them and return quietly when there are none."""
+        k = self.keys
+        sql = sqlbuild.checkup_duplicate_scan_sql(self.session.source.filtered(), k.unit, sqlbuild.quote_ident(k.period))
+        rows = self.run_once(sql, {"n_examples": 5})
+        if only_if_any and not rows:
+            return
+        shown = ", ".join(f"({r['unit_key']}, {r['period_key']})" for r in rows)
+        raise InputError(
+            f"Columns '{k.unit}' and '{k.period}' in {self.label} have duplicate keys, for example {shown}. "
+            f"{reason[0].upper() + reason[1:]} need one row per unit and period: filter or aggregate the duplicates."
+        )
+
+    def nested(self, request: Nesting, params: dict) -> bool:
+        used = self.used_sql(request.rows)
+        return int(self.run_once(sqlbuild.nesting_sql(used, 0), params)[0]["mixed"]) == 0
+
+    # ------------------------------------------------------------------ moments
+    def cross_products(self, request: CrossProducts, params: dict) -> list[list[dict]]:
+        """The request's aggregates, one list of rows per chunk (in chunk order)."""
+        rows = request.rows
+        chunks = [moments.Chunk()] if request.head else self.chunks()
+        total = moments.sum_function(chunks)
+        q = rows.q
+        p = dict(params)
+        streaming = self.streaming
+
+        def used(chunk):
+            return self.used_sql(rows, chunk, request.head, streaming)
+
+        if request.fold == "rows":
+            make = lambda c: sqlbuild.pooled_moments_sql(used(c), q, total)  # noqa: E731
+        elif request.fold == "period":
+            make = lambda c: sqlbuild.period_moments_sql(used(c), q, total)  # noqa: E731
+        elif request.fold == "unit+period":
+            first, last = self.period_range()
+            make = lambda c: sqlbuild.twoway_pass_sql(used(c), q, first, last, total)  # noqa: E731
+        else:
+            expand = request.pilot is not None
+            if expand:
+                p.update({f"q{j}": float(v) for j, v in enumerate(request.pilot)})
+
+            def make(c):
+                return sqlbuild.unit_pass_sql(sqlbuild.unit_moments_sql(used(c), q, total), q, request.layout, expand, total)
+
+        if request.head:
+            return [self.session.run(make(chunks[0]), p).to_pylist()]
+        return self.run_chunked(make, p, chunks)
+
+    def moments(self, request: CrossProducts, params: dict, assemble: Callable):
+        """Run a cross-product request and assemble it (``assemble(rows_per_chunk)``
+        returns an object with ``n_obs`` and ``n_units``). Differences of a unit-sorted
+        extract are first formed in scan order; if pairs were missed that way (files not
+        sorted by period within unit), the pass is redone with sorting."""
+        rows = request.rows
+        self.streaming = rows.differenced and len(self.chunks()) > 1 and not rows.has_lags and not request.head
+        result = assemble(self.cross_products(request, params))
+        if self.streaming and self._missed_pairs(rows, params, result):
+            self.streaming = False
+            self.notes.append("files are not sorted by unit and period; differences were formed after sorting")
+            result = assemble(self.cross_products(request, params))
+        return result
+
+    def _missed_pairs(self, rows: Rows, params: dict, result) -> bool:
+        if self.rows_after_filter() == result.n_obs + result.n_units:  # every unit's rows all paired
+            return False
+        row = self.row_counts(rows, params)
+        pairs = row["n_rows"] - row["first_of_unit"] - row["after_gap"] - row["duplicate_keys"] - row["missing"]
+        return pairs != result.n_obs
+
+    def dropped(self, rows: Rows, params: dict, n_obs: int, n_units: int, singleton_rows: int) -> dict:
+        """Rows left out, by reason."""
+        total = self.rows_after_filter()
+        fd = rows.differenced
+        expected = n_obs + singleton_rows + (n_units if fd else 0)
+        out = {"missing_or_not_finite": 0}
+        if fd:
+            out.update(first_period_of_unit=n_units, after_gap=0)
+        if total != expected:
+            row = self.row_counts(rows, params)
+            if fd and row["duplicate_keys"]:
+                self.duplicates()
+            out["missing_or_not_finite"] = int(row["missing"])
+            if fd:
+                out["first_period_of_unit"] = int(row["first_of_unit"])
+                out["after_gap"] = int(row["after_gap"])
+        return out
+
+    # ------------------------------------------------------------------ scores
+    def meats(self, request: Scores, params: dict, k: int, n_clusters: int) -> tuple[list[np.ndarray], list[int]]:
+        """Meats over the k score columns, with the number of clusters of each."""
+        p = dict(params)
+        p.update(dict(request.values))
+        rows = request.rows
+        q = rows.q
+        if request.kind in ("units", "nested"):
+            by_unit = request.kind == "units"
+            total = moments.sum_function(self.chunks())
+
+            def make(c):
+                return sqlbuild.unit_scores_sql(self.used_sql(rows, c, streaming=self.streaming), q, request.constant, request.demean,
+                                                request.n_periods, by_unit, total)
+
+            tables = self.run_chunked(make, p)
+            if by_unit:
+                found = [t[0] for t in tables]
+                return [sum(moments.symmetric(r, "o", k) for r in found)], [sum(int(r["n_groups"]) for r in found)]
+            groups: dict[str, np.ndarray] = {}
+            for t in tables:
+                for r in t:
+                    groups[r["g"]] = groups.get(r["g"], 0) + np.array([r[f"e{i}"] for i in range(k)], dtype=float)
+            scores = np.array([groups[g] for g in sorted(groups)]) if groups else np.zeros((0, k))
+            return [scores.T @ scores], [len(groups)]
+        used = self.used_sql(rows)
+        if request.kind == "rows":
+            row = self.run_once(sqlbuild.residual_moments_sql(used, q, request.constant, request.demean, request.n_periods), p)[0]
+            return [moments.symmetric(row, "h", k)], []
+        sql = sqlbuild.cluster_scores_sql(used, q, request.constant, request.demean, request.n_periods, n_clusters)
+        out = {r["gid"]: (moments.symmetric(r, "o", k), int(r["n_groups"])) for r in self.run_once(sql, p)}
+        order = [0] if n_clusters == 1 else [1, 2, 0]  # GROUPING(c0, c1): c0 only 01, c1 only 10, both 00
+        return [out[g][0] for g in order], [out[g][1] for g in order]
+

@@ -1,0 +1,213 @@
+"""From equations to the result: solve, variance from score moments, tests.
+
+Common to every estimator: the solver drops dependent and (for estimators that remove
+the unit effect) time-invariant columns by name; the variance is chosen from the
+specification (iid, HC1, clusters of units, of whole units, cutting across units, two-way)
+and its meat is requested from the executor when the first pass did not already give it.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.special  # t and F tails; scipy.stats alone takes ~0.8 s to import
+
+from . import moments, variance
+from .errors import DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning
+from .estimators.base import Equations, Estimator
+from .requests import Nesting, Rows, Scores
+from .results import Coefficient, FitResult
+from .solve import solve_normal
+
+MAX_EXPANDED = 8  # largest model whose unit-cluster meat is summed in the first pass (k^4/4 sums)
+EXPANSION_LIMIT = 1e6  # largest-term/result ratio above which the expanded meat is recomputed
+NO_VARIATION = 1e-11  # transformed/raw sum of squares below which a column is constant
+FEW_CLUSTERS = 40  # common practice: below ~40 clusters CR1 is unreliable
+
+
+@dataclass
+class Notes:
+    """The one warning channel of a fit: (category, message) pairs, each once, warned by
+    the public entry point at its caller and kept on the result."""
+
+    items: list
+
+    def add(self, category, message: str) -> None:
+        if (category, message) not in self.items:
+            self.items.append((category, message))
+
+    @property
+    def texts(self) -> tuple[str, ...]:
+        """The notes kept on the result (not the dropped rows and terms, which have fields)."""
+        return tuple(m for c, m in self.items if c not in (DroppedRowsWarning, DroppedTermsWarning))
+
+
+def score_values(eq: Equations, sol, kx: int, constant: bool) -> dict:
+    """Coefficients and (with period effects) the effects and the projections Gamma of
+    the regressors on the kept effect columns (Frisch-Waugh-Lovell), as parameters."""
+    p = {f"b{j}": float(sol.coef[j]) for j in range(kx)}
+    if constant:
+        p["b_one"] = float(sol.coef[kx])
+    if eq.effect_rows is not None:
+        e = eq.effect_rows.shape[1]
+        kept = np.flatnonzero(sol.kept[kx:kx + e])
+        dd = eq.total[kx:kx + e, kx:kx + e][np.ix_(kept, kept)]
+        dx = eq.total[kx:kx + e, :kx][kept]
+        projection = np.zeros((e, kx))
+        if kept.size:
+            projection[kept] = np.linalg.lstsq(dd, dx, rcond=None)[0]
+        gamma = eq.effect_rows @ sol.coef[kx:kx + e]
+        big_gamma = eq.effect_rows @ projection
+        for i, value in enumerate(eq.effect_values):
+            p[f"t{i}"] = value
+            p[f"g{i}"] = float(gamma[i])
+            p.update({f"G{i}_{j}": float(big_gamma[i, j]) for j in range(kx)})
+    return p
+
+
+def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equations, sol, rss: float,
+                    n_kept: int, absorbed: int, notes: Notes) -> variance.Variance:
+    """The variance the specification asks for, with its meat from the first pass or a score pass."""
+    spec = est.spec
+    n_obs = eq.n_obs
+    if spec.se == "iid":
+        return variance.iid(sol.inverse, rss, n_obs, n_kept, absorbed)
+    constant = est.constant_in_scores()
+    kx = rows.q - 1
+    k = kx + (1 if constant else 0)  # score columns: regressors [, constant]
+    inverse = sol.inverse[:k, :k]  # with period effects: the regressor block (Frisch-Waugh-Lovell)
+    values = score_values(eq, sol, kx, constant)
+
+    def request(kind: str) -> Scores:
+        return Scores(rows, kind, constant, est.absorbs_units, len(eq.effect_values), tuple(values.items()))
+
+    dim = len(sol.coef)
+    if spec.se == "hc1":
+        meats, _ = executor.meats(request("rows"), params, k, 0)
+        return _embed(variance.hc1(inverse, meats[0], n_obs, n_kept, absorbed), dim)
+    if spec.cluster == (spec.unit,) and eq.expansion is not None:
+        meat, worst = np.zeros((k, k)), 0.0
+        for row in eq.expansion:
+            part, ratio = moments.expanded_meat(row, k, eq.pilot, sol.coef)
+            meat, worst = meat + part, max(worst, ratio)
+        if worst < EXPANSION_LIMIT:
+            # unit effects are nested in unit clusters: not counted in K'
+            return _embed(variance.cluster(inverse, meat, eq.n_units, n_obs, n_kept), dim)
+        notes.add(None, "the one-pass cluster meat cancelled too many digits; scores were recomputed in a second pass")
+    nested = [c == spec.unit for c in spec.cluster]
+    if len(spec.cluster) == 1 and not nested[0]:
+        nested[0] = executor.nested(Nesting(rows), params)
+    if len(spec.cluster) == 1:
+        kind = "units" if spec.cluster[0] == spec.unit else ("nested" if nested[0] else "groups")
+        meats, counts = executor.meats(request(kind), params, k, 1)
+        v = variance.cluster(inverse, meats[0], counts[0], n_obs, n_kept + (0 if nested[0] else absorbed))
+        return _embed(v, dim)
+    meats, counts = executor.meats(request("groups"), params, k, 2)
+    kp = (n_kept + (0 if nested[0] else absorbed), n_kept + (0 if nested[1] else absorbed), n_kept + absorbed)
+    return _embed(variance.two_way(inverse, tuple(meats), tuple(counts), n_obs, kp), dim)
+
+
+def _embed(var: variance.Variance, dim: int) -> variance.Variance:
+    """Place a variance over the leading score columns into the full coefficient layout."""
+    if var.vcov.shape[0] == dim:
+        return var
+    full = np.zeros((dim, dim))
+    k = var.vcov.shape[0]
+    full[:k, :k] = var.vcov
+    return variance.Variance(full, var.kind, var.df, var.small_sample_factor, var.n_clusters, var.clipped_eigenvalues)
+
+
+def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, params: dict, eq: Equations,
+           accumulation: str, notes: Notes) -> FitResult:
+    """Solve the equations, estimate the variance and build the result."""
+    spec = est.spec
+    dim = eq.total.shape[0]
+    k = dim - 1
+    extra = eq.extra_labels or (["(intercept)"] if est.constant else [])
+    labels = list(design.labels) + extra
+    is_effect = list(design.is_effect) + (eq.extra_effect or [False] * len(extra))
+    h, g, yy = eq.total[:k, :k], eq.total[:k, k], eq.total[k, k]
+    terms_dropped: dict[str, str] = {}
+    zero_var = np.zeros(k, dtype=bool)
+    if est.checks_variation:
+        raw = eq.raw_diag[:k]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            zero_var = (np.diag(h) <= NO_VARIATION * np.maximum(raw, 1e-300)) | (np.diag(h) <= 0)
+        if est.constant:
+            zero_var[k - 1] = False
+        for j in np.flatnonzero(zero_var):
+            terms_dropped[labels[j]] = "no variation within units"
+    sol = solve_normal(h, g, zero_variation=zero_var)
+    for j in np.flatnonzero(~sol.kept & ~zero_var):
+        terms_dropped[labels[j]] = "collinear with other terms"
+    if terms_dropped:
+        notes.add(DroppedTermsWarning, "Terms left out: " + ", ".join(f"{t} ({w})" for t, w in terms_dropped.items()))
+    if not sol.kept.any():
+        raise EstimationError("No term can be estimated: " + "; ".join(f"{t}: {w}" for t, w in terms_dropped.items()) + ".")
+    coef = sol.coef
+    rss = max(float(yy - g @ coef), 0.0)
+    tss = yy - eq.total[k - 1, k] ** 2 / eq.total[k - 1, k - 1] if est.constant else yy
+    r2 = 1.0 - rss / tss if tss > 0 else float("nan")
+    n_obs = eq.n_obs
+    n_kept = int(sol.kept.sum())
+    absorbed = est.absorbed(eq)
+    var = choose_variance(est, executor, rows, params, eq, sol, rss, n_kept, absorbed, notes)
+    vcov = var.vcov
+    estimate = coef.copy()
+    if est.constant and not is_effect[k - 1]:
+        # shifted columns: y - c_y = b0' + sum b_j (x_j - c_j); the intercept is b0' + c_y - c'b
+        c_all = est.intercept_shifts(shifts)
+        c, c_y = c_all[: k - 1], c_all[-1]
+        t = np.eye(k)
+        t[k - 1, : k - 1] = -c
+        estimate[k - 1] = coef[k - 1] + c_y - c @ coef[: k - 1]
+        vcov = t @ vcov @ t.T
+    crit = float(scipy.special.stdtrit(var.df, 0.975)) if var.df > 0 else float("nan")
+    coefs = []
+    for j in range(k):
+        if is_effect[j] or not sol.kept[j]:
+            continue
+        se = math.sqrt(vcov[j, j]) if vcov[j, j] >= 0 else float("nan")
+        tval = estimate[j] / se if se > 0 else float("nan")
+        p = 2 * float(scipy.special.stdtr(var.df, -abs(tval))) if var.df > 0 else float("nan")
+        coefs.append(Coefficient(labels[j], float(estimate[j]), se, float(tval), float(p),
+                                 float(estimate[j] - crit * se), float(estimate[j] + crit * se)))
+    slopes = [j for j in range(k) if sol.kept[j] and not is_effect[j] and labels[j] != "(intercept)"]
+    f_stat, f_p = float("nan"), float("nan")
+    if slopes:
+        vs = vcov[np.ix_(slopes, slopes)]
+        bs = estimate[slopes]
+        try:
+            f_stat = float(bs @ np.linalg.solve(vs, bs) / len(slopes))
+            f_p = float(scipy.special.fdtrc(len(slopes), var.df, f_stat))
+        except np.linalg.LinAlgError:
+            pass
+    if var.n_clusters is not None:
+        g_min = var.n_clusters if isinstance(var.n_clusters, int) else min(var.n_clusters)
+        if g_min < FEW_CLUSTERS:
+            notes.add(FewClustersWarning,
+                      f"only {g_min} clusters: cluster-robust errors are unreliable with fewer than about {FEW_CLUSTERS}")
+    if var.clipped_eigenvalues:
+        notes.add(None, f"two-way variance was not positive semi-definite; {var.clipped_eigenvalues} negative eigenvalues set to zero")
+    dropped = executor.dropped(rows, params, eq.n_obs, eq.n_units, eq.singleton_rows)
+    lost = {k2: v for k2, v in dropped.items() if v and k2 != "first_period_of_unit"}
+    if lost:
+        notes.add(DroppedRowsWarning, "Rows left out: " + ", ".join(f"{v:,} {k2.replace('_', ' ')}" for k2, v in lost.items()))
+    t_min, t_max = (eq.t_min, eq.t_max) if eq.t_min is not None else executor.period_bounds()
+    n_periods = None
+    if isinstance(t_min, (int, np.integer)) and isinstance(t_max, (int, np.integer)):
+        n_periods = int((t_max - t_min) // spec.period_step) + 1
+    for msg in executor.notes:
+        notes.add(None, msg)
+    return FitResult(
+        estimator=spec.estimator, outcome=spec.outcome, coefficients=tuple(coefs), n_obs=n_obs, n_units=eq.n_units,
+        n_periods=n_periods, period_first=t_min, period_last=t_max, effects=spec.effects,
+        variance={"type": var.kind, "df": var.df, "small_sample_factor": var.small_sample_factor,
+                  "n_clusters": var.n_clusters, "cluster_columns": list(spec.cluster)},
+        r_squared=float(r2), r_squared_kind=est.r2_kind, f_stat=f_stat, f_df=(float(len(slopes)), float(var.df)),
+        f_p_value=f_p, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=eq.singletons,
+        absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=executor.label,
+        where=executor.session.source.where, warnings=notes.texts,
+    )

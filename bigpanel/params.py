@@ -1,0 +1,136 @@
+"""The model parameters, declared once: name, kind, constraint, default and help.
+
+``fit()``, ``fit_many()`` model dicts, the command line (and later spec files) read this
+table; :func:`check` writes every parameter error, so a constraint lives in one place.
+A CLI option is the kebab-case spelling of the name unless ``flag`` says otherwise:
+renaming an option is one line here.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from .errors import InputError
+
+ESTIMATORS = ("pooled", "within", "first-difference")
+VARIANCES = ("iid", "hc1", "cluster")
+
+
+@dataclass(frozen=True)
+class Param:
+    """One model parameter.
+
+    ``kind`` is one of ``expression`` (a SQL scalar expression or column), ``terms`` (a list
+    of terms, or one text split at top-level commas), ``column``, ``columns`` (a list, or
+    comma-separated text), ``choice`` (one of ``choices``), ``flag`` (True/False/None) and
+    ``count`` (a whole number of at least ``minimum``).
+    """
+
+    name: str
+    kind: str
+    help: str
+    default: Any = None
+    choices: tuple[str, ...] = ()
+    minimum: int | None = None
+    required: bool = False
+    flag: str | None = None
+
+    @property
+    def option(self) -> str:
+        return self.flag or "--" + self.name.replace("_", "-")
+
+
+PARAMETERS: dict[str, Param] = {p.name: p for p in (
+    Param("outcome", "expression", "Outcome column or SQL expression, e.g. \"ln(parcels)\".", required=True),
+    Param("regressors", "terms", "Terms separated by commas (not inside parentheses): columns, SQL expressions, "
+          "lag(EXPR[, K]), levels(COLUMN[, 'BASE']).", required=True),
+    Param("unit", "column", "Column identifying the unit (depot, store, worker, ...).", required=True),
+    Param("period", "column", "Column identifying the period (whole numbers for differences and lags).", required=True),
+    Param("estimator", "choice", "pooled, within or first-difference.", default="within", choices=ESTIMATORS),
+    Param("effects", "columns", "Fixed effects: within defaults to the unit (add the period with --effects UNIT,PERIOD); "
+          "first-difference takes the period for period intercepts."),
+    Param("se", "choice", "Variance: iid, hc1 or cluster (default: cluster for within and first-difference, iid for "
+          "pooled).", choices=VARIANCES),
+    Param("cluster", "columns", "One or two cluster columns, comma-separated (default: the unit)."),
+    Param("intercept", "flag", "Intercept of pooled and first-difference fits (kept by default; --no-intercept drops it).",
+          flag="--no-intercept"),
+    Param("period_step", "count", "Distance between consecutive periods.", default=1, minimum=1),
+)}
+
+MODEL_KEYS = tuple(PARAMETERS)
+
+
+def split_top_level(text: str, sep: str = ",") -> list[str]:
+    """Split on ``sep`` outside parentheses, brackets and quotes; strip the pieces."""
+    parts, depth, quote, start = [], 0, None, 0
+    for i, ch in enumerate(text):
+        if quote:
+            if ch == quote:
+                quote = None
+        elif ch in "'\"":
+            quote = ch
+        elif ch in "([{":
+            depth += 1
+        elif ch in ")]}":
+            depth -= 1
+        elif ch == sep and depth == 0:
+            parts.append(text[start:i].strip())
+            start = i + 1
+    parts.append(text[start:].strip())
+    return [p for p in parts if p]
+
+
+def as_list(value: str | Sequence[str] | None) -> tuple[str, ...]:
+    if value is None:
+        return ()
+    if isinstance(value, str):
+        return tuple(split_top_level(value))
+    return tuple(str(v).strip() for v in value if str(v).strip())
+
+
+def check(name: str, value: Any) -> Any:
+    """The value of parameter ``name`` normalised (lists as tuples), or one InputError."""
+    p = PARAMETERS[name]
+    if value is None:
+        if p.required:
+            raise InputError(f"Option '{name}' is missing. {p.help}")
+        return p.default if p.kind != "columns" else ()
+    if p.kind in ("expression", "column"):
+        if not isinstance(value, str) or not value.strip():
+            raise InputError(f"Option '{name}' is empty. {p.help}")
+        return value.strip() if p.kind == "expression" else value
+    if p.kind in ("terms", "columns"):
+        if not isinstance(value, (str, list, tuple)):
+            raise InputError(f"Option '{name}' must be text or a list of text; got {type(value).__name__}.")
+        items = as_list(value)
+        if p.kind == "terms" and not items:
+            raise InputError(f"Option '{name}' is empty. Give at least one term, separated by commas.")
+        return items
+    if p.kind == "choice":
+        if value not in p.choices:
+            raise InputError(f"Option '{name}' must be one of {', '.join(p.choices)}; got '{value}'.")
+        return value
+    if p.kind == "flag":
+        if value not in (True, False):
+            raise InputError(f"Option '{name}' must be True or False; got {value!r}.")
+        return bool(value)
+    if p.kind == "count":
+        if isinstance(value, bool) or not isinstance(value, int) and not (isinstance(value, float) and value.is_integer()):
+            raise InputError(f"Option '{name}' must be a whole number of {p.minimum} or more, got {value}.")
+        if p.minimum is not None and int(value) < p.minimum:
+            raise InputError(f"Option '{name}' must be a whole number of {p.minimum} or more, got {value}.")
+        return int(value)
+    raise AssertionError(p.kind)
+
+
+def check_keys(keys, where: str) -> None:
+    """Refuse keys that are not model parameters, suggesting close names."""
+    import difflib
+
+    for key in keys:
+        if key not in PARAMETERS:
+            close = difflib.get_close_matches(key, MODEL_KEYS, n=2, cutoff=0.6)
+            hint = f" Did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+            raise InputError(f"{where} has an unknown key '{key}'.{hint} Known keys: {', '.join(MODEL_KEYS)}.")
