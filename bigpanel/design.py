@@ -9,11 +9,10 @@ holds spaces or capitals (``union``, ``Sales 2024``); the label keeps the plain 
 from __future__ import annotations
 
 import re
-import warnings
 from dataclasses import dataclass
 
 from . import sqlbuild
-from .errors import BigpanelWarning, InputError, unknown_column
+from .errors import InputError, unknown_column
 from .source import is_integer, is_numeric
 from .spec import FitSpec
 
@@ -110,16 +109,17 @@ def numeric_expression(session, text: str, what: str, notes: list[str]) -> str:
     return text
 
 
-def distinct_levels(session, quoted: str) -> list[str]:
-    sql = sqlbuild.distinct_values_sql(session.source.filtered(), quoted, MAX_LEVELS + 1)
-    values = session.run(sql).column("v").to_pylist()
+def distinct_levels(executor, quoted: str) -> list[str]:
+    """The levels of a column (one pass over it, once per executor)."""
+    values = executor.distinct(quoted, MAX_LEVELS + 1)
     if len(values) > MAX_LEVELS:
         raise InputError(f"Column '{quoted.strip(chr(34))}' has more than {MAX_LEVELS} levels. Use it as a fixed effect or group it first.")
     return values
 
 
-def build_design(session, spec: FitSpec) -> Design:
+def build_design(executor, spec: FitSpec) -> Design:
     """The terms' columns (``levels()`` expanded) and the outcome."""
+    session = executor.session
     check_keys(session, spec)
     notes: list[str] = []
     columns: list[Column] = []
@@ -129,7 +129,7 @@ def build_design(session, spec: FitSpec) -> Design:
             if term.expr not in cols:
                 raise unknown_column(term.expr, session.source.label, cols)
             quoted = sqlbuild.quote_ident(term.expr)
-            levels = distinct_levels(session, quoted)
+            levels = distinct_levels(executor, quoted)
             base = term.base if term.base is not None else (levels[0] if levels else None)
             if base not in levels:
                 raise InputError(f"Term '{term.text}': base level '{base}' does not occur in column '{term.expr}'. Levels: {', '.join(levels[:10])}.")
@@ -141,15 +141,13 @@ def build_design(session, spec: FitSpec) -> Design:
             columns.append(Column(sql, "lag" if term.lag else "regressor", label, term.lag))
     outcome = numeric_expression(session, spec.outcome, "Outcome", notes)
     columns.append(Column(outcome, "outcome", spec.outcome))
-    for msg in notes:
-        warnings.warn(msg, BigpanelWarning, stacklevel=4)
     return Design(tuple(columns), tuple(notes))
 
 
-def period_indicators(session, spec: FitSpec) -> list[Column]:
+def period_indicators(executor, spec: FitSpec) -> list[Column]:
     """Indicator columns for every period but the first (period effects as columns)."""
     quoted = sqlbuild.quote_ident(spec.period)
-    values = sorted(distinct_levels(session, quoted), key=_period_key)[1:]
+    values = sorted(distinct_levels(executor, quoted), key=_period_key)[1:]
     return [Column(sqlbuild.indicator_sql(quoted, v), "effect", f"{spec.period}[{v}]") for v in values]
 
 

@@ -44,6 +44,11 @@ class Executor:
         self._bounds: tuple | None = None
         self._n_filtered: int | None = None
         self._counted: dict = {}
+        self._levels: dict = {}
+        self._keys_unique: bool | None = None
+        self._nested: dict = {}
+        self._meats: dict = {}
+        self.collecting: list | None = None  # score requests seen while planning (fit_many)
 
     # ------------------------------------------------------------------ plumbing
     @property
@@ -136,12 +141,22 @@ class Executor:
             self._counted[key] = self.run_once(sql, params)[0]
         return self._counted[key]
 
+    def distinct(self, expression: str, limit: int) -> list[str]:
+        """Distinct non-null values of an expression (as text, sorted; at most ``limit``)."""
+        if expression not in self._levels:
+            sql = sqlbuild.distinct_values_sql(self.session.source.filtered(), expression, limit)
+            self._levels[expression] = [r["v"] for r in self.run_once(sql)]
+        return self._levels[expression]
+
     def duplicates(self, reason: str = "First differences and lags", only_if_any: bool = False) -> None:
         """Raise the error naming a few duplicate (unit, period) keys; with ``only_if_any``
         first look for them and return quietly when there are none."""
+        if only_if_any and self._keys_unique:
+            return
         k = self.keys
         sql = sqlbuild.checkup_duplicate_scan_sql(self.session.source.filtered(), k.unit, sqlbuild.quote_ident(k.period))
         rows = self.run_once(sql, {"n_examples": 5})
+        self._keys_unique = not rows
         if only_if_any and not rows:
             return
         shown = ", ".join(f"({r['unit_key']}, {r['period_key']})" for r in rows)
@@ -151,8 +166,10 @@ class Executor:
         )
 
     def nested(self, request: Nesting, params: dict) -> bool:
-        used = self.used_sql(request.rows)
-        return int(self.run_once(sqlbuild.nesting_sql(used, 0), params)[0]["mixed"]) == 0
+        if request not in self._nested:
+            used = self.used_sql(request.rows)
+            self._nested[request] = int(self.run_once(sqlbuild.nesting_sql(used, 0), params)[0]["mixed"]) == 0
+        return self._nested[request]
 
     # ------------------------------------------------------------------ moments
     def cross_products(self, request: CrossProducts, params: dict) -> list[list[dict]]:
@@ -225,9 +242,58 @@ class Executor:
                 out["after_gap"] = int(row["after_gap"])
         return out
 
+    # ------------------------------------------------------------------ shared scans (fit_many)
+    def set_totals(self, n_rows: int, bounds: tuple) -> None:
+        self._n_filtered = int(n_rows)
+        self._bounds = bounds
+
+    def set_row_counts(self, rows: Rows, counts: dict) -> None:
+        self._counted[(rows.columns, rows.differenced)] = counts
+
+    def set_nested(self, request: Nesting, nested: bool) -> None:
+        self._nested[request] = nested
+
+    def shared_moments(self, scan, params: dict) -> dict:
+        """One scan: the cross-products of every sample of a shared scan (plan.SharedScan)."""
+        rows = scan.rows
+        sql = sqlbuild.shared_moments_sql(self.rows_sql(rows), scan.samples, rows.differenced, self.keys.step,
+                                          scan.nesting_checks())
+        return self.run_once(sql, params)[0]
+
+    def shared_meats(self, scan, requests: list, params: dict) -> None:
+        """One scan: the meats of every recorded score request (index, Scores, k,
+        n_clusters) of a shared scan; afterwards :meth:`meats` answers them."""
+        from .plan import request_sets, score_models
+
+        if not requests:
+            return
+        rows = scan.rows
+        models, sets, values = score_models(scan, requests)
+        keys = [k for k in ["k_unit"] + [f"k_c{i}" for i in range(len(scan.clusters))] if any(k in s for s in sets)]
+        sql = sqlbuild.shared_scores_sql(self.rows_sql(rows), scan.samples, rows.differenced, self.keys.step,
+                                         models, keys, sets)
+        by_gid = {r["gid"]: r for r in self.run_once(sql, {**params, **values})}
+        members = {m.index: m for m in scan.members}
+        for m, (index, req, k, _) in enumerate(requests):
+            meats, counts = [], []
+            for group in request_sets(scan, members[index], req):
+                row = by_gid[sqlbuild.grouping_id(keys, group)]
+                if req.kind == "rows":
+                    meats.append(moments.symmetric({f"h{i}_{l}": row[f"h{m}_{i}_{l}"] for i in range(k) for l in range(i, k)}, "h", k))
+                else:
+                    meats.append(moments.symmetric({f"o{i}_{l}": row[f"o{m}_{i}_{l}"] for i in range(k) for l in range(i, k)}, "o", k))
+                    counts.append(int(row[f"ng{m}"]))
+            self._meats[req] = (meats, counts)
+
     # ------------------------------------------------------------------ scores
     def meats(self, request: Scores, params: dict, k: int, n_clusters: int) -> tuple[list[np.ndarray], list[int]]:
         """Meats over the k score columns, with the number of clusters of each."""
+        if request in self._meats:
+            return self._meats[request]
+        if self.collecting is not None:  # planning a shared score scan: record, answer a stand-in
+            self.collecting.append((request, k, n_clusters))
+            parts = 1 if n_clusters < 2 else 3
+            return [np.eye(k)] * parts, [2] * parts
         p = dict(params)
         p.update(dict(request.values))
         rows = request.rows

@@ -25,6 +25,8 @@ from .design import Design, build_design
 from .errors import BigpanelWarning, EstimationError, InputError
 from .execute import Executor, Keys
 from .inference import MAX_EXPANDED, Notes, finish
+from .params import check_keys
+from .plan import ScanPlan, member_params, prefill
 from .results import FitResult
 from .source import Engine, Session, Source, open_source
 from .spec import FitSpec
@@ -89,6 +91,111 @@ def fit(
         emit(notes, stacklevel=3)
 
 
+class FitList(list):
+    """The results of :func:`fit_many`, in the models' order; ``scans`` is the number of
+    full passes over the source's rows."""
+
+    scans: int = 0
+
+
+def fit_many(
+    source,
+    models,
+    unit: str,
+    period: str,
+    where: str | None = None,
+    period_step: int = 1,
+    table: str | None = None,
+    query: str | None = None,
+    csv_types: dict | None = None,
+    engine: Engine | None = None,
+) -> FitList:
+    """Estimate many models on one source, sharing scans.
+
+    Parameters
+    ----------
+    models : list of dict
+        Each with the model keys of :func:`fit` (``outcome``, ``regressors``, ``estimator``,
+        ``effects``, ``se``, ``cluster``, ``intercept``); ``unit``, ``period`` and
+        ``period_step`` are shared and may be repeated only with the same value.
+    Other parameters as in :func:`fit`.
+
+    Returns
+    -------
+    FitList
+        One :class:`FitResult` per model, in order, each equal to its own :func:`fit`
+        (to rounding); ``.scans`` counts the full passes over the source's rows. Pooled,
+        within and first-difference models without period effects share two scans per
+        row transform (levels, differences); each model keeps its own sample.
+    """
+    specs = [_model_spec(m, i, unit, period, period_step) for i, m in enumerate(models)]
+    src = _source(source, where, table, query, csv_types, engine)
+    notes = [Notes([]) for _ in specs]
+    try:
+        with Session(src) as session:
+            executor = Executor(session, Keys(unit, period, period_step))
+            prepared = [prepare(executor, spec, n) for spec, n in zip(specs, notes)]
+            plan = ScanPlan.build(prepared)
+            results: list = [None] * len(specs)
+            for scan in plan.shared:
+                alone = _run_shared(executor, scan, notes, results)
+                plan.alone.extend(alone)
+            for i in sorted(plan.alone):
+                results[i] = estimate(executor, specs[i], notes[i])
+            out = FitList(results)
+            out.scans = executor.scans
+            return out
+    finally:
+        for n in notes:
+            emit(n, stacklevel=3)
+
+
+def _model_spec(model: dict, i: int, unit: str, period: str, period_step: int) -> FitSpec:
+    if not isinstance(model, dict):
+        raise InputError(f"Model {i + 1} of fit_many is a {type(model).__name__}; give a dict of fit's model keys.")
+    check_keys(model, f"Model {i + 1} of fit_many")
+    shared = {"unit": unit, "period": period, "period_step": period_step}
+    for key, value in shared.items():
+        if key in model and model[key] != value:
+            raise InputError(f"Model {i + 1} of fit_many sets '{key}' to '{model[key]}', but the models share "
+                             f"'{value}'. Give models with other keys to another fit_many call.")
+    args = {**model, **shared}
+    return FitSpec.build(args.pop("outcome", None), args.pop("regressors", None), **args)
+
+
+def _run_shared(executor: Executor, scan, notes: list, results: list) -> list[int]:
+    """Estimate a shared scan's models: one scan for the cross-products, one for the
+    score meats. Returns the models that must run alone (digits lost in one pass)."""
+    shifts = np.where(scan.shifted, executor.shifts(scan.columns), 0.0) if any(scan.shifted) else np.zeros(len(scan.columns))
+    params = {f"s{j}": float(v) for j, v in enumerate(shifts)}
+    totals = executor.shared_moments(scan, params)
+    prefill(executor, scan, totals)
+    ready, alone = [], []
+    for m in scan.members:
+        eq = m.est.shared_equations(totals, m.sample, m.columns)
+        if eq.n_obs == 0:
+            raise EstimationError(executor.empty_message())
+        if m.est.demeaned_retry and eq.cancellation() > CANCELLATION_LIMIT:
+            alone.append(m.index)
+            continue
+        ready.append((m, eq))
+    executor.collecting = []
+    for m, eq in ready:  # learn each model's score request (solving is cheap)
+        before = len(executor.collecting)
+        own, own_params = member_params(m, shifts)
+        finish(m.est, executor, m.design, m.rows, own, own_params, eq, SHARED, Notes([]))
+        executor.collecting[before:] = [(m.index, *r) for r in executor.collecting[before:]]
+    requests, executor.collecting = executor.collecting, None
+    executor.shared_meats(scan, requests, params)
+    for m, eq in ready:
+        own, own_params = member_params(m, shifts)
+        results[m.index] = finish(m.est, executor, m.design, m.rows, own, own_params, eq, SHARED, notes[m.index])
+    return alone
+
+
+SHARED = "shared scan, shifted per-unit sums"
+
+
 def _source(source, where, table, query, csv_types, engine) -> Source:
     if isinstance(source, Source):
         if where is not None:
@@ -106,12 +213,11 @@ def emit(notes: Notes, stacklevel: int) -> None:
 def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators.Estimator, Design]:
     """The estimator and its design (checked against the schema; no rows read but
     ``levels()`` values)."""
-    session = executor.session
-    design = build_design(session, spec)
+    design = build_design(executor, spec)
     for msg in design.notes:
         notes.add(BigpanelWarning, msg)
-    est = estimators.select(spec, session)
-    design = est.extend_design(session, design)
+    est = estimators.select(spec, executor.session)
+    design = est.extend_design(executor, design)
     if any(t.kind == "lag" for t in spec.terms):
         executor.duplicates(only_if_any=True)
     return est, design
@@ -119,6 +225,7 @@ def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators
 
 def estimate(executor: Executor, spec: FitSpec, notes: Notes) -> FitResult:
     """One model through the pipeline."""
+    executor.notes = []
     est, design = prepare(executor, spec, notes)
     rows = est.rows(design)
     shifts = executor.shifts(design.sql_columns) if est.shifted() else np.zeros(design.q)

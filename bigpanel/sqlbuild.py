@@ -225,7 +225,8 @@ def unit_moments_sql(used: str, q: int, total: str = "sum") -> str:
     ``total`` is ``sum``, or ``fsum`` (compensated, order-independent) when the query
     runs on several threads and the result must not depend on their timing.
     """
-    return render("unit_moments", rows=f"({used})", aggregates=", ".join(_moment_aggregates(q, total)))
+    aggs = _moment_aggregates(q, total) + ["min(k_period) AS t_lo", "max(k_period) AS t_hi"]
+    return render("unit_moments", rows=f"({used})", aggregates=", ".join(aggs))
 
 
 def pooled_moments_sql(used: str, q: int, total: str = "sum") -> str:
@@ -273,7 +274,7 @@ def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum
     dim = q + (1 if mode == "constant" else 0)
     k = dim - 1
     keep = "n > 1" if mode == "within" else "n > 0"
-    entries = [f"{transformed_entry(j, l, q, mode)} AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
+    entries = ["t_lo", "t_hi"] + [f"{transformed_entry(j, l, q, mode)} AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
     entries += [f"p{j}_{j} AS raw{j}" for j in range(q)]
     sums = [f"sum({_w(j, l)}) AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
     sums += [f"sum(raw{j}) AS r{j}" for j in range(q)]
@@ -287,6 +288,7 @@ def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum
         sums += [f"sum(e{j} * {_w(a, b)}) AS rb{j}_{a}_{b}" for j in range(k) for a, b in pairs]
         sums += [f"sum({_w(*pairs[u])} * {_w(*pairs[v])}) AS bb{u}_{v}" for u in range(len(pairs)) for v in range(u, len(pairs))]
     sums = [total + item[3:] for item in sums]  # sum( -> fsum( when threads race
+    sums += [f"min(t_lo) FILTER (WHERE {keep}) AS t_min", f"max(t_hi) FILTER (WHERE {keep}) AS t_max"]
     return render("unit_pass", units=f"({units})", entries=", ".join(entries), residuals=residuals,
                   keep=keep, sums=", ".join(sums))
 
@@ -415,7 +417,7 @@ def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods:
 
 def twoway_pass_sql(used: str, q: int, first: int, last: int, total: str = "sum") -> str:
     """Unit + period effects in one pass: per-unit totals, presence patterns, period sums."""
-    moments = ", ".join(_moment_aggregates(q, total))
+    moments = ", ".join(_moment_aggregates(q, total) + ["min(k_period) AS t_lo", "max(k_period) AS t_hi"])
     totals = unit_pass_sql("SELECT * FROM unit_rows", q, "within", False, total)
     means = ", ".join(f"{total}(s{j} / n) AS m{j}" for j in range(q))
     sums = ", ".join(f"s{j}" for j in range(q))
@@ -538,3 +540,108 @@ def checkup_unit_scan_sql(source_sql: str, unit: str, period_value: str, checked
 
 def checkup_duplicate_scan_sql(source_sql: str, unit: str, period_value: str) -> str:
     return render("checkup_duplicates", source=source_sql, unit=quote_ident(unit), period=period_value)
+
+
+# ---------------------------------------------------------------- shared scans (fit_many)
+# Many models on one source: the union of their columns z0..z{Q-1}; sample s is the rows
+# where its columns (``samples[s]``, indices into the union) are all finite.
+
+
+def _finite(cols: Sequence[int]) -> str:
+    return "coalesce((" + " + ".join(f"{_z(j)} * 0" for j in cols) + ") = 0, false)"
+
+
+def _pair(step: int) -> str:
+    return f"coalesce(k_prev_unit = k_unit AND k_prev = k_period - {int(step)}, false)"
+
+
+def sample_flags(samples: Sequence[Sequence[int]], differenced: bool, step: int) -> list[str]:
+    """m_s (columns finite) and f_s (in the sample) per sample."""
+    out = []
+    for s, cols in enumerate(samples):
+        out.append(f"{_finite(cols)} AS m{s}")
+        out.append(f"{(_pair(step) + ' AND ') if differenced else ''}{_finite(cols)} AS f{s}")
+    return out
+
+
+def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
+                       nesting: Sequence[tuple[int, int]] = ()) -> str:
+    """Cross-products of every sample in one scan; ``nesting`` lists (sample, cluster
+    position) pairs whose clusters are checked to hold whole units."""
+    unit_sums = ["count(*) AS n_all", "min(k_period) AS lo", "max(k_period) AS hi"]
+    totals = ["sum(n_all) AS n_rows", "min(lo) AS lo", "max(hi) AS hi"]
+    if differenced:
+        unit_sums += ["count(*) FILTER (WHERE k_prev IS NULL) AS first_of_unit",
+                      f"count(*) FILTER (WHERE k_prev < k_period - {int(step)}) AS after_gap",
+                      "count(*) FILTER (WHERE k_prev = k_period) AS duplicate_keys"]
+        totals += ["sum(first_of_unit) AS first_of_unit", "sum(after_gap) AS after_gap",
+                   "sum(duplicate_keys) AS duplicate_keys"]
+    usable = (_pair(step) + " AND ") if differenced else ""
+    for s, cols in enumerate(samples):
+        unit_sums += [f"count(*) FILTER (WHERE f{s}) AS n{s}", f"count(*) FILTER (WHERE {usable}NOT m{s}) AS miss{s}",
+                      f"min(k_period) FILTER (WHERE f{s}) AS tlo{s}", f"max(k_period) FILTER (WHERE f{s}) AS thi{s}"]
+        unit_sums += [f"fsum({_z(j)}) FILTER (WHERE f{s}) AS s{s}_{j}" for j in cols]
+        unit_sums += [f"fsum({_z(j)} * {_z(l)}) FILTER (WHERE f{s}) AS p{s}_{j}_{l}" for a, j in enumerate(cols) for l in cols[a:]]
+        totals += [f"count(k_unit) FILTER (WHERE n{s} > 0) AS units{s}", f"count(*) FILTER (WHERE n{s} > 1) AS wunits{s}",
+                   f"count(*) FILTER (WHERE n{s} = 1) AS single{s}", f"sum(n{s}) AS n{s}",
+                   f"sum(n{s}) FILTER (WHERE n{s} > 1) AS wn{s}", f"sum(n{s}) FILTER (WHERE n{s} = 1) AS single_rows{s}",
+                   f"sum(miss{s}) AS miss{s}", f"min(tlo{s}) AS tlo{s}", f"max(thi{s}) AS thi{s}",
+                   f"min(tlo{s}) FILTER (WHERE n{s} > 1) AS wtlo{s}", f"max(thi{s}) FILTER (WHERE n{s} > 1) AS wthi{s}"]
+        totals += [f"fsum(s{s}_{j}) AS tot_s{s}_{j}" for j in cols]
+        for a, j in enumerate(cols):
+            for l in cols[a:]:
+                totals.append(f"fsum(p{s}_{j}_{l}) AS tot_p{s}_{j}_{l}")
+                totals.append(f"fsum(p{s}_{j}_{l} - s{s}_{j} * s{s}_{l} / n{s}) FILTER (WHERE n{s} > 1) AS tot_w{s}_{j}_{l}")
+    for s, c in nesting:
+        unit_sums.append(f"count(DISTINCT k_c{int(c)}) FILTER (WHERE f{s}) AS d{s}_{c}")
+        totals.append(f"count(*) FILTER (WHERE d{s}_{c} > 1) AS mixed{s}_{c}")
+    return render("shared_moments", rows=rows, flags=", ".join(sample_flags(samples, differenced, step)),
+                  unit_sums=", ".join(unit_sums), totals=", ".join(totals))
+
+
+def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
+                      models: Sequence[dict], keys: Sequence[str], sets: Sequence[Sequence[str]]) -> str:
+    """Meats of many models in one scan. Each model is a dict: ``sample`` (index),
+    ``x`` (union indices of its regressors), ``y`` (its outcome), ``constant``,
+    ``demean`` and ``hc1`` (bools). ``sets`` are the grouping sets over ``keys`` (some of
+    ``k_unit``, ``k_c0``, ...); their GROUPING() id is :func:`grouping_id`."""
+    centered = []
+    for s in sorted({m["sample"] for m in models if m["demean"]}):
+        cols = sorted({j for m in models if m["demean"] and m["sample"] == s for j in (*m["x"], m["y"])})
+        centered.append(f"count(*) FILTER (WHERE f{s}) OVER w AS un{s}")
+        centered += [f"{_z(j)} - fsum({_z(j)}) FILTER (WHERE f{s}) OVER w / count(*) FILTER (WHERE f{s}) OVER w AS c{s}_{j}"
+                     for j in cols]
+    residuals, scores, group_sums, outer = [], [], [], []
+    for m, spec in enumerate(models):
+        s = spec["sample"]
+        col = (lambda j, s=s: f"c{s}_{j}") if spec["demean"] else _z
+        member = f"f{s} AND un{s} > 1" if spec["demean"] else f"f{s}"
+        xs = [col(j) for j in spec["x"]] + (["1.0"] if spec["constant"] else [])
+        u = col(spec["y"]) + "".join(f" - $b{m}_{i} * {col(j)}" for i, j in enumerate(spec["x"]))
+        if spec["constant"]:
+            u += f" - $one{m}"
+        residuals.append(f"{member} AS in{m}, CASE WHEN {member} THEN {u} END AS u{m}")
+        residuals += [f"{x} AS x{m}_{i}" for i, x in enumerate(xs)]
+        k = len(xs)
+        scores += [f"x{m}_{i} * u{m} AS g{m}_{i}" for i in range(k)]
+        group_sums += [f"fsum(g{m}_{i}) AS g{m}_{i}" for i in range(k)] + [f"count(*) FILTER (WHERE in{m}) AS n{m}"]
+        outer += [f"count(*) FILTER (WHERE n{m} > 0) AS ng{m}"]
+        outer += [f"fsum(g{m}_{i} * g{m}_{l}) AS o{m}_{i}_{l}" for i in range(k) for l in range(i, k)]
+        if spec["hc1"]:
+            scores += [f"u{m} * u{m} * x{m}_{i} * x{m}_{l} AS h{m}_{i}_{l}" for i in range(k) for l in range(i, k)]
+            group_sums += [f"fsum(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i in range(k) for l in range(i, k)]
+            outer += [f"fsum(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i in range(k) for l in range(i, k)]
+    grouping_sets = "GROUPING SETS (" + ", ".join("(" + ", ".join(s) + ")" for s in sets) + ")"
+    return render("shared_scores", rows=rows, flags=", ".join(sample_flags(samples, differenced, step)),
+                  centered="".join(", " + c for c in centered), residuals=", ".join(residuals),
+                  scores=", ".join(scores), grouping=f"GROUPING({', '.join(keys)})" if keys else "0", sets=grouping_sets,
+                  group_sums=", ".join(group_sums), outer=", ".join(outer))
+
+
+def grouping_id(keys: Sequence[str], grouped: Sequence[str]) -> int:
+    """DuckDB's GROUPING(keys...) for a set grouping by ``grouped``: bit set for each key
+    left out, the first key the most significant."""
+    out = 0
+    for key in keys:
+        out = (out << 1) | (0 if key in grouped else 1)
+    return out

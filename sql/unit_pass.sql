@@ -7,7 +7,8 @@
 --                        w_j_y - sum_l w_j_l * $q_l AS e_j (see moments.py);
 --          {{keep}}      which units count (within: n > 1; a single-row unit adds zeros);
 --          {{sums}}      sum(w_j_l) AS w_j_l, sum(raw_j) AS r_j and, with residuals, the
---                        products of e and w summed over units.
+--                        products of e and w summed over units; the period bounds t_min, t_max
+--                        of the units that count.
 -- params:  $s_j shifts (through {{units}}), $q_l pilot coefficients (with residuals).
 -- output:  one row.
 WITH units AS ({{units}}),

@@ -62,12 +62,14 @@ class Estimator:
     demeaned_retry = False  # redo the pass with unit means subtracted when digits cancel
     checks_variation = False  # terms without variation within units are dropped by name
     r2_kind = ""
+    expands = False  # the unit-cluster meat can be expanded in the first pass
+    shares = False  # the first request can be served by a shared scan (bigpanel.plan)
 
     def __init__(self, spec: FitSpec):
         self.spec = spec
 
     # ---- design and rows
-    def extend_design(self, session, design: Design) -> Design:
+    def extend_design(self, executor, design: Design) -> Design:
         return design
 
     def rows(self, design: Design) -> Rows:
@@ -100,6 +102,22 @@ class Estimator:
     def equations(self, design: Design, request: CrossProducts, chunks: list[list[dict]], executor) -> Equations:
         raise NotImplementedError
 
+    def shared_equations(self, totals: dict, sample: int, columns: tuple[int, ...]) -> Equations:
+        """Equations from a shared scan's totals (``shared_moments.sql``) for a model whose
+        columns are ``columns`` (union indices, outcome last) on sample ``sample``."""
+        raise NotImplementedError
+
+
+def sample_sums(totals: dict, s: int, columns: tuple[int, ...], kind: str) -> np.ndarray:
+    """The sample's matrix ``kind`` (``p`` raw products or ``w`` within) over ``columns``."""
+    q = len(columns)
+    out = np.zeros((q, q))
+    for a in range(q):
+        for b in range(a, q):
+            j, l = sorted((columns[a], columns[b]))
+            out[a, b] = out[b, a] = totals[f"tot_{kind}{s}_{j}_{l}"] or 0.0
+    return out
+
 
 def add_unit_rows(rows: list[dict], q: int, dim: int) -> Equations:
     """Add the unit fold's chunk rows (unit_pass.sql) in chunk order."""
@@ -111,6 +129,9 @@ def add_unit_rows(rows: list[dict], q: int, dim: int) -> Equations:
         eq.n_units += int(row["n_units"])
         eq.singletons += int(row["singletons"])
         eq.singleton_rows += int(row["singleton_rows"])
+    lo = [r["t_min"] for r in rows if r["t_min"] is not None]
+    hi = [r["t_max"] for r in rows if r["t_max"] is not None]
+    eq.t_min, eq.t_max = (min(lo), max(hi)) if lo else (None, None)
     return eq
 
 

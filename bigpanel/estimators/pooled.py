@@ -13,7 +13,7 @@ import numpy as np
 from .. import moments
 from ..design import Design
 from ..requests import CrossProducts
-from .base import Equations, Estimator, set_effects, unit_fold
+from .base import Equations, Estimator, sample_sums, set_effects, unit_fold
 
 
 class Pooled(Estimator):
@@ -22,6 +22,10 @@ class Pooled(Estimator):
 
     @property
     def expands(self) -> bool:
+        return not self.spec.period_effects
+
+    @property
+    def shares(self) -> bool:
         return not self.spec.period_effects
 
     def constant_in_scores(self) -> bool:
@@ -47,6 +51,15 @@ class Pooled(Estimator):
         hi = [r["t_max"] for r in rows if r["t_max"] is not None]
         n_units = sum(int(r["n_units"]) for r in rows)  # chunks hold disjoint units
         return Equations(mat, raw, n, n_units, t_min=min(lo) if lo else None, t_max=max(hi) if hi else None)
+
+    def shared_equations(self, totals: dict, sample: int, columns: tuple[int, ...]) -> Equations:
+        s, q = sample, len(columns)
+        row = {"n": totals[f"n{s}"] or 0}
+        row.update({f"s{a}": totals[f"tot_s{s}_{j}"] for a, j in enumerate(columns)})
+        p = sample_sums(totals, s, columns, "p")
+        row.update({f"p{a}_{b}": p[a, b] for a in range(q) for b in range(a, q)})
+        mat, raw, n = moments.pooled_matrix([row], q, self.constant)
+        return Equations(mat, raw, n, int(totals[f"units{s}"]), t_min=totals[f"tlo{s}"], t_max=totals[f"thi{s}"])
 
     def _period_fold(self, chunks: list[list[dict]], q: int) -> Equations:
         """The whole matrix over (regressors, indicators but the first, [constant],

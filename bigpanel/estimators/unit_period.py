@@ -19,8 +19,9 @@ from .within import Within
 class UnitPeriod(Within):
     name = "within"
     expands = False
+    shares = False
 
-    def extend_design(self, session, design: Design) -> Design:
+    def extend_design(self, executor, design: Design) -> Design:
         return design
 
     def first_pass(self, design: Design, pilot: np.ndarray | None = None) -> CrossProducts:

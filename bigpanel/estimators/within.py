@@ -13,7 +13,7 @@ import numpy as np
 
 from ..design import Design, period_indicators
 from ..requests import CrossProducts
-from .base import Equations, Estimator, unit_fold
+from .base import Equations, Estimator, sample_sums, unit_fold
 
 
 class Within(Estimator):
@@ -24,9 +24,13 @@ class Within(Estimator):
     r2_kind = "within"
     expands = True
 
-    def extend_design(self, session, design: Design) -> Design:
+    @property
+    def shares(self) -> bool:
+        return not self.spec.period_effects
+
+    def extend_design(self, executor, design: Design) -> Design:
         if self.spec.period_effects:
-            return design.with_effects(period_indicators(session, self.spec))
+            return design.with_effects(period_indicators(executor, self.spec))
         return design
 
     def first_pass(self, design: Design, pilot: np.ndarray | None = None) -> CrossProducts:
@@ -34,3 +38,11 @@ class Within(Estimator):
 
     def equations(self, design: Design, request: CrossProducts, chunks: list[list[dict]], executor) -> Equations:
         return unit_fold(request, chunks, design.q)
+
+    def shared_equations(self, totals: dict, sample: int, columns: tuple[int, ...]) -> Equations:
+        s = sample
+        raw = np.diag(sample_sums(totals, s, columns, "p")).copy()
+        return Equations(sample_sums(totals, s, columns, "w"), raw, int(totals[f"wn{s}"] or 0),
+                         int(totals[f"wunits{s}"]), singletons=int(totals[f"single{s}"]),
+                         singleton_rows=int(totals[f"single_rows{s}"] or 0), t_min=totals[f"wtlo{s}"],
+                         t_max=totals[f"wthi{s}"])
