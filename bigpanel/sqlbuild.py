@@ -605,36 +605,57 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
     ``x`` (union indices of its regressors), ``y`` (its outcome), ``constant``,
     ``demean`` and ``hc1`` (bools). ``sets`` are the grouping sets over ``keys`` (some of
     ``k_unit``, ``k_c0``, ...); their GROUPING() id is :func:`grouping_id`."""
-    centered = []
-    for s in sorted({m["sample"] for m in models if m["demean"]}):
-        cols = sorted({j for m in models if m["demean"] and m["sample"] == s for j in (*m["x"], m["y"])})
-        centered.append(f"count(*) FILTER (WHERE f{s}) OVER w AS un{s}")
-        centered += [f"{_z(j)} - fsum({_z(j)}) FILTER (WHERE f{s}) OVER w / count(*) FILTER (WHERE f{s}) OVER w AS c{s}_{j}"
-                     for j in cols]
-    residuals, scores, group_sums, outer = [], [], [], []
+    residuals, cell_sums, unit_sums, scores, group_sums, outer = [], [], [], [], [], []
     for m, spec in enumerate(models):
         s = spec["sample"]
-        col = (lambda j, s=s: f"c{s}_{j}") if spec["demean"] else _z
-        member = f"f{s} AND un{s} > 1" if spec["demean"] else f"f{s}"
-        xs = [col(j) for j in spec["x"]] + (["1.0"] if spec["constant"] else [])
-        u = col(spec["y"]) + "".join(f" - $b{m}_{i} * {col(j)}" for i, j in enumerate(spec["x"]))
+        xs = [_z(j) for j in spec["x"]] + (["1.0"] if spec["constant"] else [])
+        k = len(xs)
+        u = _z(spec["y"]) + "".join(f" - $b{m}_{i} * {_z(j)}" for i, j in enumerate(spec["x"]))
         if spec["constant"]:
             u += f" - $one{m}"
-        residuals.append(f"{member} AS in{m}, CASE WHEN {member} THEN {u} END AS u{m}")
-        residuals += [f"{x} AS x{m}_{i}" for i, x in enumerate(xs)]
-        k = len(xs)
-        scores += [f"x{m}_{i} * u{m} AS g{m}_{i}" for i in range(k)]
-        group_sums += [f"fsum(g{m}_{i}) AS g{m}_{i}" for i in range(k)] + [f"count(*) FILTER (WHERE in{m}) AS n{m}"]
-        outer += [f"count(*) FILTER (WHERE n{m} > 0) AS ng{m}"]
-        outer += [f"fsum(g{m}_{i} * g{m}_{l}) AS o{m}_{i}_{l}" for i in range(k) for l in range(i, k)]
+        residuals.append(f"CASE WHEN f{s} THEN {u} END AS u{m}")
+        residuals += [f"CASE WHEN f{s} THEN {x} END AS x{m}_{i}" for i, x in enumerate(xs)]
+        tri = [(i, l) for i in range(k) for l in range(i, k)]
+        cell_sums += [f"count(*) FILTER (WHERE f{s}) AS n{m}", f"fsum(u{m}) AS su{m}"]
+        cell_sums += [f"fsum(x{m}_{i}) AS sx{m}_{i}, fsum(x{m}_{i} * u{m}) AS sxu{m}_{i}" for i in range(k)]
         if spec["hc1"]:
-            scores += [f"u{m} * u{m} * x{m}_{i} * x{m}_{l} AS h{m}_{i}_{l}" for i in range(k) for l in range(i, k)]
-            group_sums += [f"fsum(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i in range(k) for l in range(i, k)]
-            outer += [f"fsum(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i in range(k) for l in range(i, k)]
+            cell_sums.append(f"fsum(u{m} * u{m}) AS suu{m}")
+            cell_sums += [f"fsum(x{m}_{i} * u{m} * u{m}) AS sxuu{m}_{i}" for i in range(k)]
+            cell_sums += [f"fsum(x{m}_{i} * x{m}_{l}{suffix}) AS {name}{m}_{i}_{l}" for i, l in tri
+                          for suffix, name in (("", "sxx"), (f" * u{m}", "sxxu"), (f" * u{m} * u{m}", "sxxuu"))]
+        if spec["demean"]:
+            unit_sums += [f", sum(n{m}) AS nn{m}", f", fsum(su{m}) / sum(n{m}) AS uu{m}"]
+            unit_sums += [f", fsum(sx{m}_{i}) / sum(n{m}) AS xx{m}_{i}" for i in range(k)]
+            member = f"nn{m} > 1 AND n{m} > 0"
+            # sum over the cell of (x - xbar)(u - ubar), unit means xbar, ubar
+            scores += [f"CASE WHEN {member} THEN sxu{m}_{i} - uu{m} * sx{m}_{i} - xx{m}_{i} * su{m} "
+                       f"+ n{m} * xx{m}_{i} * uu{m} END AS g{m}_{i}" for i in range(k)]
+            if spec["hc1"]:
+                for i, l in tri:  # sum of (x_i - m_i)(x_l - m_l)(u - mu)^2, expanded in the cell's sums
+                    mi, ml, mu = f"xx{m}_{i}", f"xx{m}_{l}", f"uu{m}"
+                    a = f"(sxxuu{m}_{i}_{l} - 2 * {mu} * sxxu{m}_{i}_{l} + {mu} * {mu} * sxx{m}_{i}_{l})"
+                    b = f"{mi} * (sxuu{m}_{l} - 2 * {mu} * sxu{m}_{l} + {mu} * {mu} * sx{m}_{l})"
+                    c = f"{ml} * (sxuu{m}_{i} - 2 * {mu} * sxu{m}_{i} + {mu} * {mu} * sx{m}_{i})"
+                    d = f"{mi} * {ml} * (suu{m} - 2 * {mu} * su{m} + {mu} * {mu} * n{m})"
+                    scores.append(f"CASE WHEN {member} THEN {a} - {b} - {c} + {d} END AS h{m}_{i}_{l}")
+        else:
+            member = f"n{m} > 0"
+            scores += [f"sxu{m}_{i} AS g{m}_{i}" for i in range(k)]
+            if spec["hc1"]:
+                scores += [f"sxxuu{m}_{i}_{l} AS h{m}_{i}_{l}" for i, l in tri]
+        scores.append(f"{member} AS k{m}")
+        group_sums += [f"fsum(g{m}_{i}) AS g{m}_{i}" for i in range(k)] + [f"count(*) FILTER (WHERE k{m}) AS n{m}"]
+        outer += [f"count(*) FILTER (WHERE n{m} > 0) AS ng{m}"]
+        outer += [f"fsum(g{m}_{i} * g{m}_{l}) AS o{m}_{i}_{l}" for i, l in tri]
+        if spec["hc1"]:
+            group_sums += [f"fsum(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+            outer += [f"fsum(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+    cell_keys = ["k_unit"] + [k for k in keys if k != "k_unit"]
     grouping_sets = "GROUPING SETS (" + ", ".join("(" + ", ".join(s) + ")" for s in sets) + ")"
     return render("shared_scores", rows=rows, flags=", ".join(sample_flags(samples, differenced, step)),
-                  centered="".join(", " + c for c in centered), residuals=", ".join(residuals),
-                  scores=", ".join(scores), grouping=f"GROUPING({', '.join(keys)})" if keys else "0", sets=grouping_sets,
+                  residuals=", ".join(residuals), cell_keys=", ".join(cell_keys), cell_sums=", ".join(cell_sums),
+                  unit_sums="".join(unit_sums), scores=", ".join(scores),
+                  grouping=f"GROUPING({', '.join(keys)})" if keys else "0", sets=grouping_sets,
                   group_sums=", ".join(group_sums), outer=", ".join(outer))
 
 

@@ -110,3 +110,27 @@ def test_bad_models_are_refused_before_reading(gappy, models, message):
     with pytest.raises(InputError) as err:
         bigpanel.fit_many(gappy[1], models, unit="unit", period="period")
     assert str(err.value).startswith(message)
+
+
+def test_shared_queries_read_the_rows_once(gappy, monkeypatch):
+    # The scan count is honest: each query fit_many runs over all rows plans exactly one
+    # read of the file (DuckDB's EXPLAIN), so two queries are two passes.
+    import duckdb
+
+    from bigpanel import source
+
+    seen = []
+    real_run = source.Session.run
+
+    def recording_run(self, sql, params=None, con=None):
+        seen.append((sql, params))
+        return real_run(self, sql, params, con)
+
+    monkeypatch.setattr(source.Session, "run", recording_run)
+    results = bigpanel.fit_many(gappy[1], TEN, unit="unit", period="period")
+    full = [(sql, p) for sql, p in seen if "LIMIT" not in sql]  # the shift probe reads the first rows only
+    assert len(full) == results.scans
+    con = duckdb.connect()
+    for sql, p in full:
+        plan = "\n".join(row[1] for row in con.execute("EXPLAIN " + sql, p).fetchall())
+        assert plan.count("READ_PARQUET") + plan.count("PARQUET_SCAN") == 1
