@@ -13,7 +13,6 @@ from dataclasses import dataclass
 
 from . import sqlbuild
 from .errors import InputError, unknown_column
-from .source import is_integer, is_numeric
 from .spec import FitSpec
 
 MAX_LEVELS = 500
@@ -66,45 +65,45 @@ class Design:
 _BASE_TEN_LOG = re.compile(r"(?<![\w.])log\s*\(", re.IGNORECASE)
 
 
-def check_keys(session, spec: FitSpec) -> None:
+def check_keys(engine, spec: FitSpec) -> None:
     """Unit, period and cluster columns exist; the filter is a predicate; lags and
     differences have whole-number periods."""
-    session.require_columns([spec.unit, spec.period, *spec.cluster])
-    session.check_filter()
+    engine.require_columns([spec.unit, spec.period, *spec.cluster])
+    engine.check_filter()
     if spec.needs_order:
-        ptype = session.columns()[spec.period]
-        if not is_integer(ptype):
+        ptype = engine.columns()[spec.period]
+        if not engine.is_integer(ptype):
             raise InputError(
-                f"Column '{spec.period}' in {session.source.label} has type {ptype}; first differences and lags need "
+                f"Column '{spec.period}' in {engine.label} has type {ptype}; first differences and lags need "
                 "whole-number periods. Use a period index column (for example months since a start date)."
             )
 
 
-def integer_period(session, spec: FitSpec) -> bool:
-    return is_integer(session.columns()[spec.period].upper())
+def integer_period(engine, spec: FitSpec) -> bool:
+    return engine.is_integer(engine.columns()[spec.period].upper())
 
 
-def numeric_expression(session, text: str, what: str, notes: list[str]) -> str:
+def numeric_expression(engine, text: str, what: str, notes: list[str]) -> str:
     """The SQL for a numeric term or outcome: a column named exactly ``text`` (quoted),
     else a checked scalar expression."""
-    cols = session.columns()
+    cols = engine.columns()
     bare = text.strip()
     if bare not in cols and bare.startswith('"') and bare.endswith('"') and bare[1:-1].replace('""', '"') in cols:
         bare = bare[1:-1].replace('""', '"')
     if bare in cols:
-        if not is_numeric(cols[bare]):
+        if not engine.is_numeric(cols[bare]):
             raise InputError(
-                f"Column '{bare}' in {session.source.label} has type {cols[bare]}, not a number. "
+                f"Column '{bare}' in {engine.label} has type {cols[bare]}, not a number. "
                 f"Use levels({bare}) for a categorical column, or convert it in an expression."
             )
         return sqlbuild.quote_ident(bare)
-    session.check_expression(text, what)
+    engine.check_expression(text, what)
     if _BASE_TEN_LOG.search(text):
         msg = f"{what} '{text}' uses log(), which in SQL is the base-10 logarithm; ln() is the natural one"
         if msg not in notes:
             notes.append(msg)
-    kind = session.describe_expression(text)
-    if not is_numeric(kind):
+    kind = engine.describe_expression(text)
+    if not engine.is_numeric(kind):
         raise InputError(f"{what} '{text}' has type {kind}, not a number. Give a numeric expression.")
     return text
 
@@ -119,15 +118,15 @@ def distinct_levels(executor, quoted: str) -> list[str]:
 
 def build_design(executor, spec: FitSpec) -> Design:
     """The terms' columns (``levels()`` expanded) and the outcome."""
-    session = executor.session
-    check_keys(session, spec)
+    engine = executor.engine
+    check_keys(engine, spec)
     notes: list[str] = []
     columns: list[Column] = []
-    cols = session.columns()
+    cols = engine.columns()
     for term in spec.terms:
         if term.kind == "levels":
             if term.expr not in cols:
-                raise unknown_column(term.expr, session.source.label, cols)
+                raise unknown_column(term.expr, engine.label, cols)
             quoted = sqlbuild.quote_ident(term.expr)
             levels = distinct_levels(executor, quoted)
             base = term.base if term.base is not None else (levels[0] if levels else None)
@@ -136,10 +135,10 @@ def build_design(executor, spec: FitSpec) -> Design:
             columns += [Column(sqlbuild.indicator_sql(quoted, level), "indicator", f"{term.expr}[{level}]")
                         for level in levels if level != base]
         else:
-            sql = numeric_expression(session, term.expr, "Term", notes)
+            sql = numeric_expression(engine, term.expr, "Term", notes)
             label = term.text if sql == term.expr or term.kind == "lag" else term.text.strip().strip('"')
             columns.append(Column(sql, "lag" if term.lag else "regressor", label, term.lag))
-    outcome = numeric_expression(session, spec.outcome, "Outcome", notes)
+    outcome = numeric_expression(engine, spec.outcome, "Outcome", notes)
     columns.append(Column(outcome, "outcome", spec.outcome))
     return Design(tuple(columns), tuple(notes))
 

@@ -1,6 +1,6 @@
 """Execution: moment requests become SQL on the engine; aggregates come back.
 
-The :class:`Executor` is the one place with mutable state in a fit: the open session,
+The :class:`Executor` is the one place with mutable state in a fit: the engine,
 the chunk plan, the scan counter, whether differences were formed in scan order, and
 the row counts once counted. Everything it returns is aggregates (one row per chunk, per
 cluster or per period) as plain dicts.
@@ -12,7 +12,6 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-import pyarrow.parquet as pq
 
 from . import moments, sqlbuild
 from .errors import EstimationError, InputError
@@ -32,10 +31,10 @@ class Keys:
 
 
 class Executor:
-    """Runs requests on one open session (see :mod:`bigpanel.source`)."""
+    """Runs requests on one engine (:mod:`bigpanel.engine`)."""
 
-    def __init__(self, session, keys: Keys):
-        self.session = session
+    def __init__(self, engine, keys: Keys):
+        self.engine = engine  # an engine.EngineAdapter
         self.keys = keys
         self.scans = 0  # full passes over the source's rows
         self.notes: list[str] = []
@@ -53,36 +52,33 @@ class Executor:
     # ------------------------------------------------------------------ plumbing
     @property
     def label(self) -> str:
-        return self.session.source.label
+        return self.engine.label
 
     def chunks(self) -> list:
         if self._chunks is None:
-            self._chunks = moments.plan_chunks(self.session, self.keys.unit)
+            self._chunks = self.engine.plan_chunks(self.keys.unit)
         return self._chunks
 
     def run_once(self, sql: str, params: dict | None = None, scan: bool = True) -> list[dict]:
         """One query over all rows (``scan``: it reads every row)."""
         self.scans += int(scan)
-        return self.session.run(sql, params).to_pylist()
+        return self.engine.run(sql, params).to_pylist()
 
     def run_chunked(self, make_sql: Callable, params: dict, chunks: Sequence | None = None) -> list[list[dict]]:
         chunks = self.chunks() if chunks is None else chunks
         self.scans += 1
-        return [t.to_pylist() for t in moments.run_chunks(self.session, chunks, make_sql, params)]
+        return [t.to_pylist() for t in self.engine.run_chunks(chunks, make_sql, params)]
 
     def empty_message(self) -> str:
-        src = self.session.source
-        where = f" after the filter '{src.where}'" if src.where else ""
-        return (f"No usable rows in {src.label}{where}: every row was filtered out or has a missing value in a term. "
+        where = f" after the filter '{self.engine.where}'" if self.engine.where else ""
+        return (f"No usable rows in {self.label}{where}: every row was filtered out or has a missing value in a term. "
                 "Check the filter and the columns.")
 
     # ------------------------------------------------------------------ rows
     def rows_sql(self, rows: Rows, chunk=None, head: bool = False, streaming: bool = False) -> str:
         k = self.keys
         chunk = chunk or moments.Chunk()
-        source = self.session.source.filtered(chunk.files, chunk.unit_range(k.unit))
-        if head:
-            source = sqlbuild.head_sql(source, PROBE_ROWS)
+        source = self.engine.filtered(chunk, k.unit, PROBE_ROWS if head else None)
         sql = sqlbuild.design_rows_sql(source, k.unit, k.period, list(rows.clusters), list(rows.columns), k.step)
         if rows.differenced:
             sql = sqlbuild.differenced_rows_sql(sql, len(rows.clusters), rows.q, streaming and chunk.files is not None and not head)
@@ -98,16 +94,16 @@ class Executor:
         """Means of the design columns (levels) over the first rows: subtracted before summing."""
         q = len(columns)
         k = self.keys
-        head = sqlbuild.head_sql(self.session.source.filtered(), PROBE_ROWS)
+        head = self.engine.filtered(head=PROBE_ROWS)
         rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step)
-        row = self.session.run(sqlbuild.probe_sql(rows, q), {f"s{j}": 0.0 for j in range(q)}).to_pylist()[0]
+        row = self.run_once(sqlbuild.probe_sql(rows, q), {f"s{j}": 0.0 for j in range(q)}, scan=False)[0]
         shifts = np.array([row[f"a{j}"] if row[f"a{j}"] is not None else 0.0 for j in range(q)], dtype=float)
         return np.where(np.isfinite(shifts), shifts, 0.0)
 
     def period_bounds(self) -> tuple[object, object]:
         """First and last period in the filtered source (reads the period column only)."""
         if self._bounds is None:
-            sql = sqlbuild.period_bounds_sql(self.session.source.filtered(), self.keys.period)
+            sql = sqlbuild.period_bounds_sql(self.engine.filtered(), self.keys.period)
             row = self.run_once(sql)[0]
             self._bounds = (row["lo"], row["hi"])
         return self._bounds
@@ -126,11 +122,11 @@ class Executor:
     def rows_after_filter(self) -> int:
         """Rows left by the filter (footers only for unfiltered Parquet; counted once)."""
         if self._n_filtered is None:
-            src = self.session.source
-            if src.kind == "parquet" and not src.where:
-                self._n_filtered = sum(pq.read_metadata(f).num_rows for f in src.files)
+            known = self.engine.row_count()
+            if known is not None:
+                self._n_filtered = known
             else:
-                self._n_filtered = int(self.run_once(sqlbuild.count_rows_sql(src.filtered()))[0]["n"])
+                self._n_filtered = int(self.run_once(sqlbuild.count_rows_sql(self.engine.filtered()))[0]["n"])
         return self._n_filtered
 
     def row_counts(self, rows: Rows, params: dict) -> dict:
@@ -144,7 +140,7 @@ class Executor:
     def distinct(self, expression: str, limit: int) -> list[str]:
         """Distinct non-null values of an expression (as text, sorted; at most ``limit``)."""
         if expression not in self._levels:
-            sql = sqlbuild.distinct_values_sql(self.session.source.filtered(), expression, limit)
+            sql = sqlbuild.distinct_values_sql(self.engine.filtered(), expression, limit)
             self._levels[expression] = [r["v"] for r in self.run_once(sql)]
         return self._levels[expression]
 
@@ -154,7 +150,7 @@ class Executor:
         if only_if_any and self._keys_unique:
             return
         k = self.keys
-        sql = sqlbuild.checkup_duplicate_scan_sql(self.session.source.filtered(), k.unit, sqlbuild.quote_ident(k.period))
+        sql = sqlbuild.checkup_duplicate_scan_sql(self.engine.filtered(), k.unit, sqlbuild.quote_ident(k.period))
         rows = self.run_once(sql, {"n_examples": 5})
         self._keys_unique = not rows
         if only_if_any and not rows:
@@ -200,7 +196,7 @@ class Executor:
                 return sqlbuild.unit_pass_sql(sqlbuild.unit_moments_sql(used(c), q, total), q, request.layout, expand, total)
 
         if request.head:
-            return [self.session.run(make(chunks[0]), p).to_pylist()]
+            return [self.run_once(make(chunks[0]), p, scan=False)]
         return self.run_chunked(make, p, chunks)
 
     def moments(self, request: CrossProducts, params: dict, assemble: Callable):

@@ -22,6 +22,7 @@ import numpy as np
 
 from . import estimators
 from .design import Design, build_design
+from .engine import DuckDBEngine
 from .errors import BigpanelWarning, EstimationError, InputError
 from .execute import Executor, Keys
 from .inference import MAX_EXPANDED, Notes, finish
@@ -85,7 +86,7 @@ def fit(
     notes = Notes([])
     try:
         with Session(src) as session:
-            executor = Executor(session, Keys(spec.unit, spec.period, spec.period_step))
+            executor = Executor(DuckDBEngine(session), Keys(spec.unit, spec.period, spec.period_step))
             return estimate(executor, spec, notes)
     finally:
         emit(notes, stacklevel=3)
@@ -133,7 +134,7 @@ def fit_many(
     notes = [Notes([]) for _ in specs]
     try:
         with Session(src) as session:
-            executor = Executor(session, Keys(unit, period, period_step))
+            executor = Executor(DuckDBEngine(session), Keys(unit, period, period_step))
             prepared = [prepare(executor, spec, n) for spec, n in zip(specs, notes)]
             plan = ScanPlan.build(prepared)
             results: list = [None] * len(specs)
@@ -216,7 +217,7 @@ def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators
     design = build_design(executor, spec)
     for msg in design.notes:
         notes.add(BigpanelWarning, msg)
-    est = estimators.select(spec, executor.session)
+    est = estimators.select(spec, executor.engine)
     design = est.extend_design(executor, design)
     if any(t.kind == "lag" for t in spec.terms):
         executor.duplicates(only_if_any=True)

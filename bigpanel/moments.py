@@ -97,9 +97,9 @@ def plan_chunks(session: Session, unit: str) -> list[Chunk]:
     return chunks if len(chunks) > 1 else whole
 
 
-def sum_function(chunks: Sequence) -> str:
-    """``sum`` when every query runs on one thread (chunked), else ``fsum``."""
-    return "sum" if len(chunks) > 1 else "fsum"
+def sum_function(chunks: Sequence, dialect: sqlbuild.Dialect = sqlbuild.DUCKDB) -> str:
+    """The plain sum when every query runs on one thread (chunked), else the compensated one."""
+    return dialect.total(compensated=len(chunks) <= 1)
 
 
 def run_chunks(

@@ -40,22 +40,18 @@ class Engine:
     memory_limit: str | None = None
     temp_directory: str | None = None
 
-    def settings(self) -> list[str]:
-        out = [
-            "SET enable_progress_bar = false",
-            "SET enable_progress_bar_print = false",
-            "SET preserve_insertion_order = true",
-            "SET parquet_metadata_cache = true",
-        ]
+    def settings(self) -> list[tuple[str, str]]:
+        """(setting name, SET statement) pairs, built by sqlbuild."""
+        pairs = list(sqlbuild.BASE_SETTINGS)
         if self.threads is not None:
             if int(self.threads) < 1:
                 raise InputError(f"Option 'threads' must be at least 1, got {self.threads}. Give a positive count.")
-            out.append(f"SET threads = {int(self.threads)}")
+            pairs.append(("threads", int(self.threads)))
         if self.memory_limit is not None:
-            out.append(f"SET memory_limit = {sqlbuild.quote_literal(self.memory_limit)}")
+            pairs.append(("memory_limit", str(self.memory_limit)))
         if self.temp_directory is not None:
-            out.append(f"SET temp_directory = {sqlbuild.quote_literal(self.temp_directory)}")
-        return out
+            pairs.append(("temp_directory", str(self.temp_directory)))
+        return [(name, sqlbuild.setting_sql(name, value)) for name, value in pairs]
 
 
 @dataclass(frozen=True)
@@ -93,25 +89,16 @@ class Source:
     def filtered(self, files: Sequence[str] | None = None, unit_range: tuple[str, Any, Any] | None = None) -> str:
         """A subquery of the source's rows after the row filter; ``unit_range`` =
         (column, low, high) keeps low <= column < high (either bound may be None)."""
-        conditions = [f"({self.where})"] if self.where else []
-        if unit_range is not None:
-            column, low, high = unit_range
-            if low is not None:
-                conditions.append(f"{sqlbuild.quote_ident(column)} >= {sqlbuild.value_literal(low)}")
-            if high is not None:
-                conditions.append(f"{sqlbuild.quote_ident(column)} < {sqlbuild.value_literal(high)}")
-        where = f" WHERE {' AND '.join(conditions)}" if conditions else ""
-        return f"(SELECT * FROM {self.relation(files)}{where})"
+        return sqlbuild.filtered_sql(self.relation(files), self.where, unit_range)
 
     def connect(self) -> duckdb.DuckDBPyConnection:
         """A fresh in-memory connection with the engine settings and the source attached."""
         con = duckdb.connect(":memory:")
-        for statement in self.engine.settings():
+        for setting, statement in self.engine.settings():
             try:
                 con.execute(statement)
             except duckdb.Error as exc:
                 con.close()
-                setting = statement.split()[1]
                 raise InputError(
                     f"Option '{setting}' was refused by DuckDB ({_first_line(exc)}). "
                     "Give a size like 4GB for the memory limit, or an existing folder for the temporary directory."
@@ -126,7 +113,7 @@ class Source:
                     "Check that it is a DuckDB database written by a compatible version."
                 ) from None
             if self.kind == "query":
-                con.execute(f"USE {sqlbuild.quote_ident(_ATTACHED)}")
+                con.execute(sqlbuild.use_sql(_ATTACHED))
         if self.frame is not None:
             con.register(_FRAME_VIEW, self.frame)
         return con
@@ -280,7 +267,7 @@ class Session:
     def describe(self, sql: str, params: dict | None = None) -> list[tuple[str, str]]:
         """(name, type) of a query's result columns, binding it without running it."""
         try:
-            rows = self.con.execute(f"DESCRIBE {sql}", params or {}).fetchall()
+            rows = self.con.execute(sqlbuild.describe_sql(sql), params or {}).fetchall()
         except duckdb.Error as exc:
             raise self._explain(exc) from None
         return [(r[0], r[1]) for r in rows]
@@ -288,7 +275,7 @@ class Session:
     def cursor(self, threads: int | None = None) -> duckdb.DuckDBPyConnection:
         cur = self.con.cursor()
         if threads is not None:
-            cur.execute(f"SET threads = {int(threads)}")
+            cur.execute(sqlbuild.setting_sql("threads", int(threads)))
         return cur
 
     def _explain(self, exc: duckdb.Error) -> Exception:
@@ -314,7 +301,7 @@ class Session:
         """Column name -> DuckDB type of the source (before the filter)."""
         if self._columns is None:
             try:
-                rows = self.con.execute(f"DESCRIBE SELECT * FROM {self.source.relation()}").fetchall()
+                rows = self.con.execute(sqlbuild.describe_sql(sqlbuild.all_columns_sql(self.source.relation()))).fetchall()
             except duckdb.Error as exc:
                 raise self._explain(exc) from None
             self._columns = {r[0]: r[1] for r in rows}
@@ -360,14 +347,14 @@ class Session:
             return
         self.check_expression(where, "Filter")
         try:
-            self.con.execute(f"DESCRIBE SELECT * FROM {self.source.filtered()}").fetchall()
+            self.con.execute(sqlbuild.describe_sql(sqlbuild.all_columns_sql(self.source.filtered()))).fetchall()
         except duckdb.Error as exc:
             raise InputError(f"Filter '{where}' is not valid on {self.source.label} ({_first_line(exc)}). Fix the SQL predicate.") from None
 
     def describe_expression(self, expression: str) -> str:
         """DuckDB type of an expression over the source (binding it, reading no rows)."""
         try:
-            row = self.con.execute(f"DESCRIBE SELECT {expression} AS x FROM {self.source.relation()}").fetchall()[0]
+            row = self.con.execute(sqlbuild.describe_sql(sqlbuild.expression_probe_sql(expression, self.source.relation()))).fetchall()[0]
         except duckdb.Error as exc:
             missing = re.search(r'Referenced column "([^"]+)" not found', str(exc))
             if missing:

@@ -13,6 +13,7 @@ from __future__ import annotations
 import json
 import re
 from collections.abc import Sequence
+from dataclasses import dataclass
 from functools import cache
 from importlib import resources
 from pathlib import Path
@@ -20,14 +21,46 @@ from pathlib import Path
 _PLACEHOLDER = re.compile(r"\{\{(\w+)\}\}")
 
 
-def quote_ident(name: str) -> str:
-    """Quote an identifier for DuckDB: ``a"b`` becomes ``"a""b"``."""
-    return '"' + str(name).replace('"', '""') + '"'
+@dataclass(frozen=True)
+class Dialect:
+    """What differs between SQL engines in the text the builders write: identifier and
+    literal quoting, parameter markers, the compensated sum and the finiteness test.
+    DuckDB is the one dialect today; an engine adapter brings its own (DEVELOPERS.md)."""
+
+    name: str = "duckdb"
+    compensated: str = "fsum"  # a sum whose result does not depend on the order of rows
+    plain: str = "sum"
+    param_marker: str = "$"
+
+    def quote_ident(self, name: str) -> str:
+        return '"' + str(name).replace('"', '""') + '"'
+
+    def quote_literal(self, value: str) -> str:
+        return "'" + str(value).replace("'", "''") + "'"
+
+    def param(self, name: str) -> str:
+        return f"{self.param_marker}{name}"
+
+    def total(self, compensated: bool) -> str:
+        """The sum function: compensated when a query's threads race (its result must not
+        depend on their timing), plain when it runs on one thread."""
+        return self.compensated if compensated else self.plain
+
+    def is_finite(self, expression: str) -> str:
+        return f"isfinite({expression})"
 
 
-def quote_literal(value: str) -> str:
+DUCKDB = Dialect()
+
+
+def quote_ident(name: str, dialect: Dialect = DUCKDB) -> str:
+    """Quote an identifier: ``a"b`` becomes ``"a""b"``."""
+    return dialect.quote_ident(name)
+
+
+def quote_literal(value: str, dialect: Dialect = DUCKDB) -> str:
     """Quote a string literal: ``it's`` becomes ``'it''s'``."""
-    return "'" + str(value).replace("'", "''") + "'"
+    return dialect.quote_literal(value)
 
 
 def value_literal(value) -> str:
@@ -104,6 +137,62 @@ def query_relation(sql: str) -> str:
 
 def attach_sql(path: str, alias: str) -> str:
     return f"ATTACH {quote_literal(path)} AS {quote_ident(alias)} (READ_ONLY)"
+
+
+# ---------------------------------------------------------------- settings, filters, probes
+
+BASE_SETTINGS = (
+    ("enable_progress_bar", "false"),
+    ("enable_progress_bar_print", "false"),
+    ("preserve_insertion_order", "true"),
+    ("parquet_metadata_cache", "true"),
+)
+
+
+def setting_sql(name: str, value) -> str:
+    """``SET name = value``: booleans and whole numbers as they are, anything else quoted."""
+    if not re.fullmatch(r"[a-z_]+", name):
+        raise ValueError(f"not a setting name: {name!r}")
+    if isinstance(value, bool):
+        text = "true" if value else "false"
+    elif isinstance(value, int) or value in ("true", "false"):
+        text = str(int(value)) if isinstance(value, int) else value
+    else:
+        text = quote_literal(value)
+    return f"SET {name} = {text}"
+
+
+def filtered_sql(relation: str, where: str | None, unit_range: tuple | None = None) -> str:
+    """The rows of ``relation`` that pass the (checked) filter and, with ``unit_range`` =
+    (column, low, high), low <= column < high (either bound may be None; literals so that
+    DuckDB skips row groups by their statistics)."""
+    conditions = [f"({where})"] if where else []
+    if unit_range is not None:
+        column, low, high = unit_range
+        if low is not None:
+            conditions.append(f"{quote_ident(column)} >= {value_literal(low)}")
+        if high is not None:
+            conditions.append(f"{quote_ident(column)} < {value_literal(high)}")
+    clause = f" WHERE {' AND '.join(conditions)}" if conditions else ""
+    return f"(SELECT * FROM {relation}{clause})"
+
+
+def describe_sql(select: str) -> str:
+    """Bind a query without running it: its result columns and types."""
+    return f"DESCRIBE {select}"
+
+
+def all_columns_sql(relation: str) -> str:
+    return f"SELECT * FROM {relation}"
+
+
+def expression_probe_sql(expression: str, relation: str) -> str:
+    """The (checked) expression over the relation, to learn its type by DESCRIBE."""
+    return f"SELECT {expression} AS x FROM {relation}"
+
+
+def use_sql(catalog: str) -> str:
+    return f"USE {quote_ident(catalog)}"
 
 
 # ---------------------------------------------------------------- expressions
@@ -276,25 +365,24 @@ def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum
     keep = "n > 1" if mode == "within" else "n > 0"
     entries = ["t_lo", "t_hi"] + [f"{transformed_entry(j, l, q, mode)} AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
     entries += [f"p{j}_{j} AS raw{j}" for j in range(q)]
-    sums = [f"sum({_w(j, l)}) AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
-    sums += [f"sum(raw{j}) AS r{j}" for j in range(q)]
+    sums = [f"{total}({_w(j, l)}) AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
+    sums += [f"{total}(raw{j}) AS r{j}" for j in range(q)]
     residuals = ""
     if expand:
         residuals = ", " + ", ".join(
             f"{_w(j, k)} - (" + " + ".join(f"$q{l} * {_w(j, l)}" for l in range(k)) + f") AS e{j}" for j in range(k)
         )
         pairs = [(a, b) for a in range(k) for b in range(a, k)]
-        sums += [f"sum(e{j} * e{m}) AS rr{j}_{m}" for j in range(k) for m in range(j, k)]
-        sums += [f"sum(e{j} * {_w(a, b)}) AS rb{j}_{a}_{b}" for j in range(k) for a, b in pairs]
-        sums += [f"sum({_w(*pairs[u])} * {_w(*pairs[v])}) AS bb{u}_{v}" for u in range(len(pairs)) for v in range(u, len(pairs))]
-    sums = [total + item[3:] for item in sums]  # sum( -> fsum( when threads race
+        sums += [f"{total}(e{j} * e{m}) AS rr{j}_{m}" for j in range(k) for m in range(j, k)]
+        sums += [f"{total}(e{j} * {_w(a, b)}) AS rb{j}_{a}_{b}" for j in range(k) for a, b in pairs]
+        sums += [f"{total}({_w(*pairs[u])} * {_w(*pairs[v])}) AS bb{u}_{v}" for u in range(len(pairs)) for v in range(u, len(pairs))]
     sums += [f"min(t_lo) FILTER (WHERE {keep}) AS t_min", f"max(t_hi) FILTER (WHERE {keep}) AS t_max"]
     return render("unit_pass", units=f"({units})", entries=", ".join(entries), residuals=residuals,
                   keep=keep, sums=", ".join(sums))
 
 
-def row_counts_sql(rows: str, q: int, differenced: bool, step: int) -> str:
-    finite = " AND ".join(f"isfinite({_z(j)})" for j in range(q))
+def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dialect = DUCKDB) -> str:
+    finite = " AND ".join(f"{dialect.is_finite(_z(j))}" for j in range(q))
     usable = f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)} AND " if differenced else ""
     counts = ["count(*) AS n_rows", f"count(*) FILTER (WHERE {usable}NOT coalesce({finite}, false)) AS missing"]
     if differenced:
@@ -344,7 +432,7 @@ def _a_names(q: int, intercept: bool) -> list[str]:
 
 
 def centered_ctes(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int,
-                  total: str = "fsum") -> str:
+                  total: str = DUCKDB.compensated) -> str:
     """CTEs ending in ``centered``: per row x~_j AS x_j and u~ AS u (unit-demeaned under
     within, after removing period effects), with the unit and cluster keys."""
     keys = ["k_unit", "k_period"] + [f"k_c{i}" for i in range(n_clusters)]
@@ -368,15 +456,15 @@ def used_rows_sql(rows: str, valid: str) -> str:
     return f"SELECT * FROM ({rows}) AS r WHERE {valid}"
 
 
-def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int) -> str:
+def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int, dialect: Dialect = DUCKDB) -> str:
     """Meat for each cluster set (one-way: c0; two-way: c0, c1 and their intersection).
 
     It runs over all rows on several threads, so every sum is compensated (``fsum``):
     plain sums would change in the last digits with the threads' timing.
     """
     k = q - 1 + (1 if intercept else 0)
-    scores = ", ".join(f"fsum(x{i} * u) AS g{i}" for i in range(k))
-    outer = ", ".join(f"fsum(g{i} * g{j}) AS o{i}_{j}" for i in range(k) for j in range(i, k))
+    scores = ", ".join(f"{dialect.compensated}(x{i} * u) AS g{i}" for i in range(k))
+    outer = ", ".join(f"{dialect.compensated}(g{i} * g{j}) AS o{i}_{j}" for i in range(k) for j in range(i, k))
     if n_clusters == 1:
         sets, key = "GROUPING SETS ((k_c0))", "GROUPING(k_c0) AS gid"
     else:
@@ -385,9 +473,9 @@ def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_perio
     return render("cluster_scores", centered=centered, sets_key=key, sets=sets, scores=scores, outer=outer)
 
 
-def residual_moments_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int) -> str:
+def residual_moments_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, dialect: Dialect = DUCKDB) -> str:
     k = q - 1 + (1 if intercept else 0)
-    sums = ", ".join(f"fsum(u * u * x{i} * x{j}) AS h{i}_{j}" for i in range(k) for j in range(i, k))
+    sums = ", ".join(f"{dialect.compensated}(u * u * x{i} * x{j}) AS h{i}_{j}" for i in range(k) for j in range(i, k))
     return render("residual_moments", centered=centered_ctes(used, q, intercept, demean, n_periods, 0), sums=sums)
 
 
@@ -448,10 +536,10 @@ def demeaned_rows_sql(used: str, q: int, n_clusters: int) -> str:
     return f"SELECT {keys}, {cols} FROM ({used}) AS r"
 
 
-def probe_sql(rows: str, q: int) -> str:
+def probe_sql(rows: str, q: int, dialect: Dialect = DUCKDB) -> str:
     """Means of the design columns over ``rows`` (built on the source's first rows):
     the shift subtracted before accumulating."""
-    means = ", ".join(f"avg({_z(j)}) FILTER (WHERE isfinite({_z(j)})) AS a{j}" for j in range(q))
+    means = ", ".join(f"avg({_z(j)}) FILTER (WHERE {dialect.is_finite(_z(j))}) AS a{j}" for j in range(q))
     return f"SELECT {means} FROM ({rows}) AS head"
 
 
@@ -565,7 +653,7 @@ def sample_flags(samples: Sequence[Sequence[int]], differenced: bool, step: int)
 
 
 def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
-                       nesting: Sequence[tuple[int, int]] = ()) -> str:
+                       nesting: Sequence[tuple[int, int]] = (), dialect: Dialect = DUCKDB) -> str:
     """Cross-products of every sample in one scan; ``nesting`` lists (sample, cluster
     position) pairs whose clusters are checked to hold whole units."""
     unit_sums = ["count(*) AS n_all", "min(k_period) AS lo", "max(k_period) AS hi"]
@@ -580,18 +668,18 @@ def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced:
     for s, cols in enumerate(samples):
         unit_sums += [f"count(*) FILTER (WHERE f{s}) AS n{s}", f"count(*) FILTER (WHERE {usable}NOT m{s}) AS miss{s}",
                       f"min(k_period) FILTER (WHERE f{s}) AS tlo{s}", f"max(k_period) FILTER (WHERE f{s}) AS thi{s}"]
-        unit_sums += [f"fsum({_z(j)}) FILTER (WHERE f{s}) AS s{s}_{j}" for j in cols]
-        unit_sums += [f"fsum({_z(j)} * {_z(l)}) FILTER (WHERE f{s}) AS p{s}_{j}_{l}" for a, j in enumerate(cols) for l in cols[a:]]
+        unit_sums += [f"{dialect.compensated}({_z(j)}) FILTER (WHERE f{s}) AS s{s}_{j}" for j in cols]
+        unit_sums += [f"{dialect.compensated}({_z(j)} * {_z(l)}) FILTER (WHERE f{s}) AS p{s}_{j}_{l}" for a, j in enumerate(cols) for l in cols[a:]]
         totals += [f"count(k_unit) FILTER (WHERE n{s} > 0) AS units{s}", f"count(*) FILTER (WHERE n{s} > 1) AS wunits{s}",
                    f"count(*) FILTER (WHERE n{s} = 1) AS single{s}", f"sum(n{s}) AS n{s}",
                    f"sum(n{s}) FILTER (WHERE n{s} > 1) AS wn{s}", f"sum(n{s}) FILTER (WHERE n{s} = 1) AS single_rows{s}",
                    f"sum(miss{s}) AS miss{s}", f"min(tlo{s}) AS tlo{s}", f"max(thi{s}) AS thi{s}",
                    f"min(tlo{s}) FILTER (WHERE n{s} > 1) AS wtlo{s}", f"max(thi{s}) FILTER (WHERE n{s} > 1) AS wthi{s}"]
-        totals += [f"fsum(s{s}_{j}) AS tot_s{s}_{j}" for j in cols]
+        totals += [f"{dialect.compensated}(s{s}_{j}) AS tot_s{s}_{j}" for j in cols]
         for a, j in enumerate(cols):
             for l in cols[a:]:
-                totals.append(f"fsum(p{s}_{j}_{l}) AS tot_p{s}_{j}_{l}")
-                totals.append(f"fsum(p{s}_{j}_{l} - s{s}_{j} * s{s}_{l} / n{s}) FILTER (WHERE n{s} > 1) AS tot_w{s}_{j}_{l}")
+                totals.append(f"{dialect.compensated}(p{s}_{j}_{l}) AS tot_p{s}_{j}_{l}")
+                totals.append(f"{dialect.compensated}(p{s}_{j}_{l} - s{s}_{j} * s{s}_{l} / n{s}) FILTER (WHERE n{s} > 1) AS tot_w{s}_{j}_{l}")
     for s, c in nesting:
         unit_sums.append(f"count(DISTINCT k_c{int(c)}) FILTER (WHERE f{s}) AS d{s}_{c}")
         totals.append(f"count(*) FILTER (WHERE d{s}_{c} > 1) AS mixed{s}_{c}")
@@ -600,7 +688,7 @@ def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced:
 
 
 def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
-                      models: Sequence[dict], keys: Sequence[str], sets: Sequence[Sequence[str]]) -> str:
+                      models: Sequence[dict], keys: Sequence[str], sets: Sequence[Sequence[str]], dialect: Dialect = DUCKDB) -> str:
     """Meats of many models in one scan. Each model is a dict: ``sample`` (index),
     ``x`` (union indices of its regressors), ``y`` (its outcome), ``constant``,
     ``demean`` and ``hc1`` (bools). ``sets`` are the grouping sets over ``keys`` (some of
@@ -616,16 +704,16 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
         residuals.append(f"CASE WHEN f{s} THEN {u} END AS u{m}")
         residuals += [f"CASE WHEN f{s} THEN {x} END AS x{m}_{i}" for i, x in enumerate(xs)]
         tri = [(i, l) for i in range(k) for l in range(i, k)]
-        cell_sums += [f"count(*) FILTER (WHERE f{s}) AS n{m}", f"fsum(u{m}) AS su{m}"]
-        cell_sums += [f"fsum(x{m}_{i}) AS sx{m}_{i}, fsum(x{m}_{i} * u{m}) AS sxu{m}_{i}" for i in range(k)]
+        cell_sums += [f"count(*) FILTER (WHERE f{s}) AS n{m}", f"{dialect.compensated}(u{m}) AS su{m}"]
+        cell_sums += [f"{dialect.compensated}(x{m}_{i}) AS sx{m}_{i}, {dialect.compensated}(x{m}_{i} * u{m}) AS sxu{m}_{i}" for i in range(k)]
         if spec["hc1"]:
-            cell_sums.append(f"fsum(u{m} * u{m}) AS suu{m}")
-            cell_sums += [f"fsum(x{m}_{i} * u{m} * u{m}) AS sxuu{m}_{i}" for i in range(k)]
-            cell_sums += [f"fsum(x{m}_{i} * x{m}_{l}{suffix}) AS {name}{m}_{i}_{l}" for i, l in tri
+            cell_sums.append(f"{dialect.compensated}(u{m} * u{m}) AS suu{m}")
+            cell_sums += [f"{dialect.compensated}(x{m}_{i} * u{m} * u{m}) AS sxuu{m}_{i}" for i in range(k)]
+            cell_sums += [f"{dialect.compensated}(x{m}_{i} * x{m}_{l}{suffix}) AS {name}{m}_{i}_{l}" for i, l in tri
                           for suffix, name in (("", "sxx"), (f" * u{m}", "sxxu"), (f" * u{m} * u{m}", "sxxuu"))]
         if spec["demean"]:
-            unit_sums += [f", sum(n{m}) AS nn{m}", f", fsum(su{m}) / sum(n{m}) AS uu{m}"]
-            unit_sums += [f", fsum(sx{m}_{i}) / sum(n{m}) AS xx{m}_{i}" for i in range(k)]
+            unit_sums += [f", sum(n{m}) AS nn{m}", f", {dialect.compensated}(su{m}) / sum(n{m}) AS uu{m}"]
+            unit_sums += [f", {dialect.compensated}(sx{m}_{i}) / sum(n{m}) AS xx{m}_{i}" for i in range(k)]
             member = f"nn{m} > 1 AND n{m} > 0"
             # sum over the cell of (x - xbar)(u - ubar), unit means xbar, ubar
             scores += [f"CASE WHEN {member} THEN sxu{m}_{i} - uu{m} * sx{m}_{i} - xx{m}_{i} * su{m} "
@@ -644,12 +732,12 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
             if spec["hc1"]:
                 scores += [f"sxxuu{m}_{i}_{l} AS h{m}_{i}_{l}" for i, l in tri]
         scores.append(f"{member} AS k{m}")
-        group_sums += [f"fsum(g{m}_{i}) AS g{m}_{i}" for i in range(k)] + [f"count(*) FILTER (WHERE k{m}) AS n{m}"]
+        group_sums += [f"{dialect.compensated}(g{m}_{i}) AS g{m}_{i}" for i in range(k)] + [f"count(*) FILTER (WHERE k{m}) AS n{m}"]
         outer += [f"count(*) FILTER (WHERE n{m} > 0) AS ng{m}"]
-        outer += [f"fsum(g{m}_{i} * g{m}_{l}) AS o{m}_{i}_{l}" for i, l in tri]
+        outer += [f"{dialect.compensated}(g{m}_{i} * g{m}_{l}) AS o{m}_{i}_{l}" for i, l in tri]
         if spec["hc1"]:
-            group_sums += [f"fsum(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
-            outer += [f"fsum(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+            group_sums += [f"{dialect.compensated}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+            outer += [f"{dialect.compensated}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
     cell_keys = ["k_unit"] + [k for k in keys if k != "k_unit"]
     grouping_sets = "GROUPING SETS (" + ", ".join("(" + ", ".join(s) + ")" for s in sets) + ")"
     return render("shared_scores", rows=rows, flags=", ".join(sample_flags(samples, differenced, step)),

@@ -13,11 +13,11 @@ from .within import Within
 __all__ = ["Equations", "Estimator", "FirstDifference", "Pooled", "UnitPeriod", "Within", "select"]
 
 
-def select(spec: FitSpec, session) -> Estimator:
+def select(spec: FitSpec, engine) -> Estimator:
     """The estimator for ``spec`` (unit and period effects on whole-number periods take
     the exact two-way path; on other periods, indicator columns inside within)."""
     if spec.estimator == "within":
-        if spec.period_effects and integer_period(session, spec):
+        if spec.period_effects and integer_period(engine, spec):
             return UnitPeriod(spec)
         return Within(spec)
     if spec.estimator == "first-difference":

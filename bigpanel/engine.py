@@ -1,0 +1,111 @@
+"""The engine boundary: what the pipeline asks of a SQL engine, and DuckDB's answers.
+
+The executor (:mod:`bigpanel.execute`) and the design (:mod:`bigpanel.design`) talk to an
+engine only through :class:`EngineAdapter`; all SQL text comes from :mod:`bigpanel.sqlbuild`
+in the engine's :class:`~bigpanel.sqlbuild.Dialect`. DuckDB is the one implementation;
+another SQL engine is a new adapter (DEVELOPERS.md lists what it must provide).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from typing import Protocol
+
+import pyarrow.parquet as pq
+
+from . import moments, sqlbuild
+from .source import Session, is_integer, is_numeric
+
+
+class EngineAdapter(Protocol):
+    """What a SQL engine provides to the pipeline."""
+
+    dialect: sqlbuild.Dialect
+    label: str  # the source's name in messages
+    where: str | None  # the row filter as the user gave it
+
+    def columns(self) -> dict[str, str]:
+        """Column name -> type of the source (schema only, no rows read)."""
+
+    def is_numeric(self, column_type: str) -> bool: ...
+
+    def is_integer(self, column_type: str) -> bool: ...
+
+    def require_columns(self, names: Sequence[str]) -> None:
+        """Raise the unknown-column error (with close names) for a missing column."""
+
+    def check_filter(self) -> None:
+        """Refuse a filter that is not one checked predicate over the columns."""
+
+    def check_expression(self, expression: str, what: str) -> None:
+        """Refuse anything but one scalar expression (parsed, never pasted unchecked)."""
+
+    def describe_expression(self, expression: str) -> str:
+        """The type of a checked expression over the source, reading no rows."""
+
+    def filtered(self, chunk: moments.Chunk | None = None, unit: str | None = None, head: int | None = None) -> str:
+        """FROM text for the source's rows after the filter (one chunk of units, or the first rows)."""
+
+    def run(self, sql: str, params: dict | None = None):
+        """Run one query; return its (aggregate) result as a pyarrow Table."""
+
+    def plan_chunks(self, unit: str) -> list[moments.Chunk]:
+        """Cut the source into unit ranges that read few storage blocks (or one chunk)."""
+
+    def run_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict) -> list:
+        """One query per chunk, results in chunk order (bitwise the same on every run)."""
+
+    def row_count(self) -> int | None:
+        """Rows after the filter when known without a scan (storage metadata), else None."""
+
+
+class DuckDBEngine:
+    """DuckDB on one open :class:`~bigpanel.source.Session`."""
+
+    dialect = sqlbuild.DUCKDB
+
+    def __init__(self, session: Session):
+        self.session = session
+        self.source = session.source
+        self.label = session.source.label
+        self.where = session.source.where
+
+    def columns(self) -> dict[str, str]:
+        return self.session.columns()
+
+    def is_numeric(self, column_type: str) -> bool:
+        return is_numeric(column_type)
+
+    def is_integer(self, column_type: str) -> bool:
+        return is_integer(column_type)
+
+    def require_columns(self, names: Sequence[str]) -> None:
+        self.session.require_columns(names)
+
+    def check_filter(self) -> None:
+        self.session.check_filter()
+
+    def check_expression(self, expression: str, what: str) -> None:
+        self.session.check_expression(expression, what)
+
+    def describe_expression(self, expression: str) -> str:
+        return self.session.describe_expression(expression)
+
+    def filtered(self, chunk: moments.Chunk | None = None, unit: str | None = None, head: int | None = None) -> str:
+        rows = self.source.filtered(chunk.files, chunk.unit_range(unit)) if chunk else self.source.filtered()
+        return sqlbuild.head_sql(rows, head) if head else rows
+
+    def run(self, sql: str, params: dict | None = None):
+        return self.session.run(sql, params)
+
+    def plan_chunks(self, unit: str) -> list[moments.Chunk]:
+        return moments.plan_chunks(self.session, unit)
+
+    def run_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict) -> list:
+        return moments.run_chunks(self.session, chunks, make_sql, params)
+
+    def row_count(self) -> int | None:
+        if self.source.kind == "parquet" and not self.source.where:
+            return sum(pq.read_metadata(f).num_rows for f in self.source.files)
+        return None
+
