@@ -181,9 +181,10 @@ def fit_command(
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
                      se=se.value if se else None, cluster=cluster, intercept=False if no_intercept else None,
                      period_step=period_step)
-    for w in caught:
-        if issubclass(w.category, BigpanelWarning):
-            typer.echo(f"note: {w.message}", err=True)
+    if as_json:  # the text report shows every note itself: print each once
+        for w in caught:
+            if issubclass(w.category, BigpanelWarning):
+                typer.echo(f"note: {w.message}", err=True)
     typer.echo(result.to_json() if as_json else result.table())
 
 

@@ -72,7 +72,7 @@ def compare_estimators(folder: Path) -> str:
             results[name] = fit(folder, "parcels", regressors, unit="depot", period="month", se="cluster",
                                 cluster="region", **options)
         seconds[name] = time.perf_counter() - started
-    n_regions = results["within"].variance["n_clusters"]
+    n_regions = results["within"].variance.n_clusters[0]
     lines = [f"Estimates of the parcels equation (month effects in all three; standard errors clustered by "
              f"region, {n_regions} regions):", ""]
     head = f"  {'term':<12} {'true':>7}" + "".join(f"  {name:>24}" for name, _ in runs)

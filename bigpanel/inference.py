@@ -18,7 +18,7 @@ from . import moments, variance
 from .errors import DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning
 from .estimators.base import Equations, Estimator
 from .requests import Nesting, Rows, Scores
-from .results import Coefficient, FitResult
+from .results import Coefficient, FitResult, VarianceSummary
 from .solve import solve_normal
 
 MAX_EXPANDED = 8  # largest model whose unit-cluster meat is summed in the first pass (k^4/4 sums)
@@ -204,8 +204,9 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     return FitResult(
         estimator=spec.estimator, outcome=spec.outcome, coefficients=tuple(coefs), n_obs=n_obs, n_units=eq.n_units,
         n_periods=n_periods, period_first=t_min, period_last=t_max, effects=spec.effects,
-        variance={"type": var.kind, "df": var.df, "small_sample_factor": var.small_sample_factor,
-                  "n_clusters": var.n_clusters, "cluster_columns": list(spec.cluster)},
+        variance=VarianceSummary(var.kind, var.df, tuple(np.atleast_1d(var.small_sample_factor).tolist()),
+                                 tuple(np.atleast_1d(var.n_clusters).tolist()) if var.n_clusters is not None else (),
+                                 tuple(spec.cluster), var.clipped_eigenvalues),
         r_squared=float(r2), r_squared_kind=est.r2_kind, f_stat=f_stat, f_df=(float(len(slopes)), float(var.df)),
         f_p_value=f_p, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=eq.singletons,
         absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=executor.label,

@@ -42,6 +42,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
+from .convert import json_ready
 from . import moments, sqlbuild
 from .errors import InputError
 from .source import Session, Source, is_integer, is_numeric
@@ -162,7 +163,7 @@ class PanelReport:
     def to_dict(self) -> dict[str, Any]:
         """A JSON-ready dict of the fields above (periods as ISO text), plus the derived
         ``balanced_share`` and ``not_estimable``."""
-        out = _json_ready(dataclasses.asdict(self))
+        out = json_ready(self)
         out["balanced_share"] = self.balanced_share
         out["not_estimable"] = list(self.not_estimable)
         return out
@@ -538,20 +539,6 @@ def _show(value: Any) -> str:
         return value.isoformat(sep=" ")
     if isinstance(value, dt.date):
         return value.isoformat()
-    return str(value)
-
-
-def _json_ready(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {k: _json_ready(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_ready(v) for v in value]
-    if isinstance(value, (dt.date, dt.datetime)):
-        return value.isoformat()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, (str, int, float, bool)) or value is None:
-        return value
     return str(value)
 
 

@@ -6,6 +6,8 @@ import json
 import math
 from dataclasses import asdict, dataclass, field
 
+from .convert import json_ready
+
 CAUTIONS = (
     "Causal reading assumes strict exogeneity: the time-varying error is unrelated to the regressors in every period.",
     "The unit effect removed by within or first differences must be constant over time.",
@@ -34,6 +36,20 @@ class Coefficient:
 
 
 @dataclass(frozen=True)
+class VarianceSummary:
+    """The variance used, with fields of one shape whatever the flags: one small-sample
+    factor per component (two-way clustering: A, B, A-and-B) and one cluster count per
+    component (empty without clusters)."""
+
+    type: str
+    df: float
+    small_sample_factors: tuple[float, ...]
+    n_clusters: tuple[int, ...]
+    cluster_columns: tuple[str, ...]
+    clipped_eigenvalues: int = 0
+
+
+@dataclass(frozen=True)
 class FitResult:
     """Everything a fit produced. Convert with :meth:`to_dict`, :meth:`to_json`,
     :meth:`to_polars`; print with :meth:`table`."""
@@ -47,7 +63,7 @@ class FitResult:
     period_first: object
     period_last: object
     effects: tuple[str, ...]
-    variance: dict
+    variance: VarianceSummary
     r_squared: float
     r_squared_kind: str
     f_stat: float
@@ -64,12 +80,9 @@ class FitResult:
     warnings: tuple[str, ...] = field(default=())
 
     def to_dict(self) -> dict:
-        out = asdict(self)
-        out["coefficients"] = [asdict(c) for c in self.coefficients]
+        out = json_ready(self)
         out["cautions"] = list(CAUTIONS)
-        out["period_first"] = _plain(self.period_first)
-        out["period_last"] = _plain(self.period_last)
-        return _finite(out)
+        return out
 
     def to_json(self, indent: int | None = 2) -> str:
         return json.dumps(self.to_dict(), indent=indent)
@@ -94,10 +107,9 @@ class FitResult:
         lines = [f"{title}: {self.outcome}", f"  source {self.source}" + (f"  where {self.where}" if self.where else "")]
         eff = f"  effects: {', '.join(self.effects)}" if self.effects else ""
         lines.append(f"  {self.n_obs:,} rows used, {self.n_units:,} units" + (f", {self.n_periods} periods" if self.n_periods else "") + eff)
-        clusters = v.get("n_clusters")
-        vline = f"  variance: {v['type']}, t with {v['df']:g} df"
-        if clusters:
-            vline += f", clusters {clusters if isinstance(clusters, int) else ' / '.join(map(str, clusters))}"
+        vline = f"  variance: {v.type}, t with {v.df:g} df"
+        if v.n_clusters:
+            vline += f", clusters {' / '.join(map(str, v.n_clusters))}"
         lines.append(vline)
         lines.append("")
         width = max([len(c.term) for c in self.coefficients] + [4])
@@ -134,20 +146,3 @@ def _p(p: float) -> str:
     if not math.isfinite(p):
         return "nan"
     return "<0.0001" if p < 1e-4 else f"{p:.4f}"
-
-
-def _plain(v: object) -> object:
-    if v is None or isinstance(v, (int, float, str, bool)):
-        return v
-    return str(v)
-
-
-def _finite(obj):
-    """JSON has no NaN: turn non-finite floats into None, tuples into lists."""
-    if isinstance(obj, float):
-        return obj if math.isfinite(obj) else None
-    if isinstance(obj, dict):
-        return {k: _finite(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_finite(v) for v in obj]
-    return obj

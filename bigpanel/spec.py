@@ -12,11 +12,11 @@ of our own:
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from . import params
 from .errors import InputError
-from .params import ESTIMATORS, VARIANCES, split_top_level  # noqa: F401 - re-exported
+from .params import split_top_level
 
 _LAG = re.compile(r"^lag\s*\((.*)\)$", re.IGNORECASE | re.DOTALL)
 _LEVELS = re.compile(r"^levels\s*\((.*)\)$", re.IGNORECASE | re.DOTALL)
@@ -79,7 +79,6 @@ class FitSpec:
     cluster: tuple[str, ...]
     intercept: bool
     period_step: int = 1
-    warnings: tuple[str, ...] = field(default=(), compare=False)
 
     @classmethod
     def build(

@@ -199,7 +199,7 @@ def test_few_clusters_warn(gappy_file):
     # unreliable; 20 units here.
     with pytest.warns(FewClustersWarning):
         res = bigpanel.fit(gappy_file, "y", REGRESSORS, "unit", "period", se="cluster")
-    assert res.variance["n_clusters"] == 20
+    assert res.variance.n_clusters == (20,)
     assert any("clusters" in w for w in res.warnings)
 
 
@@ -209,7 +209,7 @@ def test_one_cluster_warns_and_gives_no_standard_error(gappy, tmp_path):
     path = write_parquet(gappy.assign(country=1), tmp_path / "one.parquet")
     with pytest.warns(FewClustersWarning):
         res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster="country")
-    assert res.variance["n_clusters"] == 1
+    assert res.variance.n_clusters == (1,)
     assert all(np.isnan(c.std_error) for c in res.coefficients)
 
 
@@ -339,3 +339,16 @@ def test_every_kind_of_source_gives_the_parquet_answer(every_source, kind):
     np.testing.assert_allclose(estimates(res, REGRESSORS), estimates(ref, REGRESSORS), rtol=1e-12)
     np.testing.assert_allclose(std_errors(res, REGRESSORS), std_errors(ref, REGRESSORS), rtol=1e-12)
     assert (res.n_obs, res.n_units) == (ref.n_obs, ref.n_units)
+
+
+def test_terms_named_as_columns_are_those_columns(gappy, tmp_path):
+    # Source: the same fit on plainly named columns (common practice: a term equal to a
+    # column's name is that column, even a SQL keyword or a name with spaces and capitals).
+    renamed = gappy.rename(columns={"unit": "group", "period": "year", "x1": "union", "x2": "Sales 2024", "y": "order"})
+    path = write_parquet(renamed, tmp_path / "keywords.parquet")
+    plain = bigpanel.fit(write_parquet(gappy, tmp_path / "plain.parquet"), "y", ["x1", "x2", "lag(x1)"], "unit", "period")
+    res = bigpanel.fit(path, "order", "union, Sales 2024, lag(union)", "group", "year")
+    assert [c.term for c in res.coefficients] == ["union", "Sales 2024", "lag(union)"]
+    np.testing.assert_allclose(estimates(res, ["union", "Sales 2024", "lag(union)"]),
+                               estimates(plain, ["x1", "x2", "lag(x1)"]), rtol=1e-12)
+    assert res.outcome == "order"

@@ -65,7 +65,7 @@ def test_within_iid_matches_lsdv(panel):
     ratio = (n - k_dense) / (n - len(REGRESSORS) - g)
     np.testing.assert_allclose(se, ref.bse[:2] * np.sqrt(ratio), rtol=SE_RTOL)
     assert res.n_obs == n and res.n_units == g
-    assert res.variance["df"] == n - len(REGRESSORS) - g
+    assert res.variance.df == n - len(REGRESSORS) - g
 
 
 def test_within_hc1_matches_lsdv(panel):
@@ -83,7 +83,7 @@ def test_within_hc1_matches_lsdv(panel):
     ours_factor = n / (n - len(REGRESSORS) - g)
     sm_factor = n / (n - k_dense)
     np.testing.assert_allclose(se, ref_se[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
-    assert res.variance["small_sample_factor"] == pytest.approx(ours_factor, rel=1e-14)
+    assert res.variance.small_sample_factors[0] == pytest.approx(ours_factor, rel=1e-14)
 
 
 def test_within_cr1_unit_clusters_matches_lsdv(panel):
@@ -101,9 +101,9 @@ def test_within_cr1_unit_clusters_matches_lsdv(panel):
     ours_factor = cr1_factor(g, n, len(REGRESSORS))
     sm_factor = cr1_factor(g, n, k_dense)
     np.testing.assert_allclose(se, ref_se[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
-    assert res.variance["n_clusters"] == g
-    assert res.variance["df"] == g - 1
-    assert res.variance["small_sample_factor"] == pytest.approx(ours_factor, rel=1e-14)
+    assert res.variance.n_clusters == (g,)
+    assert res.variance.df == g - 1
+    assert res.variance.small_sample_factors[0] == pytest.approx(ours_factor, rel=1e-14)
 
 
 def test_within_cr1_clusters_across_units_matches_lsdv(panel):
@@ -122,7 +122,7 @@ def test_within_cr1_clusters_across_units_matches_lsdv(panel):
     ours_factor = cr1_factor(g, n, len(REGRESSORS) + g_units)
     sm_factor = cr1_factor(g, n, k_dense)
     np.testing.assert_allclose(se, ref_se[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
-    assert res.variance["n_clusters"] == g
+    assert res.variance.n_clusters == (g,)
 
 
 def test_within_cr1_clusters_nesting_units_matches_lsdv(panel):
@@ -140,7 +140,7 @@ def test_within_cr1_clusters_nesting_units_matches_lsdv(panel):
     n, g = len(df), df["region"].nunique()
     ours_factor = cr1_factor(g, n, len(REGRESSORS))
     sm_factor = cr1_factor(g, n, k_dense)
-    assert res.variance["small_sample_factor"] == pytest.approx(ours_factor, rel=1e-12)
+    assert res.variance.small_sample_factors[0] == pytest.approx(ours_factor, rel=1e-12)
     np.testing.assert_allclose(se, ref_se[:2] * np.sqrt(ours_factor / sm_factor), rtol=SE_RTOL)
 
 
@@ -173,9 +173,9 @@ def test_within_two_way_clusters_matches_statsmodels(panel):
     expected = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
     np.testing.assert_allclose(se, np.sqrt(np.diag(expected)), rtol=SE_RTOL)
     assert any("negative eigenvalue" in w for w in res.warnings) == bool(clipped)
-    assert res.variance["n_clusters"] == [g_unit, g_period, g_cell]
-    np.testing.assert_allclose(res.variance["small_sample_factor"], factors, rtol=1e-12)
-    assert res.variance["df"] == min(g_unit, g_period) - 1
+    assert res.variance.n_clusters == (g_unit, g_period, g_cell)
+    np.testing.assert_allclose(res.variance.small_sample_factors, factors, rtol=1e-12)
+    assert res.variance.df == min(g_unit, g_period) - 1
 
 
 # ------------------------------------------------------------------ within, two-way effects
@@ -258,7 +258,7 @@ def test_first_difference_matches_ols_on_differences(panel):
     ratio = cr1_factor(g, n, len(terms)) / cr1_factor(g, n, x.shape[1])
     np.testing.assert_allclose(se, ref_se * np.sqrt(ratio), rtol=SE_RTOL)
     assert res.n_obs == n
-    assert res.variance["n_clusters"] == g
+    assert res.variance.n_clusters == (g,)
 
 
 def test_first_difference_iid_matches_ols_on_differences(panel):

@@ -53,8 +53,8 @@ def assert_same(many, alone):
         np.testing.assert_allclose(a.std_error, b.std_error, rtol=RTOL)
     assert (many.n_obs, many.n_units, many.rows_dropped) == (alone.n_obs, alone.n_units, alone.rows_dropped)
     assert (many.n_periods, many.period_first, many.period_last) == (alone.n_periods, alone.period_first, alone.period_last)
-    assert many.variance["n_clusters"] == alone.variance["n_clusters"]
-    np.testing.assert_allclose(many.variance["small_sample_factor"], alone.variance["small_sample_factor"], rtol=RTOL)
+    assert many.variance.n_clusters == alone.variance.n_clusters
+    np.testing.assert_allclose(many.variance.small_sample_factors, alone.variance.small_sample_factors, rtol=RTOL)
     np.testing.assert_allclose(many.r_squared, alone.r_squared, rtol=RTOL)
 
 

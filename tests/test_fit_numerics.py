@@ -152,7 +152,7 @@ def test_singleton_units_are_dropped_and_counted(base_panel, tmp_path):
     assert res.n_obs == len(base_panel) and res.n_units == base_panel["unit"].nunique()
     np.testing.assert_allclose(slopes(res), slopes(clean), rtol=1e-12)
     np.testing.assert_allclose(errors(res), errors(clean), rtol=1e-12)
-    assert res.variance["n_clusters"] == clean.variance["n_clusters"]
+    assert res.variance.n_clusters == clean.variance.n_clusters
     ref = lsdv(base_panel, REGRESSORS)[0].fit()
     np.testing.assert_allclose(slopes(res), ref.params[:2], rtol=1e-9)
 

@@ -132,7 +132,7 @@ def test_number_of_files_changes_nothing(seed, shape, estimator, n_files, se):
             many = fit(parts, estimator, se=se)
     assert planned == [1, n_files]  # the two paths the property compares were taken
     assert_same_coefficients(one, many)
-    assert (one.n_obs, one.n_units, one.variance["n_clusters"]) == (many.n_obs, many.n_units, many.variance["n_clusters"])
+    assert (one.n_obs, one.n_units, one.variance.n_clusters) == (many.n_obs, many.n_units, many.variance.n_clusters)
 
 
 @SETTINGS
