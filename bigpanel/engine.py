@@ -8,13 +8,19 @@ another SQL engine is a new adapter (DEVELOPERS.md lists what it must provide).
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from typing import Protocol
 
+import duckdb
 import pyarrow.parquet as pq
 
 from . import moments, sqlbuild
 from .source import Session, is_integer, is_numeric
+
+
+STREAM_BATCH_ROWS = 131_072  # upper bound per streamed batch (batches also break at row groups)
 
 
 class EngineAdapter(Protocol):
@@ -57,6 +63,10 @@ class EngineAdapter(Protocol):
 
     def row_count(self) -> int | None:
         """Rows after the filter when known without a scan (storage metadata), else None."""
+
+    def fold_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict, fold: Callable) -> list:
+        """Optional: stream each chunk's rows as Arrow batches into ``fold(batches)`` (one
+        thread per chunk, the rows in storage order); results in chunk order."""
 
 
 class DuckDBEngine:
@@ -103,6 +113,23 @@ class DuckDBEngine:
 
     def run_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict) -> list:
         return moments.run_chunks(self.session, chunks, make_sql, params)
+
+    def fold_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict, fold: Callable) -> list:
+        session = self.session
+        threads = self.source.engine.threads or os.cpu_count() or 1
+
+        def one(chunk):
+            cur = session.cursor(threads=1)
+            try:
+                reader = cur.sql(make_sql(chunk), params=params).to_arrow_reader(STREAM_BATCH_ROWS)
+                return fold(iter(reader))
+            except duckdb.Error as exc:
+                raise session._explain(exc) from None
+            finally:
+                cur.close()
+
+        with ThreadPoolExecutor(max_workers=max(1, int(threads))) as pool:
+            return list(pool.map(one, chunks))
 
     def row_count(self) -> int | None:
         if self.source.kind == "parquet" and not self.source.where:

@@ -17,6 +17,9 @@ from . import moments, sqlbuild
 from .errors import EstimationError, InputError
 from .requests import CrossProducts, Nesting, Rows, Scores
 
+# The unit fold of unit-sorted chunks summed in numpy (fold.py) instead of SQL, per layout:
+# measured in the benchmark (README); the path that ran is recorded on the result.
+NUMPY_FOLD_LAYOUTS = frozenset({"within", "plain", "constant"})
 PROBE_ROWS = 20_000  # first rows used for the shifts and the pilot coefficients
 MAX_PERIOD_SPAN = 10_000  # widest period range for unit + period effects (bits per unit)
 
@@ -48,6 +51,7 @@ class Executor:
         self._nested: dict = {}
         self._meats: dict = {}
         self.collecting: list | None = None  # score requests seen while planning (fit_many)
+        self.fold_path = "sql"  # where the last unit fold was summed: "sql" or "numpy"
 
     # ------------------------------------------------------------------ plumbing
     @property
@@ -195,9 +199,40 @@ class Executor:
             def make(c):
                 return sqlbuild.unit_pass_sql(sqlbuild.unit_moments_sql(used(c), q, total), q, request.layout, expand, total)
 
+            if self._numpy_fold(request, chunks):
+                return self._fold_in_numpy(request, chunks, used, make, p)
+            self.fold_path = "sql"
+
         if request.head:
             return [self.run_once(make(chunks[0]), p, scan=False)]
         return self.run_chunked(make, p, chunks)
+
+    def _numpy_fold(self, request: CrossProducts, chunks) -> bool:
+        """Unit-sorted chunks (more than one) of levels, where the engine can stream."""
+        return (len(chunks) > 1 and not request.head and not request.rows.demeaned
+                and request.layout in NUMPY_FOLD_LAYOUTS and hasattr(self.engine, "fold_chunks"))
+
+    def _fold_in_numpy(self, request: CrossProducts, chunks, used, make, params: dict) -> list[list[dict]]:
+        from .fold import NotConsecutive, fold_units
+
+        q = request.rows.q
+        pilot = None if request.pilot is None else np.array(request.pilot)
+
+        def fold(batches):
+            try:
+                return fold_units(batches, q, request.layout, pilot)
+            except NotConsecutive:
+                return None
+
+        stream = {k: v for k, v in params.items() if not k.startswith("q")}
+        self.scans += 1
+        rows = self.engine.fold_chunks(chunks, lambda c: sqlbuild.stream_rows_sql(used(c), q), stream, fold)
+        if any(r is None for r in rows):  # a unit's rows were not consecutive: sum in SQL
+            self.fold_path = "sql"
+            self.scans -= 1
+            return self.run_chunked(make, params, chunks)
+        self.fold_path = "numpy"
+        return [[r] for r in rows]
 
     def moments(self, request: CrossProducts, params: dict, assemble: Callable):
         """Run a cross-product request and assemble it (``assemble(rows_per_chunk)``

@@ -235,7 +235,7 @@ def estimate(executor: Executor, spec: FitSpec, notes: Notes) -> FitResult:
     eq = executor.moments(request, params, lambda chunks: est.equations(design, request, chunks, executor))
     if eq.n_obs == 0:
         raise EstimationError(executor.empty_message())
-    accumulation = "one pass, shifted per-unit sums"
+    accumulation = "one pass, shifted per-unit sums" + (" folded in numpy" if executor.fold_path == "numpy" else "")
     if est.demeaned_retry and eq.cancellation() > CANCELLATION_LIMIT:
         request = replace(request, rows=replace(request.rows, demeaned=True))
         eq = executor.moments(request, params, lambda chunks: est.equations(design, request, chunks, executor))

@@ -381,6 +381,11 @@ def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum
                   keep=keep, sums=", ".join(sums))
 
 
+def stream_rows_sql(used: str, q: int) -> str:
+    """The used rows' unit, period and design columns, in storage order (for the numpy fold)."""
+    return f"SELECT k_unit, k_period, {', '.join(_z(j) for j in range(q))} FROM ({used}) AS r"
+
+
 def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dialect = DUCKDB) -> str:
     finite = " AND ".join(f"{dialect.is_finite(_z(j))}" for j in range(q))
     usable = f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)} AND " if differenced else ""

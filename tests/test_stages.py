@@ -232,3 +232,38 @@ def test_parameter_table_normalises_lists():
     assert params.check("regressors", "x, lag(x, 2), levels(k, 'a,b')") == ("x", "lag(x, 2)", "levels(k, 'a,b')")
     assert params.check("cluster", ["unit", " period "]) == ("unit", "period")
     assert params.PARAMETERS["se"].option == "--se" and params.PARAMETERS["intercept"].option == "--no-intercept"
+
+
+# ------------------------------------------------------------------ the numpy unit fold
+
+
+@pytest.mark.parametrize("layout", ["within", "plain", "constant"])
+@pytest.mark.parametrize("expand", [False, True])
+def test_numpy_fold_equals_the_sql_fold(layout, expand):
+    # Reference: unit_pass.sql over unit_moments.sql in DuckDB (fsum) on the same rows,
+    # streamed to numpy in batches that cut units in two.
+    import pyarrow as pa
+
+    from bigpanel.fold import NotConsecutive, fold_units
+
+    rng = np.random.default_rng(5)
+    units = np.repeat(np.arange(60), rng.integers(1, 8, 60))
+    periods = np.concatenate([np.arange(c) for c in np.bincount(units)])
+    z = rng.normal(size=(len(units), 3)) + 50.0
+    table = pa.table({"k_unit": units, "k_period": periods, "z0": z[:, 0], "z1": z[:, 1], "z2": z[:, 2]})
+    con = duckdb.connect()
+    con.register("r", table)
+    pilot = np.array([0.3, -0.2, 0.1][: 2 + (layout == "constant")]) if expand else None
+    params = {f"q{j}": float(v) for j, v in enumerate(pilot)} if expand else None
+    sql = sqlbuild.unit_pass_sql(sqlbuild.unit_moments_sql("SELECT * FROM r", 3, "fsum"), 3, layout, expand, "fsum")
+    ref = con.execute(sql, params).fetchdf().iloc[0].to_dict()
+    got = fold_units(table.to_batches(max_chunksize=17), 3, layout, pilot)
+    assert set(got) == set(ref)
+    for key, value in got.items():
+        if isinstance(value, float):  # sums of 300 products of values near 50: 2^10 eps of the largest
+            assert value == pytest.approx(ref[key], rel=2**10 * EPS, abs=2**10 * EPS * 2500 * len(units))
+        else:
+            assert value == ref[key], key
+    shuffled = table.take(rng.permutation(len(units)))
+    with pytest.raises(NotConsecutive):
+        fold_units(shuffled.to_batches(max_chunksize=17), 3, layout, pilot)
