@@ -59,9 +59,15 @@ def floor(files, settings):
     return {}
 
 
-def _bigpanel(estimator, effects=None):
+def _bigpanel(estimator, effects=None, fold="as shipped"):
+    """``fold="sql"`` sums the unit fold in SQL even where bigpanel would use numpy, so
+    one run measures both paths (execute.NUMPY_FOLD_LAYOUTS)."""
     def run(files, settings):
         import bigpanel
+        import bigpanel.execute
+
+        if fold == "sql":
+            bigpanel.execute.NUMPY_FOLD_LAYOUTS = frozenset()
 
         engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
                                  temp_directory=settings.temp_directory)
@@ -156,6 +162,12 @@ CASES = {case.name: case for case in [
          "bigpanel within (unit and period effects), unit clusters"),
     Case("first-difference", "bigpanel", _bigpanel("first-difference"), _BP,
          "bigpanel first differences, unit clusters"),
+    Case("pooled-sql-fold", "bigpanel", _bigpanel("pooled", fold="sql"), _BP,
+         "bigpanel pooled, unit clusters, unit fold summed in SQL"),
+    Case("within-sql-fold", "bigpanel", _bigpanel("within", fold="sql"), _BP,
+         "bigpanel within, unit clusters, unit fold summed in SQL"),
+    Case("first-difference-sql-fold", "bigpanel", _bigpanel("first-difference", fold="sql"), _BP,
+         "bigpanel first differences, unit clusters, unit fold summed in SQL"),
     Case("pandas", "in-memory", pandas_within, ("numpy", "pandas"),
          "within in pandas: read, groupby-transform demean, lstsq, groupby-sum scores"),
     Case("polars-eager", "in-memory", polars_eager_within, ("numpy", "polars"),
