@@ -34,17 +34,18 @@ def fold_units(batches, q: int, layout: str, pilot: np.ndarray | None = None) ->
             continue
         keys = batch.column(0).to_numpy(zero_copy_only=False)
         periods = batch.column(1).to_numpy(zero_copy_only=False)
-        z = np.column_stack([batch.column(2 + j).to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
-                             for j in range(q)])
+        z = np.empty((q, batch.num_rows))  # column-major: one contiguous row per design column
+        for j in range(q):
+            z[j] = batch.column(2 + j).to_numpy(zero_copy_only=False)
         if carry_keys is not None:
             keys = np.concatenate([carry_keys, keys])
             periods = np.concatenate([carry_t, periods])
-            z = np.concatenate([carry_z, z])
+            z = np.concatenate([carry_z, z], axis=1)
         starts = np.flatnonzero(keys[1:] != keys[:-1]) + 1
         last = int(starts[-1]) if starts.size else 0  # the last unit may continue in the next batch
         if last:
-            state.add(keys[:last], periods[:last], z[:last], np.r_[0, starts[:-1]])
-        carry_keys, carry_t, carry_z = keys[last:], periods[last:], z[last:]
+            state.add(keys[:last], periods[:last], z[:, :last], np.r_[0, starts[:-1]])
+        carry_keys, carry_t, carry_z = keys[last:], periods[last:], z[:, last:]
     if carry_keys is not None and carry_keys.size:
         state.add(carry_keys, carry_t, carry_z, np.array([0]))
     return state.row()
@@ -57,6 +58,8 @@ class _State:
         self.idx = pairs(self.dim)
         k = self.dim - 1
         self.kpairs = pairs(k)
+        self.design_pairs = tuple(np.array(pairs(q)).T)
+        self.design_diag = [i for i, (x, y) in enumerate(pairs(q)) if x == y]
         self.w = np.zeros(len(self.idx))
         self.raw = np.zeros(q)
         self.n_obs = self.n_units = self.singletons = self.singleton_rows = 0
@@ -75,11 +78,13 @@ class _State:
         self.last_key = heads[-1]
         n = np.diff(np.r_[bounds, keys.size])
         q = self.q
-        a, b = np.array(pairs(q)).T
-        s = np.add.reduceat(z, bounds, axis=0)
-        p = np.add.reduceat(z[:, a] * z[:, b], bounds, axis=0)
-        diag = [i for i, (x, y) in enumerate(zip(a, b)) if x == y]
-        self.raw += p[:, diag].sum(axis=0)
+        a, b = self.design_pairs
+        products = np.empty((len(a), z.shape[1]))
+        for i, (x, y) in enumerate(zip(a, b)):
+            np.multiply(z[x], z[y], out=products[i])
+        s = np.add.reduceat(z, bounds, axis=1).T
+        p = np.add.reduceat(products, bounds, axis=1).T
+        self.raw += p[:, self.design_diag].sum(axis=0)
         keep = n > 1 if self.layout == "within" else n > 0
         self.n_units += int(keep.sum())
         self.n_obs += int(n[keep].sum())
