@@ -267,3 +267,20 @@ def test_numpy_fold_equals_the_sql_fold(layout, expand):
     shuffled = table.take(rng.permutation(len(units)))
     with pytest.raises(NotConsecutive):
         fold_units(shuffled.to_batches(max_chunksize=17), 3, layout, pilot)
+
+
+@pytest.mark.filterwarnings("ignore::bigpanel.errors.BigpanelWarning")
+def test_the_result_names_the_fold_that_ran(tmp_path, monkeypatch):
+    # Reference: the same fit with the unit fold summed in SQL (to rounding: common practice).
+    import bigpanel
+    import bigpanel.execute
+    from panel_cases import unbalanced_panel, write_parquet_parts
+
+    monkeypatch.setattr(bigpanel.moments, "CHUNK_ROWS", 1)
+    parts = write_parquet_parts(unbalanced_panel(9, 40, 6), tmp_path / "parts", 3)
+    numpy_fold = bigpanel.fit(parts, "y", ["x1", "x2"], "unit", "period", estimator="pooled", se="cluster")
+    monkeypatch.setattr(bigpanel.execute, "NUMPY_FOLD_LAYOUTS", frozenset())
+    sql_fold = bigpanel.fit(parts, "y", ["x1", "x2"], "unit", "period", estimator="pooled", se="cluster")
+    assert "numpy" in numpy_fold.accumulation and "numpy" not in sql_fold.accumulation
+    for a, b in zip(numpy_fold.coefficients, sql_fold.coefficients):
+        np.testing.assert_allclose([a.estimate, a.std_error], [b.estimate, b.std_error], rtol=1e-12)
