@@ -6,7 +6,12 @@ runs them and reads their rows):
 
 0. ``checkup_shifts``: the mean of each numeric column over the first rows (a tiny read),
    subtracted in the scans below, so that values far from zero (a large offset) keep
-   their digits and the parallel sums differ from run to run only in the last bits.
+   their digits and the parallel sums differ from run to run only in the last bits; and
+   their largest magnitude, from which a power-of-two scale is chosen that brings the
+   values near 1 (exact: no digit changes), so that squares of very large or very small
+   values neither overflow nor underflow.
+Values that are NaN or infinite are counted apart ("not finite") and otherwise left out,
+like missing values.
 1. ``checkup_periods``: GROUP BY period. Row counts, the distinct periods (from which the
    regular step is found here, in Python, over at most ``MAX_PERIODS`` values), and per
    period the count, mean and sum of squared deviations of each column. The periods are
@@ -78,12 +83,16 @@ class ColumnCheck:
     ``within_estimable`` is False when the column never changes inside a unit, so that its
     effect cannot be estimated by within or first-difference regressions. The numeric
     fields are None for other columns; the shares are None for a column with no spread.
+    ``n_not_finite`` counts NaN and infinite values, which are left out of every figure
+    like missing ones. ``too_large`` is True when the column's sums of squares overflow a
+    double even after scaling (std, shares and ``within_estimable`` are then None).
     """
 
     name: str
     dtype: str
     numeric: bool
     n_missing: int
+    n_not_finite: int = 0
     mean: float | None = None
     std: float | None = None
     min: float | None = None
@@ -92,6 +101,7 @@ class ColumnCheck:
     between_share: float | None = None
     units_varying: int | None = None
     within_estimable: bool | None = None
+    too_large: bool = False
 
 
 @dataclass(frozen=True)
@@ -173,9 +183,9 @@ class PanelReport:
 
         schema = {
             "name": pl.String, "dtype": pl.String, "numeric": pl.Boolean, "n_missing": pl.Int64,
-            "mean": pl.Float64, "std": pl.Float64, "min": pl.Float64, "max": pl.Float64,
+            "n_not_finite": pl.Int64, "mean": pl.Float64, "std": pl.Float64, "min": pl.Float64, "max": pl.Float64,
             "within_share": pl.Float64, "between_share": pl.Float64, "units_varying": pl.Int64,
-            "within_estimable": pl.Boolean,
+            "within_estimable": pl.Boolean, "too_large": pl.Boolean,
         }  # fmt: skip
         data = {name: [getattr(c, name) for c in self.columns] for name in schema}
         return pl.DataFrame(data, schema=schema)
@@ -310,18 +320,31 @@ def _no_rows_message(source: Source, unit: str, period: str, n_rows: np.ndarray)
 # ---------------------------------------------------------------- scan 1: periods
 
 
-def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> dict[int, float]:
-    """Column index -> shift, for the numeric columns (0.0 where the first rows have no value)."""
+def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> dict[int, tuple[float, float]]:
+    """Column index -> (shift, scale) for the numeric columns: the mean of the first rows'
+    finite values (0.0 when there are none) and a power of two near 1 / their magnitude."""
     indices = [j for j, c in enumerate(checked) if c in numeric]
     if not indices:
         return {}
     sql = sqlbuild.checkup_shift_probe_sql(session.source.filtered(), checked, indices)
     row = session.run(sql, {"probe_rows": PROBE_ROWS}).to_pylist()[0]
-    return {j: row[f"c_{j}"] if row[f"c_{j}"] is not None and math.isfinite(row[f"c_{j}"]) else 0.0 for j in indices}
+    out = {}
+    for j in indices:
+        shift = row[f"c_{j}"] if row[f"c_{j}"] is not None and math.isfinite(row[f"c_{j}"]) else 0.0
+        out[j] = (shift, power_of_two_scale(row[f"m_{j}"]))
+    return out
+
+
+def power_of_two_scale(magnitude: float | None) -> float:
+    """2**-e with 2**(e-1) <= ``magnitude`` < 2**e: multiplying by it brings values of that
+    magnitude into [0.5, 1) without changing a digit. 1.0 for no, zero or non-finite input."""
+    if magnitude is None or not math.isfinite(magnitude) or magnitude == 0:
+        return 1.0
+    return math.ldexp(1.0, -math.frexp(magnitude)[1])
 
 
 def _scan_periods(session: Session, chunks: list[str], unit: str, period_value: str, checked: list[str],
-                  shifts: dict[int, float]) -> dict:
+                  shifts: dict[int, tuple[float, float]]) -> dict:
     """Scan 1 over each chunk; the chunks' period rows are kept side by side (every figure
     taken from them is a sum, or a two-pass formula valid over any partition of the rows)."""
     if len(chunks) > 1:
@@ -423,15 +446,18 @@ def _from_numpy(stamp: np.datetime64, kind: str) -> Any:
     return value.date() if kind == "date" else value
 
 
-def _shift_params(shifts: dict[int, float]) -> dict[str, float]:
-    return {f"c_{j}": float(c) for j, c in shifts.items()}
+def _shift_params(shifts: dict[int, tuple[float, float]]) -> dict[str, float]:
+    params = {}
+    for j, (shift, scale) in shifts.items():
+        params[f"c_{j}"], params[f"d_{j}"] = float(shift), float(scale)
+    return params
 
 
 # ---------------------------------------------------------------- scan 2: units
 
 
 def _scan_units(session: Session, chunks: list[str], unit: str, period_value: str, checked: list[str],
-                shifts: dict[int, float], grid: _Grid) -> dict:
+                shifts: dict[int, tuple[float, float]], grid: _Grid) -> dict:
     """Scan 2 over each chunk (every unit lies in one chunk), added up in chunk order."""
     bitmap = grid.n_slots <= BITMAP_MAX_SLOTS
     params = {"first": grid.first_ordinal, "step": grid.slot_step, "n_periods": grid.n_periods} | _shift_params(shifts)
@@ -453,7 +479,7 @@ def _scan_units(session: Session, chunks: list[str], unit: str, period_value: st
                     histogram[n_periods] = histogram.get(n_periods, 0) + n_units
             out[name] = histogram
         elif name.startswith("within_ss_"):
-            out[name] = math.fsum(values)
+            out[name] = math.fsum(values) if all(math.isfinite(v) for v in values) else math.inf
         else:
             out[name] = sum(values)
     return out
@@ -486,27 +512,42 @@ def _scan_duplicates(session: Session, chunks: list[str], unit: str, period_valu
 # ---------------------------------------------------------------- columns
 
 
-def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, shift: float | None) -> ColumnCheck:
-    """Column j's figures; ``shift`` (None for a non-numeric column) was subtracted in the scans."""
+def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict,
+                  shift: tuple[float, float] | None) -> ColumnCheck:
+    """Column j's figures; ``shift`` = (shift, scale), None for a non-numeric column, is what
+    the scans subtracted and multiplied by."""
     keyed = by_period["keyed"]
     n_rows = by_period["n_rows"][keyed]
     counts = _floats(by_period[f"n_{j}"])[keyed]
-    n_missing = int(n_rows.sum() - counts.sum())
+    n_not_finite = 0 if shift is None else int(_floats(by_period[f"nf_{j}"])[keyed].sum())
+    n_missing = int(n_rows.sum() - counts.sum()) - n_not_finite
     if shift is None:
         return ColumnCheck(name=name, dtype=dtype, numeric=False, n_missing=n_missing)
     n = float(counts.sum())
     if n == 0:
-        return ColumnCheck(name=name, dtype=dtype, numeric=True, n_missing=n_missing, units_varying=0, within_estimable=False)
+        return ColumnCheck(name=name, dtype=dtype, numeric=True, n_missing=n_missing, n_not_finite=n_not_finite,
+                           units_varying=0, within_estimable=False)
+    offset, scale = shift
     present = counts > 0
     counts = counts[present]
     means = _floats(by_period[f"mean_{j}"])[keyed][present]
     within_period = _floats(by_period[f"ss_{j}"])[keyed][present]
+    low = float(np.min(_floats(by_period[f"min_{j}"])[keyed][present]))
+    high = float(np.max(_floats(by_period[f"max_{j}"])[keyed][present]))
     # Two passes over the period means (exact, few values): total SS = sum of the periods'
-    # own sums of squares + sum of n_t (mean_t - mean)^2.
-    mean = math.fsum(counts * means) / n
-    total_ss = math.fsum(within_period) + math.fsum(counts * (means - mean) ** 2)
+    # own sums of squares + sum of n_t (mean_t - mean)^2, all in scaled units.
+    with np.errstate(over="ignore", invalid="ignore"):
+        weighted = counts * means
+        spread = counts * (means - math.fsum(weighted) / n) ** 2 if np.isfinite(weighted).all() else weighted
+    parts = (within_period, weighted, spread)
     within_ss = float(units[f"within_ss_{j}"] or 0.0)
     varying = int(units[f"varying_units_{j}"])
+    if not all(np.isfinite(p).all() for p in parts) or not math.isfinite(within_ss):
+        # values far larger than the first rows' (which set the scale): the squares overflow
+        return ColumnCheck(name=name, dtype=dtype, numeric=True, n_missing=n_missing, n_not_finite=n_not_finite,
+                           min=low, max=high, units_varying=varying, too_large=True)
+    mean = math.fsum(weighted) / n
+    total_ss = math.fsum(within_period) + math.fsum(spread)
     if total_ss > 0:
         # The two sums come from different scans; clip the rounding that can push a share
         # a few ulps past 0 or 1.
@@ -516,11 +557,10 @@ def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, s
         within_share = between_share = None
     estimable = varying > 0 and within_share is not None and within_share >= WITHIN_SHARE_FLOOR
     return ColumnCheck(
-        name=name, dtype=dtype, numeric=True, n_missing=n_missing,
-        mean=shift + mean,
-        std=math.sqrt(total_ss / (n - 1)) if n > 1 else None,
-        min=float(np.min(_floats(by_period[f"min_{j}"])[keyed][present])),
-        max=float(np.max(_floats(by_period[f"max_{j}"])[keyed][present])),
+        name=name, dtype=dtype, numeric=True, n_missing=n_missing, n_not_finite=n_not_finite,
+        mean=offset + mean / scale,
+        std=math.sqrt(total_ss / (n - 1)) / scale if n > 1 else None,
+        min=low, max=high,
         within_share=within_share, between_share=between_share,
         units_varying=varying, within_estimable=estimable,
     )  # fmt: skip
@@ -610,21 +650,34 @@ def _render(r: PanelReport, color: bool) -> str:
     lines.append("")
     name_width = max([len("column")] + [len(c.name) for c in r.columns])
     type_width = max([len("type")] + [len(c.dtype) for c in r.columns])
-    header = (f"  {'column':<{name_width}}  {'type':<{type_width}}  {'missing':>9}  {'mean':>11}  {'std':>11}  "
+    header = (f"  {'column':<{name_width}}  {'type':<{type_width}}  {'missing':>9}  {'not finite':>10}  {'mean':>11}  {'std':>11}  "
               f"{'within':>7}  {'between':>7}  {'units varying':>13}")
     lines.append("Columns (within/between: shares of the variance inside units and across unit means)")
     lines.append(header)
     for c in r.columns:
         varying = "-" if c.units_varying is None else f"{c.units_varying:,}"
-        row = (f"  {c.name:<{name_width}}  {c.dtype:<{type_width}}  {c.n_missing:>9,}  {_number(c.mean):>11}  "
+        not_finite = f"{c.n_not_finite:,}" if c.numeric else "-"
+        row = (f"  {c.name:<{name_width}}  {c.dtype:<{type_width}}  {c.n_missing:>9,}  {not_finite:>10}  {_number(c.mean):>11}  "
                f"{_number(c.std):>11}  {_share(c.within_share):>7}  {_share(c.between_share):>7}  {varying:>13}")
         if c.within_estimable is False:
-            row = bad(row + ("  no values" if c.mean is None else "  no change within units"))
+            row = bad(row + (("  no values" if not c.n_not_finite else "  no finite values") if c.mean is None else "  no change within units"))
+        elif c.too_large:
+            row = bad(row + "  too large to square")
         lines.append(row)
     if r.not_estimable:
         names = ", ".join(r.not_estimable)
         lines.append("")
         lines.append(bad(f"Not estimable by within or first-difference regressions (constant within every unit): {names}."))
+    not_finite = [c for c in r.columns if c.n_not_finite]
+    if not_finite:
+        shown = ", ".join(f"{c.name} ({c.n_not_finite:,})" for c in not_finite)
+        lines.append("")
+        lines.append(bad(f"Not finite (NaN or infinite; left out like missing values, and so are their rows in a fit): {shown}."))
+    too_large = [c.name for c in r.columns if c.too_large]
+    if too_large:
+        lines.append("")
+        lines.append(bad(f"Too large: the sums of squares of {', '.join(too_large)} overflow a double; "
+                         "divide the column by a power of ten in a query or term."))
     if not r.columns:
         lines.append("  (no columns to check)")
     return "\n".join(lines)

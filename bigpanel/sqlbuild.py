@@ -470,13 +470,20 @@ def period_value(period: str, kind: str) -> str:
 
 
 def checkup_shift_probe_sql(source_sql: str, checked: Sequence[str], numeric: Sequence[int]) -> str:
-    """SQL of the shift probe: c_j for each index j (into ``checked``) in ``numeric``."""
-    means = [f"favg(CAST({quote_ident(checked[j])} AS DOUBLE)) AS c_{j}" for j in numeric]
+    """SQL of the shift probe: for each index j (into ``checked``) in ``numeric``, the mean c_j
+    and the largest magnitude m_j of the finite values."""
+    means = []
+    for j in numeric:
+        raw = f"CAST({quote_ident(checked[j])} AS DOUBLE)"
+        means += [f"favg({raw}) FILTER (WHERE isfinite({raw})) AS c_{j}",
+                  f"max(abs({raw})) FILTER (WHERE isfinite({raw})) AS m_{j}"]
     return render("checkup_shifts", source=source_sql, means=", ".join(means))
 
 
 def _shifted(name: str, j: int) -> str:
-    return f"(CAST({quote_ident(name)} AS DOUBLE) - $c_{j})"
+    """Column j shifted by $c_j and scaled by $d_j (a power of two); NULL unless finite."""
+    raw = f"CAST({quote_ident(name)} AS DOUBLE)"
+    return f"(CASE WHEN isfinite({raw}) THEN ({raw} - $c_{j}) * $d_{j} END)"
 
 
 def rows_without_unit_sql(source_sql: str, unit: str) -> str:
@@ -486,15 +493,20 @@ def rows_without_unit_sql(source_sql: str, unit: str) -> str:
 
 def checkup_period_scan_sql(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
                             numeric: Sequence[int]) -> str:
-    """SQL of the period scan. Column j's aggregates are n_j and, for j in ``numeric``
-    (indices into ``checked``), the shifted mean_j and ss_j, and the unshifted min_j, max_j."""
+    """SQL of the period scan. Column j's aggregates are n_j (values present; for j in
+    ``numeric``, indices into ``checked``, finite values) and, for numeric columns, nf_j (NaN
+    and infinite values), the shifted and scaled mean_j and ss_j, and the raw min_j, max_j."""
     parts = []
     for j, name in enumerate(checked):
         q = quote_ident(name)
-        parts.append(f"count({q}) AS n_{j}")
-        if j in numeric:
-            v, raw = _shifted(name, j), f"CAST({q} AS DOUBLE)"
-            parts += [f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}", f"min({raw}) AS min_{j}", f"max({raw}) AS max_{j}"]
+        if j not in numeric:
+            parts.append(f"count({q}) AS n_{j}")
+            continue
+        v, raw = _shifted(name, j), f"CAST({q} AS DOUBLE)"
+        finite = f"FILTER (WHERE isfinite({raw}))"
+        parts += [f"count({v}) AS n_{j}", f"count({q}) FILTER (WHERE NOT isfinite({raw})) AS nf_{j}",
+                  f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}",
+                  f"min({raw}) {finite} AS min_{j}", f"max({raw}) {finite} AS max_{j}"]
     return render(
         "checkup_periods",
         source=source_sql,
