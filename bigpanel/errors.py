@@ -66,10 +66,12 @@ a message; longer text is cut in the middle, so both its start and its end stay 
 def echo(text: object, limit: int = ECHO_LIMIT) -> str:
     """The user's text as a message may repeat it: on one line, at most ``limit`` characters.
 
-    Newlines and tabs become spaces (a message is one line); text longer than ``limit``
-    keeps its first and last characters around `` ... (N characters) ... ``.
+    Newlines, tabs and other control characters become spaces (a message is one line of
+    plain text); text longer than ``limit`` keeps its first and last characters around
+    `` ... (N characters) ... ``.
     """
-    flat = " ".join(str(text).split()) if any(ch in str(text) for ch in "\n\r\t") else str(text)
+    raw = str(text)
+    flat = raw if raw.isprintable() else " ".join("".join(ch if ch.isprintable() else " " for ch in raw).split())
     if len(flat) <= limit:
         return flat
     marker = f" ... ({len(flat):,} characters) ... "

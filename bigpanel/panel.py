@@ -47,7 +47,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from . import moments, sqlbuild
+from . import moments, solve, sqlbuild
 from .errors import InputError
 from .source import Session, Source, is_integer, is_numeric
 
@@ -331,16 +331,8 @@ def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> d
     out = {}
     for j in indices:
         shift = row[f"c_{j}"] if row[f"c_{j}"] is not None and math.isfinite(row[f"c_{j}"]) else 0.0
-        out[j] = (shift, power_of_two_scale(row[f"m_{j}"]))
+        out[j] = (shift, solve.power_of_two_scale(row[f"m_{j}"]))
     return out
-
-
-def power_of_two_scale(magnitude: float | None) -> float:
-    """2**-e with 2**(e-1) <= ``magnitude`` < 2**e: multiplying by it brings values of that
-    magnitude into [0.5, 1) without changing a digit. 1.0 for no, zero or non-finite input."""
-    if magnitude is None or not math.isfinite(magnitude) or magnitude == 0:
-        return 1.0
-    return math.ldexp(1.0, -math.frexp(magnitude)[1])
 
 
 def _scan_periods(session: Session, chunks: list[str], unit: str, period_value: str, checked: list[str],

@@ -21,7 +21,7 @@ import duckdb
 import pyarrow.parquet as pq
 
 from . import sqlbuild
-from .errors import InputError, unknown_column
+from .errors import InputError, echo, unknown_column
 
 INTEGER_TYPES = (
     "TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
@@ -146,14 +146,45 @@ def _parquet_files(path: str) -> tuple[list[str], bool]:
         return files, any("=" in part for part in Path(files[0]).parts)
     p = Path(path)
     if p.is_dir():
-        files = sorted(str(f) for f in p.rglob("*.parquet") if f.is_file())
+        files = sorted(_walk_parquet(p, path))
         if not files:
-            raise InputError(f"Folder '{path}' holds no Parquet files (searched its subfolders for *.parquet). Point at the folder that holds the data.")
+            raise InputError(f"Folder '{echo(path)}' holds no Parquet files (searched its subfolders for *.parquet). Point at the folder that holds the data.")
         hive = any("=" in part for f in files[:1] for part in Path(f).relative_to(p).parts[:-1])
         return files, hive
     if not p.exists():
-        raise InputError(f"Source '{path}' does not exist. Check the path.")
+        raise InputError(f"Source '{echo(path)}' does not exist. Check the path.")
+    _require_readable(path)
     return [str(p)], False
+
+
+def _walk_parquet(folder: Path, shown: str) -> list[str]:
+    """Every *.parquet file under ``folder``; a subfolder that cannot be listed is an error
+    (skipping it would silently drop its rows)."""
+
+    def refuse(exc: OSError) -> None:
+        where = exc.filename or shown
+        raise InputError(f"Folder '{echo(where)}' cannot be read ({exc.strerror or exc}). "
+                         "Check its permissions, or point at a folder you can read.") from None
+
+    files = []
+    for root, _dirs, names in os.walk(folder, onerror=refuse):
+        for name in names:
+            if name.endswith(".parquet"):
+                full = os.path.join(root, name)
+                if os.path.isfile(full):
+                    _require_readable(full)
+                    files.append(full)
+    return files
+
+
+def _require_readable(path: str) -> None:
+    """Refuse a file that exists but cannot be opened (permissions), naming it."""
+    try:
+        with open(path, "rb"):
+            pass
+    except OSError as exc:
+        raise InputError(f"File '{echo(path)}' cannot be read ({exc.strerror or exc}). "
+                         "Check its permissions.") from None
 
 
 def open_source(
@@ -190,6 +221,7 @@ def open_source(
     """
     engine = engine or Engine()
     common = dict(where=where, engine=engine)
+    _check_source_options(source, table, query, csv_types)
     if source is None:
         if not query:
             raise InputError("No source given. Pass a file, folder, glob, DuckDB file or a query.")
@@ -218,6 +250,24 @@ def open_source(
     if query and src.kind == "query":
         _check_query_text(query)
     return src
+
+
+def _check_source_options(source: Any, table: str | None, query: str | None, csv_types: dict | None) -> None:
+    """Refuse options that the kind of source would silently ignore."""
+    path = str(source).lower() if isinstance(source, (str, os.PathLike)) else None
+    database = path is not None and path.endswith((".duckdb", ".db", ".ddb"))
+    csv = path is not None and path.endswith((".csv", ".tsv", ".csv.gz", ".tsv.gz", ".txt"))
+    shown = echo(source) if path is not None else "an in-memory frame"
+    if table and not database:
+        raise InputError(f"Option --table applies to DuckDB files, but the source is '{shown}'. "
+                         "Leave --table out, or give a .duckdb file.")
+    if table and query:
+        raise InputError("Options --table and --query are both given. Give one of them.")
+    if query and source is not None and not database:
+        raise InputError(f"Option --query applies to a DuckDB file or stands alone, but the source is '{shown}'. "
+                         "Leave the source out and read the files in the query, or drop --query.")
+    if csv_types and not csv:
+        raise InputError(f"Option --csv-types applies to CSV sources, but the source is '{shown}'. Leave it out.")
 
 
 def _check_query_text(query: str) -> None:
@@ -294,11 +344,21 @@ class Session:
     def _explain(self, exc: duckdb.Error) -> Exception:
         from .errors import BigpanelError
 
-        message = _first_line(exc)
-        if isinstance(exc, (duckdb.IOException, duckdb.InvalidInputException)) and self.source.kind == "parquet":
-            bad = _find_corrupt_parquet(self.source.files)
+        message = echo(_first_line(exc))
+        settled = (duckdb.ParserException, duckdb.BinderException, duckdb.CatalogException, duckdb.OutOfMemoryException,
+                   duckdb.InterruptException)
+        if self.source.kind == "parquet" and not isinstance(exc, settled):
+            bad = _find_corrupt_parquet(self.source.files) or _find_unreadable_pages(self.source.files)
             if bad:
-                return InputError(f"File '{bad[0]}' is not a readable Parquet file ({bad[1]}). Re-export it or move it out of the source.")
+                return InputError(f"File '{echo(bad[0])}' is not a readable Parquet file ({echo(bad[1])}). "
+                                  "Re-export it or move it out of the source.")
+        if self.source.kind == "csv" and self.source.csv_types and re.search(r"\bTYPE|DuckDB Type|COLUMN_TYPES", str(exc), re.IGNORECASE):
+            shown = echo(", ".join(f"{k}={v}" for k, v in self.source.csv_types))
+            return InputError(f"Option --csv-types ({shown}) was refused by DuckDB for {self.source.label} ({message}). "
+                              "Name columns the CSV file has, with DuckDB type names such as BIGINT, DOUBLE, DATE or VARCHAR.")
+        if isinstance(exc, duckdb.CatalogException) and self.source.kind == "duckdb" and self.source.table is not None:
+            return InputError(f"Table '{echo(self.source.table)}' not found in DuckDB file '{echo(self.source.database)}' "
+                              f"({message}). Check the table name, or pass --query.")
         if isinstance(exc, duckdb.IOException):
             return InputError(f"Source {self.source.label} could not be read ({message}). Check the path and file format.")
         if isinstance(exc, duckdb.ConversionException):
@@ -318,6 +378,8 @@ class Session:
             except duckdb.Error as exc:
                 raise self._explain(exc) from None
             self._columns = {r[0]: r[1] for r in rows}
+            if self.source.kind == "csv" and len(self._columns) == 1:
+                _check_csv_shape(self.source.files, next(iter(self._columns)))
         return self._columns
 
     def require_columns(self, names: Sequence[str], numeric: Sequence[str] = ()) -> None:
@@ -389,6 +451,45 @@ def _find_corrupt_parquet(files: Sequence[str]) -> tuple[str, str] | None:
     for f in files:
         try:
             pq.read_metadata(f)
+        except Exception as exc:  # noqa: BLE001 - any failure means the file is unreadable
+            return f, _first_line(exc)
+    return None
+
+
+def _check_csv_shape(files: Sequence[str], only_column: str) -> None:
+    """Explain a CSV source read as one column: an empty file, or a line whose number of
+    fields differs from the header's (DuckDB's detection then gives up on the delimiter)."""
+    import csv
+    import gzip
+
+    for f in files:
+        if os.path.getsize(f) == 0:
+            raise InputError(f"CSV file '{echo(f)}' is empty. Give a file with a header line and rows.")
+    delimiter = next((d for d in (",", ";", "\t", "|") if d in only_column), None)
+    if delimiter is None:
+        return
+    for f in files:
+        opener = gzip.open if f.endswith(".gz") else open
+        with opener(f, "rt", newline="", encoding="utf-8", errors="replace") as handle:
+            rows = csv.reader(handle, delimiter=delimiter)
+            header = next(rows, [])
+            for row in rows:
+                if row and len(row) != len(header):
+                    raise InputError(
+                        f"CSV file '{echo(f)}' line {rows.line_num} has {len(row)} fields where the header has "
+                        f"{len(header)}. Fix or remove that line (a stray delimiter or an unquoted one inside a value)."
+                    )
+
+
+def _find_unreadable_pages(files: Sequence[str]) -> tuple[str, str] | None:
+    """The first file whose data pages cannot be decoded (its footer may be intact): every
+    column of every row group is read, one row group at a time. Only run after a scan
+    failed, to name the culprit."""
+    for f in files:
+        try:
+            reader = pq.ParquetFile(f)
+            for group in range(reader.metadata.num_row_groups):
+                reader.read_row_group(group)
         except Exception as exc:  # noqa: BLE001 - any failure means the file is unreadable
             return f, _first_line(exc)
     return None

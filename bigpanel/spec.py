@@ -144,7 +144,8 @@ class FitSpec:
         if estimator == "within" and not eff:
             eff = (unit,)
         if estimator == "within" and unit not in eff:
-            raise InputError(f"Option 'effects' must include the unit column '{echo(unit)}' for the within estimator (got {echo(', '.join(eff))}).")
+            raise InputError(f"Option 'effects' must include the unit column '{echo(unit)}' for the within estimator (got {echo(', '.join(eff))}); "
+                             f"write --effects {echo(unit)} or --effects {echo(unit)},{echo(period)}.")
         if estimator == "pooled" and unit in eff:
             raise InputError(f"Option 'effects' names the unit '{unit}' for the pooled estimator; that is the within estimator. Use --estimator within.")
         for e in eff:
@@ -162,7 +163,7 @@ class FitSpec:
         if se != "cluster" and clus:
             raise InputError(f"Option 'cluster' is given but 'se' is '{se}'. Use --se cluster, or drop --cluster.")
         if len(clus) > 2:
-            raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported.")
+            raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported, so give one or two.")
         if len(set(clus)) != len(clus):
             raise InputError(f"Option 'cluster' names '{echo(clus[0])}' twice. Give two different columns for two-way clustering, or one.")
         if intercept is None:

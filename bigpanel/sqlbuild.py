@@ -189,7 +189,7 @@ def design_rows_sql(
                 f"first_value({value}) OVER (PARTITION BY {quote_ident(unit)} ORDER BY {quote_ident(period)} "
                 f"RANGE BETWEEN {span} PRECEDING AND {span} PRECEDING)"
             )
-        items.append(f"{value} - $s{j} AS {_z(j)}")
+        items.append(f"({value} - $s{j}) * $d{j} AS {_z(j)}")
     return render("design_rows", source=source, columns=", ".join(items))
 
 
@@ -203,10 +203,10 @@ def differenced_rows_sql(rows: str, n_clusters: int, q: int, streaming: bool = F
 
 
 def valid_predicate(q: int, differenced: bool, step: int) -> str:
-    """All design columns finite (and, for differences, the previous row the unit's previous
-    period). z * 0 is 0 for a finite z and NaN for an infinite or NaN one (NULL stays NULL),
-    so one comparison tests every column: cheaper than one isfinite() per column."""
-    terms = ["(" + " + ".join(f"{_z(j)} * 0" for j in range(q)) + ") = 0"]
+    """A unit, all design columns finite (and, for differences, the previous row the unit's
+    previous period). z * 0 is 0 for a finite z and NaN for an infinite or NaN one (NULL
+    stays NULL), so one comparison tests every column: cheaper than one isfinite() per column."""
+    terms = ["k_unit IS NOT NULL", "(" + " + ".join(f"{_z(j)} * 0" for j in range(q)) + ") = 0"]
     if differenced:
         terms.insert(0, f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)}")
     return " AND ".join(terms)
@@ -294,12 +294,13 @@ def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum
 def row_counts_sql(rows: str, q: int, differenced: bool, step: int) -> str:
     finite = " AND ".join(f"isfinite({_z(j)})" for j in range(q))
     usable = f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)} AND " if differenced else ""
-    counts = ["count(*) AS n_rows", f"count(*) FILTER (WHERE {usable}NOT coalesce({finite}, false)) AS missing"]
-    if differenced:
+    counts = ["count(*) AS n_rows",
+              f"count(*) FILTER (WHERE k_unit IS NULL OR ({usable}NOT coalesce({finite}, false))) AS missing"]
+    if differenced:  # rows without a unit are counted as missing above, and only there
         counts += [
-            "count(*) FILTER (WHERE k_prev IS NULL) AS first_of_unit",
-            f"count(*) FILTER (WHERE k_prev < k_period - {int(step)}) AS after_gap",
-            "count(*) FILTER (WHERE k_prev = k_period) AS duplicate_keys",
+            "count(*) FILTER (WHERE k_unit IS NOT NULL AND k_prev IS NULL) AS first_of_unit",
+            f"count(*) FILTER (WHERE k_unit IS NOT NULL AND k_prev < k_period - {int(step)}) AS after_gap",
+            "count(*) FILTER (WHERE k_unit IS NOT NULL AND k_prev = k_period) AS duplicate_keys",
         ]
     return render("row_counts", rows=f"({rows})", counts=", ".join(counts))
 
@@ -447,9 +448,11 @@ def demeaned_rows_sql(used: str, q: int, n_clusters: int) -> str:
 
 
 def probe_sql(rows: str, q: int) -> str:
-    """Means of the design columns over ``rows`` (built on the source's first rows):
-    the shift subtracted before accumulating."""
-    means = ", ".join(f"avg({_z(j)}) FILTER (WHERE isfinite({_z(j)})) AS a{j}" for j in range(q))
+    """Means and largest magnitudes of the finite values of the design columns over ``rows``
+    (built on the source's first rows): the shift subtracted and the scale multiplied by
+    before accumulating."""
+    means = ", ".join(f"avg({_z(j)}) FILTER (WHERE isfinite({_z(j)})) AS a{j}, "
+                      f"max(abs({_z(j)})) FILTER (WHERE isfinite({_z(j)})) AS m{j}" for j in range(q))
     return f"SELECT {means} FROM ({rows}) AS head"
 
 
