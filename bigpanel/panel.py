@@ -48,7 +48,7 @@ import numpy as np
 import pyarrow as pa
 
 from . import moments, solve, sqlbuild
-from .errors import InputError
+from .errors import ECHO_LIMIT, InputError, echo
 from .source import Session, Source, is_integer, is_numeric
 
 MAX_PERIODS = 1_000_000
@@ -160,11 +160,11 @@ class PanelReport:
         """One sentence naming the first duplicate keys, or None when every key is unique."""
         if not self.n_duplicate_keys:
             return None
-        shown = ", ".join(f"({_show(u)}, {_show(p)})" for u, p, _ in self.duplicate_examples)
+        shown = echo(", ".join(f"({_show(u)}, {_show(p)})" for u, p, _ in self.duplicate_examples), 2 * ECHO_LIMIT)
         more = ", ..." if self.n_duplicate_keys > len(self.duplicate_examples) else ""
         plural = "s" if self.n_duplicate_keys != 1 else ""
         return (
-            f"Source {self.source} has {self.n_duplicate_keys:,} duplicate ({self.unit}, {self.period}) "
+            f"Source {self.source} has {self.n_duplicate_keys:,} duplicate ({echo(self.unit)}, {echo(self.period)}) "
             f"key{plural}, first {shown}{more}; keep one row per unit and period (filter or aggregate "
             "the source with a query) before estimating."
         )
@@ -281,19 +281,19 @@ def _check_arguments(session: Session, unit: str, period: str, columns: Sequence
     """Validate the key and column names; return the period kind (integer/date/timestamp)."""
     label = session.source.label
     if unit == period:
-        raise InputError(f"Unit and period are the same column '{unit}'. Give two different columns.")
+        raise InputError(f"Unit and period are the same column '{echo(unit)}'. Give two different columns.")
     if columns is not None:
         if isinstance(columns, str):
-            raise InputError(f"Option 'columns' must be a list of column names, got the text '{columns}'.")
+            raise InputError(f"Option 'columns' must be a list of column names, got the text '{echo(columns)}'.")
         for name in (unit, period):
             if name in columns:
-                raise InputError(f"Column '{name}' is a key of the panel, not a column to check. Leave it out of 'columns'.")
+                raise InputError(f"Column '{echo(name)}' is a key of the panel, not a column to check. Leave it out of 'columns'.")
     session.require_columns([unit, period, *(columns or [])], numeric=list(columns or []))
     duck_type = session.columns()[period]
     kind = _period_kind(duck_type)
     if kind is None:
         raise InputError(
-            f"Column '{period}' in {label} has type {duck_type}, which cannot be a period. "
+            f"Column '{echo(period)}' in {label} has type {duck_type}, which cannot be a period. "
             "Use an integer, DATE or TIMESTAMP column, or convert it in a query (for example CAST(... AS DATE))."
         )
     return kind
@@ -312,9 +312,9 @@ def _period_kind(duck_type: str) -> str | None:
 
 def _no_rows_message(source: Source, unit: str, period: str, n_rows: np.ndarray) -> str:
     if int(np.sum(n_rows)) == 0:
-        where = f" after the filter '{source.where}'" if source.where else ""
+        where = f" after the filter '{echo(source.where)}'" if source.where else ""
         return f"Source {source.label} has no rows{where}. Loosen the filter or check the source."
-    return f"No row of {source.label} has both a unit ('{unit}') and a period ('{period}'). Check the key columns."
+    return f"No row of {source.label} has both a unit ('{echo(unit)}') and a period ('{echo(period)}'). Check the key columns."
 
 
 # ---------------------------------------------------------------- scan 1: periods

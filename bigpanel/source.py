@@ -142,7 +142,7 @@ def _parquet_files(path: str) -> tuple[list[str], bool]:
     if any(ch in path for ch in "*?["):
         files = sorted(f for f in globmod.glob(path, recursive=True) if os.path.isfile(f))
         if not files:
-            raise InputError(f"No files match '{path}'. Check the pattern (brace lists like {{a,b}} are not supported).")
+            raise InputError(f"No files match '{echo(path)}'. Check the pattern (brace lists like {{a,b}} are not supported).")
         return files, any("=" in part for part in Path(files[0]).parts)
     p = Path(path)
     if p.is_dir():
@@ -233,20 +233,20 @@ def open_source(
         lower = path.lower()
         if lower.endswith((".duckdb", ".db", ".ddb")):
             if not os.path.exists(path):
-                raise InputError(f"DuckDB file '{path}' does not exist. Check the path.")
+                raise InputError(f"DuckDB file '{echo(path)}' does not exist. Check the path.")
             if not table and not query:
-                raise InputError(f"DuckDB file '{path}' needs a table name or a query. Pass --table NAME or --query SQL.")
-            src = Source(kind="query" if query else "duckdb", label=f"{Path(path).name}" + (f" table {table}" if table else ""),
+                raise InputError(f"DuckDB file '{echo(path)}' needs a table name or a query. Pass --table NAME or --query SQL.")
+            src = Source(kind="query" if query else "duckdb", label=echo(f"{Path(path).name}" + (f" table {table}" if table else "")),
                          database=path, table=table, query=query, **common)
         elif lower.endswith((".csv", ".tsv", ".csv.gz", ".tsv.gz", ".txt")):
             files = sorted(globmod.glob(path, recursive=True)) if any(c in path for c in "*?[") else [path]
             if not files or not all(os.path.exists(f) for f in files):
-                raise InputError(f"Source '{path}' does not exist. Check the path.")
-            src = Source(kind="csv", label=Path(path).name, files=tuple(files),
+                raise InputError(f"Source '{echo(path)}' does not exist. Check the path.")
+            src = Source(kind="csv", label=echo(Path(path).name), files=tuple(files),
                          csv_types=tuple((csv_types or {}).items()), csv_options=tuple((csv_options or {}).items()), **common)
         else:
             files, hive = _parquet_files(path)
-            src = Source(kind="parquet", label=Path(path).name or path, files=tuple(files), hive=hive, **common)
+            src = Source(kind="parquet", label=echo(Path(path).name or path), files=tuple(files), hive=hive, **common)
     if query and src.kind == "query":
         _check_query_text(query)
     return src

@@ -324,3 +324,16 @@ def readme_row(case: Case) -> str:
     """README's table row for a case: ``python -c "import test_bad_input as t;
     print(t.readme_row(t.CASES[-1]))"`` from tests/ prints the row for a new case."""
     return f"| `{case.line}` | {case.message} | {case.exit} |"
+
+
+def test_echo_keeps_messages_short_and_on_one_line():
+    # common practice: a message repeats the start and end of long user text, not all of it
+    from bigpanel.errors import ECHO_LIMIT, echo
+
+    text = "staff_hours + " + "1 + " * 400 + "promo"
+    shown = echo(text)
+    assert len(shown) <= ECHO_LIMIT
+    assert shown.startswith("staff_hours + 1") and shown.endswith("+ promo")
+    assert f"({len(text):,} characters)" in shown
+    assert echo("a\nb\t\x0fc") == "a b c"
+    assert echo("depot") == "depot"
