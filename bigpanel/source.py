@@ -143,18 +143,55 @@ def _parquet_files(path: str) -> tuple[list[str], bool]:
         files = sorted(f for f in globmod.glob(path, recursive=True) if os.path.isfile(f))
         if not files:
             raise InputError(f"No files match '{echo(path)}'. Check the pattern (brace lists like {{a,b}} are not supported).")
+        _check_same_kinds(files)
         return files, any("=" in part for part in Path(files[0]).parts)
     p = Path(path)
     if p.is_dir():
         files = sorted(_walk_parquet(p, path))
         if not files:
             raise InputError(f"Folder '{echo(path)}' holds no Parquet files (searched its subfolders for *.parquet). Point at the folder that holds the data.")
+        _check_same_kinds(files)
         hive = any("=" in part for f in files[:1] for part in Path(f).relative_to(p).parts[:-1])
         return files, hive
     if not p.exists():
         raise InputError(f"Source '{echo(path)}' does not exist. Check the path.")
     _require_readable(path)
     return [str(p)], False
+
+
+def _value_kind(arrow_type) -> str:
+    """number, text, time or other: types within a kind unify without losing meaning."""
+    import pyarrow.types as pt
+
+    if pt.is_integer(arrow_type) or pt.is_floating(arrow_type) or pt.is_decimal(arrow_type) or pt.is_boolean(arrow_type):
+        return "number"
+    if pt.is_string(arrow_type) or pt.is_large_string(arrow_type) or pt.is_dictionary(arrow_type):
+        return "text"
+    if pt.is_temporal(arrow_type):
+        return "time"
+    return str(arrow_type)
+
+
+def _check_same_kinds(files: Sequence[str]) -> None:
+    """Refuse files that give one column values of different kinds (numbers in one file,
+    text in another): read together they would all turn into text. Footers only. A column
+    that some files lack is allowed (its rows count as missing there)."""
+    if len(files) < 2:
+        return
+    first: dict[str, tuple[str, str, Any]] = {}
+    for f in files:
+        try:
+            schema = pq.read_schema(f)
+        except Exception:  # noqa: BLE001 - an unreadable file is named when the scan fails
+            continue
+        for field_ in schema:
+            kind = _value_kind(field_.type)
+            seen = first.setdefault(field_.name, (kind, f, field_.type))
+            if seen[0] != kind:
+                raise InputError(
+                    f"Column '{echo(field_.name)}' is {seen[2]} in '{echo(seen[1])}' but {field_.type} in '{echo(f)}'. "
+                    "Give it one type in every file (re-export the odd ones), or read the files with a --query that casts it."
+                )
 
 
 def _walk_parquet(folder: Path, shown: str) -> list[str]:

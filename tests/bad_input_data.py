@@ -63,6 +63,12 @@ def make_files(root: Path) -> Path:
     mixed.mkdir()
     pq.write_table(table.slice(0, 48), mixed / "a.parquet")
     pq.write_table(table.slice(48).drop_columns(["staff_hours"]).append_column("staff", table.slice(48).column("staff_hours")), mixed / "b.parquet")
+    kinds = root / "mixed_kinds"
+    kinds.mkdir()
+    pq.write_table(table.slice(0, 48), kinds / "a.parquet")
+    rest = table.slice(48)
+    as_text = pa.array([f"{v:.3f}" for v in rest.column("staff_hours").to_pylist()])
+    pq.write_table(rest.set_column(3, "staff_hours", as_text), kinds / "b.parquet")
     (root / "no_parquet").mkdir()
     (root / "no_parquet" / "readme.txt").write_text("no data here\n")
     locked = root / "locked"

@@ -152,6 +152,8 @@ CASES = [
          "SQL on depots.duckdb was refused (…). Check the filter, terms and query.", 2),
     Case("bigpanel checkup --query \"SELECT * FROM 'depots.parquet'; SELECT 1\" $KEYS",
          "Option 'query' holds more than one statement. Give a single SELECT query.", 2),
+    Case("bigpanel checkup mixed_kinds $KEYS",
+         "Column 'staff_hours' is double in 'mixed_kinds/a.parquet' but string in 'mixed_kinds/b.parquet'. Give it one type in every file (re-export the odd ones), or read the files with a --query that casts it.", 2),
     Case("bigpanel fit mixed $FIT",
          "Rows left out: 48 missing or not finite", 0),
     # ---- columns and keys
