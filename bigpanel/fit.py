@@ -564,8 +564,12 @@ class _Fit:
     def _empty_message(self) -> str:
         src = self.s.source
         where = f" after the filter '{echo(src.where)}'" if src.where else ""
+        pairs, check = "", "the filter and the columns"
+        if self.spec.estimator == "first-difference" or any(t.lag for t in self.spec.terms):
+            pairs = f", or (differences and lags) lacks the unit's period {self.spec.period_step:,} before it"
+            check = "the filter, the columns and the period step"
         return (f"No usable rows in {src.label}{where}: every row was filtered out or lacks a value of the unit "
-                f"'{echo(self.spec.unit)}' or of a term. Check the filter and the columns.")
+                f"'{echo(self.spec.unit)}' or of a term{pairs}. Check {check}.")
 
     def _rows_after_filter(self) -> int:
         """Rows left by the filter (footers only for unfiltered Parquet; counted once)."""

@@ -393,6 +393,9 @@ class Session:
             shown = echo(", ".join(f"{k}={v}" for k, v in self.source.csv_types))
             return InputError(f"Option --csv-types ({shown}) was refused by DuckDB for {self.source.label} ({message}). "
                               "Name columns the CSV file has, with DuckDB type names such as BIGINT, DOUBLE, DATE or VARCHAR.")
+        if isinstance(exc, duckdb.InvalidInputException) and self.source.kind == "csv" and "sniffing" in str(exc):
+            return InputError(f"CSV file {self.source.label} could not be read as CSV ({message}). "
+                              "Check that it is a CSV text file with a header line.")
         if isinstance(exc, duckdb.CatalogException) and self.source.kind == "duckdb" and self.source.table is not None:
             return InputError(f"Table '{echo(self.source.table)}' not found in DuckDB file '{echo(self.source.database)}' "
                               f"({message}). Check the table name, or pass --query.")
@@ -415,8 +418,8 @@ class Session:
             except duckdb.Error as exc:
                 raise self._explain(exc) from None
             self._columns = {r[0]: r[1] for r in rows}
-            if self.source.kind == "csv" and len(self._columns) == 1:
-                _check_csv_shape(self.source.files, next(iter(self._columns)))
+            if self.source.kind == "csv" and all(t == "VARCHAR" for t in self._columns.values()):
+                _check_csv_shape(self.source.files, self._columns)
         return self._columns
 
     def require_columns(self, names: Sequence[str], numeric: Sequence[str] = ()) -> None:
@@ -493,21 +496,28 @@ def _find_corrupt_parquet(files: Sequence[str]) -> tuple[str, str] | None:
     return None
 
 
-def _check_csv_shape(files: Sequence[str], only_column: str) -> None:
-    """Explain a CSV source read as one column: an empty file, or a line whose number of
-    fields differs from the header's (DuckDB's detection then gives up on the delimiter)."""
+def _check_csv_shape(files: Sequence[str], columns: dict[str, str]) -> None:
+    """Explain a CSV source read as text columns only: an empty file, a header without
+    rows, or a line whose number of fields differs from the header's (DuckDB's detection
+    then gives up on the delimiter and reads one column)."""
     import csv
     import gzip
+
+    def opened(f: str):
+        opener = gzip.open if f.endswith(".gz") else open
+        return opener(f, "rt", newline="", encoding="utf-8", errors="replace")
 
     for f in files:
         if os.path.getsize(f) == 0:
             raise InputError(f"CSV file '{echo(f)}' is empty. Give a file with a header line and rows.")
+    if all(_csv_has_no_rows(opened(f)) for f in files):
+        raise InputError(f"CSV file '{echo(files[0])}' has a header line but no rows. Give a file with rows.")
+    only_column = next(iter(columns)) if len(columns) == 1 else ""
     delimiter = next((d for d in (",", ";", "\t", "|") if d in only_column), None)
     if delimiter is None:
         return
     for f in files:
-        opener = gzip.open if f.endswith(".gz") else open
-        with opener(f, "rt", newline="", encoding="utf-8", errors="replace") as handle:
+        with opened(f) as handle:
             rows = csv.reader(handle, delimiter=delimiter)
             header = next(rows, [])
             for row in rows:
@@ -516,6 +526,17 @@ def _check_csv_shape(files: Sequence[str], only_column: str) -> None:
                         f"CSV file '{echo(f)}' line {rows.line_num} has {len(row)} fields where the header has "
                         f"{len(header)}. Fix or remove that line (a stray delimiter or an unquoted one inside a value)."
                     )
+
+
+def _csv_has_no_rows(handle) -> bool:
+    """Does the open text file hold at most one non-blank line (a header)?"""
+    with handle:
+        lines = 0
+        for line in handle:
+            lines += bool(line.strip())
+            if lines > 1:
+                return False
+    return True
 
 
 def _find_unreadable_pages(files: Sequence[str]) -> tuple[str, str] | None:

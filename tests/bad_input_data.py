@@ -51,6 +51,8 @@ def make_files(root: Path) -> Path:
     lines[5] = lines[5] + ",17,extra"
     (root / "extra_fields.csv").write_text("\n".join(lines) + "\n")
     (root / "empty.csv").write_text("")
+    (root / "header_only.csv").write_text(lines[0] + "\n")
+    pq.write_table(table, root / "parquet_named.csv")
     pq.write_table(table.slice(0, 0), root / "no_rows.parquet")
     (root / "not_parquet.parquet").write_bytes(b"PAR1 this is not really a Parquet file")
     _corrupt_pages(root / "corrupt_pages.parquet", table)
@@ -75,6 +77,8 @@ def make_files(root: Path) -> Path:
     locked.mkdir()
     pq.write_table(table, locked / "depots.parquet")
     os.chmod(locked, 0)
+    pq.write_table(table, root / "locked_file.parquet")
+    os.chmod(root / "locked_file.parquet", 0)
     # traps in the values
     n = table.num_rows
     nonfinite = table.column("staff_hours").to_numpy().copy()
