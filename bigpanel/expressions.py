@@ -16,6 +16,7 @@ Two forms of our own are recognised on the tree, as whole terms only:
 from __future__ import annotations
 
 import copy
+import functools
 from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
@@ -169,6 +170,21 @@ def _single(text: str, what: str) -> dict:
 # ---------------------------------------------------------------- public
 
 
+def _not_too_deep(check):
+    """Refuse, in one sentence, an expression nested beyond what the tree walk can hold."""
+
+    @functools.wraps(check)
+    def guarded(text, *args, **kwargs):
+        try:
+            return check(text, *args, **kwargs)
+        except RecursionError:
+            raise InputError(f"Expression {shown(text)} is nested too deeply to check. "
+                             "Simplify it, or compute it in a query (--query).") from None
+
+    return guarded
+
+
+@_not_too_deep
 def expression_sql(text: str, what: str) -> str:
     """Check one scalar expression and return its SQL, rendered from the checked tree."""
     text = str(text).strip()
@@ -181,6 +197,7 @@ def _arguments(node: dict) -> list[dict]:
     return [a["expression"] if "expression" in a else a for a in node.get("arguments", node.get("children", []))]
 
 
+@_not_too_deep
 def parse_term(text: str) -> Term:
     """Check one regressor term and return it with SQL rendered from its tree."""
     text = str(text).strip()
@@ -188,6 +205,7 @@ def parse_term(text: str) -> Term:
     if not text:
         raise InputError("A term is empty. Give a column name or a SQL expression.")
     node = _single(text, what)
+    text = " ".join(text.split())  # the label, on one line
     name = str(node.get("function_name", "")).lower() if node.get("class") == "FUNCTION" else ""
     if name not in _OWN_FORMS:
         return Term(text=text, kind="expr", expr=_checked_node(node, text, what))
@@ -249,6 +267,7 @@ def parse_terms(value: str | Iterable[str] | None, option: str = "regressors") -
     return tuple(parse_term(p) for p in pieces)
 
 
+@_not_too_deep
 def query_sql(text: str) -> str:
     """Check a source query (exactly one SELECT statement) and render it from its tree."""
     text = str(text).strip()
