@@ -178,3 +178,30 @@ def test_sums_that_overflow_are_refused_by_name(panel, monkeypatch):
     df.loc[df.index[-1], "x2"] = -1e305
     with pytest.raises(InputError, match=r"'x2'"):
         _fit(df, "pooled")
+
+
+DESIGNS = [
+    dict(estimator="within", effects="unit,period"),
+    dict(estimator="within", effects="unit,period", se="hc1"),
+    dict(estimator="within", cluster="unit,period"),
+    dict(estimator="within", cluster="region"),
+    dict(estimator="first-difference", effects="period"),
+    dict(estimator="first-difference", intercept=False),
+    dict(estimator="pooled", effects="period"),
+    dict(estimator="pooled", intercept=False),
+]
+
+
+@pytest.mark.parametrize("design", DESIGNS, ids=lambda d: ",".join(f"{k}={v}" for k, v in d.items()))
+def test_scaled_columns_in_every_design(design):
+    # Source: the unscaled fit of the same design (period effects absorbed two ways,
+    # two-way and nested clusters, no intercept): estimates scale, t-statistics do not.
+    df = unbalanced_panel(12, 40, 9)
+    table = lambda d: pa.Table.from_pandas(d, preserve_index=False)  # noqa: E731
+    base = bigpanel.fit(table(df), "y", ["x1", "x2"], "unit", "period", **design)
+    for column, factor in [("x1", 1e-300), ("x2", 1e200), ("y", 1e150)]:
+        got = bigpanel.fit(table(_scaled(df, column, factor)), "y", ["x1", "x2"], "unit", "period", **design)
+        for b in base.coefficients:
+            ratio = factor if column == "y" else (1 / factor if b.term == column else 1.0)
+            assert got.coef(b.term).estimate == pytest.approx(b.estimate * ratio, rel=SCALED_RTOL), (column, b.term)
+            assert got.coef(b.term).t_stat == pytest.approx(b.t_stat, rel=SCALED_RTOL), (column, b.term)
