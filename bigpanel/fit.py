@@ -17,7 +17,6 @@ The plan for one fit:
 
 from __future__ import annotations
 
-import math
 import re
 import warnings
 from dataclasses import dataclass, field
@@ -769,8 +768,7 @@ class _Fit:
 
 
 def _too_large(names: list[str], why: str) -> InputError:
-    shown = ", ".join(f"'{echo(n)}'" for n in names)
-    return InputError(f"Values of {shown} are out of a double's reach for this fit ({why}). "
+    return InputError(f"Values of {', '.join(shown(n) for n in names)} are out of a double's reach for this fit ({why}). "
                       "Rescale the term or the outcome by a power of ten in the term or a query, and scale the estimate back.")
 
 
