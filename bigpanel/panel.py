@@ -46,6 +46,7 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.parquet as pq
 
 from . import moments, solve, sqlbuild
 from .errors import ECHO_LIMIT, InputError, echo
@@ -115,7 +116,9 @@ class PanelReport:
     ``n_grid_periods`` is the length of the regular grid from the first to the last period
     (``n_empty_periods`` of them have no rows at all); ``n_missing_unit_periods`` counts
     grid periods absent inside units' own spans. ``duplicate_examples`` holds
-    (unit, period, rows) for the first offending keys, in key order.
+    (unit, period, rows) for the first offending keys, in key order. ``absent_in_files``
+    holds (column, files without it, the first of them) for checked columns that some
+    files of a Parquet source lack (their rows count as missing).
     """
 
     source: str
@@ -145,6 +148,7 @@ class PanelReport:
     n_duplicate_rows: int
     duplicate_examples: tuple[tuple[Any, Any, int], ...]
     columns: tuple[ColumnCheck, ...]
+    absent_in_files: tuple[tuple[str, int, str], ...] = ()
 
     @property
     def balanced_share(self) -> float:
@@ -274,6 +278,7 @@ def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str]
         n_duplicate_rows=int(units["duplicate_rows"]),
         duplicate_examples=tuple(duplicates),
         columns=column_checks,
+        absent_in_files=_absent_in_files(source, checked),
     )
 
 
@@ -562,6 +567,20 @@ def _floats(column) -> np.ndarray:
     return np.asarray(column.to_numpy(zero_copy_only=False), dtype=np.float64)
 
 
+def _absent_in_files(source: Source, checked: Sequence[str]) -> tuple[tuple[str, int, str], ...]:
+    """(column, files without it, the first such file) for checked columns that some of a
+    Parquet source's files lack (footers only; the files were read with union by name)."""
+    if source.kind != "parquet" or len(source.files) < 2:
+        return ()
+    missing: dict[str, list[str]] = {}
+    for f in source.files:
+        names = set(pq.read_schema(f).names)
+        for name in checked:
+            if name not in names:
+                missing.setdefault(name, []).append(f)
+    return tuple((name, len(files), files[0]) for name, files in missing.items())
+
+
 # ---------------------------------------------------------------- rendering
 
 
@@ -670,6 +689,10 @@ def _render(r: PanelReport, color: bool) -> str:
         lines.append("")
         lines.append(bad(f"Too large: the sums of squares of {', '.join(too_large)} overflow a double; "
                          "divide the column by a power of ten in a query or term."))
+    if r.absent_in_files:
+        shown = ", ".join(f"{name} (absent from {_count(n, 'file')}, first {echo(first)})" for name, n, first in r.absent_in_files)
+        lines.append("")
+        lines.append(bad(f"Not in every file (their rows count as missing): {shown}."))
     if not r.columns:
         lines.append("  (no columns to check)")
     return "\n".join(lines)

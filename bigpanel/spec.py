@@ -83,12 +83,12 @@ class FitSpec:
             raise InputError(f"Option 'effects' must include the unit column '{echo(unit)}' for the within estimator (got {echo(', '.join(eff))}); "
                              f"write --effects {echo(unit)} or --effects {echo(unit)},{echo(period)}.")
         if estimator == "pooled" and unit in eff:
-            raise InputError(f"Option 'effects' names the unit '{unit}' for the pooled estimator; that is the within estimator. Use --estimator within.")
+            raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for the pooled estimator; that is the within estimator. Use --estimator within.")
         for e in eff:
             if e not in (unit, period):
                 raise InputError(f"Option 'effects' names '{echo(e)}': effects on columns other than the unit '{echo(unit)}' and the period '{echo(period)}' are not supported yet.")
         if estimator == "first-difference" and unit in eff:
-            raise InputError(f"Option 'effects' names the unit '{unit}' for first differences, which already remove it. Use --effects {period} for period intercepts.")
+            raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for first differences, which already remove it. Use --effects {echo(period)} for period intercepts.")
         if se is None:
             se = "iid" if estimator == "pooled" and not cluster else "cluster"
         if se not in VARIANCES:
@@ -97,7 +97,7 @@ class FitSpec:
         if se == "cluster" and not clus:
             clus = (unit,)
         if se != "cluster" and clus:
-            raise InputError(f"Option 'cluster' is given but 'se' is '{se}'. Use --se cluster, or drop --cluster.")
+            raise InputError(f"Option 'cluster' is given but 'se' is '{echo(se)}'. Use --se cluster, or drop --cluster.")
         if len(clus) > 2:
             raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported, so give one or two.")
         if len(set(clus)) != len(clus):
