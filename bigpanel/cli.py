@@ -17,7 +17,7 @@ from typing import Annotated, Optional
 
 import typer
 
-from .errors import BigpanelError, BigpanelWarning, InputError
+from .errors import BigpanelError, BigpanelWarning, InputError, echo
 from .params import PARAMETERS
 from .source import Engine, Source, open_source
 
@@ -75,7 +75,7 @@ def _parse_csv_types(text: str | None) -> dict[str, str] | None:
     for item in _TYPE_SEPARATOR.split(text):
         name, sep, duck_type = item.partition("=")
         if not sep or not name.strip() or not duck_type.strip():
-            raise InputError(f"Option --csv-types has an item '{item.strip()}' that is not col=TYPE. "
+            raise InputError(f"Option --csv-types has an item '{echo(item.strip())}' that is not col=TYPE. "
                              "Write pairs like \"month=DATE,depot=VARCHAR\".")
         out[name.strip()] = duck_type.strip()
     return out
@@ -181,11 +181,10 @@ def fit_command(
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
                      se=se.value if se else None, cluster=cluster, intercept=False if no_intercept else None,
                      period_step=period_step)
-    if as_json:  # the text report shows every note itself: print each once
-        for w in caught:
-            if issubclass(w.category, BigpanelWarning):
-                typer.echo(f"note: {w.message}", err=True)
-    typer.echo(result.to_json() if as_json else result.table())
+    for w in caught:  # each note once, on stderr (the table below leaves them out)
+        if issubclass(w.category, BigpanelWarning):
+            typer.echo(f"note: {w.message}", err=True)
+    typer.echo(result.to_json() if as_json else result.table(notes=False))
 
 
 # ---------------------------------------------------------------- entry point

@@ -12,7 +12,7 @@ import re
 from dataclasses import dataclass
 
 from . import sqlbuild
-from .errors import InputError, unknown_column
+from .errors import InputError, echo, shown, unknown_column
 from .spec import FitSpec
 
 MAX_LEVELS = 500
@@ -83,29 +83,26 @@ def integer_period(engine, spec: FitSpec) -> bool:
     return engine.is_integer(engine.columns()[spec.period].upper())
 
 
-def numeric_expression(engine, text: str, what: str, notes: list[str]) -> str:
-    """The SQL for a numeric term or outcome: a column named exactly ``text`` (quoted),
-    else a checked scalar expression."""
+def numeric_expression(engine, text: str, sql: str, what: str, notes: list[str]) -> str:
+    """The SQL for a numeric term or outcome: a column named exactly ``text`` (or whose
+    checked SQL ``sql`` is that column), quoted; else ``sql``, rendered from the checked
+    parse tree of what the user wrote (``text``)."""
     cols = engine.columns()
-    bare = text.strip()
-    if bare not in cols and bare.startswith('"') and bare.endswith('"') and bare[1:-1].replace('""', '"') in cols:
-        bare = bare[1:-1].replace('""', '"')
-    if bare in cols:
-        if not engine.is_numeric(cols[bare]):
-            raise InputError(
-                f"Column '{bare}' in {engine.label} has type {cols[bare]}, not a number. "
-                f"Use levels({bare}) for a categorical column, or convert it in an expression."
-            )
-        return sqlbuild.quote_ident(bare)
-    engine.check_expression(text, what)
-    if _BASE_TEN_LOG.search(text):
-        msg = f"{what} '{text}' uses log(), which in SQL is the base-10 logarithm; ln() is the natural one"
+    name = next((c for c in (text.strip(), sql.strip(), sql.strip().strip('"').replace('""', '"')) if c in cols), None)
+    if name is not None:
+        if not engine.is_numeric(cols[name]):
+            advice = (f"Use levels({name}) for a categorical column, or convert it in an expression." if what == "Term"
+                      else "Give a numeric outcome, or convert it in an expression.")
+            raise InputError(f"Column '{echo(name)}' in {engine.label} has type {cols[name]}, not a number. {advice}")
+        return sqlbuild.quote_ident(name)
+    if _BASE_TEN_LOG.search(sql):
+        msg = f"{what} {shown(text)} uses log(), which in SQL is the base-10 logarithm; ln() is the natural one"
         if msg not in notes:
             notes.append(msg)
-    kind = engine.describe_expression(text)
+    kind = engine.describe_expression(sql, what, text)
     if not engine.is_numeric(kind):
-        raise InputError(f"{what} '{text}' has type {kind}, not a number. Give a numeric expression.")
-    return text
+        raise InputError(f"{what} {shown(text)} has type {kind}, not a number. Give a numeric expression.")
+    return sql
 
 
 def distinct_levels(executor, quoted: str) -> list[str]:
@@ -131,14 +128,15 @@ def build_design(executor, spec: FitSpec) -> Design:
             levels = distinct_levels(executor, quoted)
             base = term.base if term.base is not None else (levels[0] if levels else None)
             if base not in levels:
-                raise InputError(f"Term '{term.text}': base level '{base}' does not occur in column '{term.expr}'. Levels: {', '.join(levels[:10])}.")
+                raise InputError(f"Term '{echo(term.text)}': base level '{echo(base)}' does not occur in column '{echo(term.expr)}'; "
+                                 f"name one of its levels ({echo(', '.join(map(str, levels[:10])))}) as the base.")
             columns += [Column(sqlbuild.indicator_sql(quoted, level), "indicator", f"{term.expr}[{level}]")
                         for level in levels if level != base]
         else:
-            sql = numeric_expression(engine, term.expr, "Term", notes)
-            label = term.text if sql == term.expr or term.kind == "lag" else term.text.strip().strip('"')
-            columns.append(Column(sql, "lag" if term.lag else "regressor", label, term.lag))
-    outcome = numeric_expression(engine, spec.outcome, "Outcome", notes)
+            text = term.text if term.kind == "expr" else term.expr
+            sql = numeric_expression(engine, text, term.expr, "Term", notes)
+            columns.append(Column(sql, "lag" if term.lag else "regressor", term.text, term.lag))
+    outcome = numeric_expression(engine, spec.outcome, spec.outcome_sql, "Outcome", notes)
     columns.append(Column(outcome, "outcome", spec.outcome))
     return Design(tuple(columns), tuple(notes))
 

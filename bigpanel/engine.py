@@ -17,7 +17,8 @@ import duckdb
 import pyarrow.parquet as pq
 
 from . import moments, sqlbuild
-from .source import Session, is_integer, is_numeric
+from .expressions import expression_sql
+from .source import Session, check_select, is_integer, is_numeric
 
 
 STREAM_BATCH_ROWS = 131_072  # upper bound per streamed batch (batches also break at row groups)
@@ -43,10 +44,11 @@ class EngineAdapter(Protocol):
     def check_filter(self) -> None:
         """Refuse a filter that is not one checked predicate over the columns."""
 
-    def check_expression(self, expression: str, what: str) -> None:
-        """Refuse anything but one scalar expression (parsed, never pasted unchecked)."""
+    def check_expression(self, text: str, what: str) -> str:
+        """Refuse anything but one scalar expression; return the SQL rendered from its
+        checked parse tree (DuckDB's parser; rendered in this engine's dialect)."""
 
-    def describe_expression(self, expression: str) -> str:
+    def describe_expression(self, expression: str, what: str, text: str) -> str:
         """The type of a checked expression over the source, reading no rows."""
 
     def filtered(self, chunk: moments.Chunk | None = None, unit: str | None = None, head: int | None = None) -> str:
@@ -95,14 +97,14 @@ class DuckDBEngine:
     def check_filter(self) -> None:
         self.session.check_filter()
 
-    def check_expression(self, expression: str, what: str) -> None:
-        self.session.check_expression(expression, what)
+    def check_expression(self, text: str, what: str) -> str:
+        return expression_sql(text, what)
 
-    def describe_expression(self, expression: str) -> str:
-        return self.session.describe_expression(expression)
+    def describe_expression(self, expression: str, what: str, text: str) -> str:
+        return self.session.describe_expression(expression, what, text)
 
     def filtered(self, chunk: moments.Chunk | None = None, unit: str | None = None, head: int | None = None) -> str:
-        rows = self.source.filtered(chunk.files, chunk.unit_range(unit)) if chunk else self.source.filtered()
+        rows = chunk.source_sql(self.source, unit) if chunk else self.source.filtered()
         return sqlbuild.head_sql(rows, head) if head else rows
 
     def run(self, sql: str, params: dict | None = None):
@@ -119,9 +121,11 @@ class DuckDBEngine:
         threads = self.source.engine.threads or os.cpu_count() or 1
 
         def one(chunk):
+            sql = make_sql(chunk)
+            check_select(sql)
             cur = session.cursor(threads=1)
             try:
-                reader = cur.sql(make_sql(chunk), params=params).to_arrow_reader(STREAM_BATCH_ROWS)
+                reader = cur.sql(sql, params=params | chunk.params()).to_arrow_reader(STREAM_BATCH_ROWS)
                 return fold(iter(reader))
             except duckdb.Error as exc:
                 raise session._explain(exc) from None

@@ -14,8 +14,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import moments, sqlbuild
-from .errors import EstimationError, InputError
+from .errors import EstimationError, InputError, echo
 from .requests import CrossProducts, Nesting, Rows, Scores
+from .solve import power_of_two_scale
 
 # The unit fold of unit-sorted chunks summed in numpy (fold.py) instead of SQL, per case
 # (layout, differenced rows): kept where it measured faster in one benchmark run (README:
@@ -75,10 +76,15 @@ class Executor:
         self.scans += 1
         return [t.to_pylist() for t in self.engine.run_chunks(chunks, make_sql, params)]
 
-    def empty_message(self) -> str:
-        where = f" after the filter '{self.engine.where}'" if self.engine.where else ""
-        return (f"No usable rows in {self.label}{where}: every row was filtered out or has a missing value in a term. "
-                "Check the filter and the columns.")
+    def empty_message(self, ordered: bool = False) -> str:
+        """No usable rows; ``ordered``: the model takes differences or lags."""
+        where = f" after the filter '{echo(self.engine.where)}'" if self.engine.where else ""
+        pairs, check = "", "the filter and the columns"
+        if ordered:
+            pairs = f", or (differences and lags) lacks the unit's period {self.keys.step:,} before it"
+            check = "the filter, the columns and the period step"
+        return (f"No usable rows in {self.label}{where}: every row was filtered out or lacks a value of the unit "
+                f"'{echo(self.keys.unit)}' or of a term{pairs}. Check {check}.")
 
     # ------------------------------------------------------------------ rows
     def rows_sql(self, rows: Rows, chunk=None, head: bool = False, streaming: bool = False) -> str:
@@ -96,15 +102,18 @@ class Executor:
         return sqlbuild.demeaned_rows_sql(used, rows.q, len(rows.clusters)) if rows.demeaned else used
 
     # ------------------------------------------------------------------ probes
-    def shifts(self, columns: Sequence[tuple[str, int]]) -> np.ndarray:
-        """Means of the design columns (levels) over the first rows: subtracted before summing."""
+    def shifts(self, columns: Sequence[tuple[str, int]]) -> tuple[np.ndarray, np.ndarray]:
+        """Shift (mean) and scale (a power of two, see solve.py) per design column (levels),
+        from the first rows: sums are taken of (x - shift) * scale."""
         q = len(columns)
         k = self.keys
         head = self.engine.filtered(head=PROBE_ROWS)
         rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step)
-        row = self.run_once(sqlbuild.probe_sql(rows, q), {f"s{j}": 0.0 for j in range(q)}, scan=False)[0]
+        zero = {f"s{j}": 0.0 for j in range(q)} | {f"d{j}": 1.0 for j in range(q)}
+        row = self.run_once(sqlbuild.probe_sql(rows, q), zero, scan=False)[0]
+        scales = np.array([power_of_two_scale(row[f"m{j}"]) for j in range(q)])
         shifts = np.array([row[f"a{j}"] if row[f"a{j}"] is not None else 0.0 for j in range(q)], dtype=float)
-        return np.where(np.isfinite(shifts), shifts, 0.0)
+        return np.where(np.isfinite(shifts), shifts, 0.0), scales
 
     def period_bounds(self) -> tuple[object, object]:
         """First and last period in the filtered source (reads the period column only)."""
@@ -227,7 +236,7 @@ class Executor:
             except NotConsecutive:
                 return None
 
-        stream = {k: v for k, v in params.items() if not k.startswith("q")}
+        stream = {k: v for k, v in params.items() if k[0] in "sd"}  # the pilot's $q_j are not in the stream
         self.scans += 1
         rows = self.engine.fold_chunks(chunks, lambda c: sqlbuild.stream_rows_sql(used(c), q), stream, fold)
         if any(r is None for r in rows):  # a unit's rows were not consecutive: sum in SQL

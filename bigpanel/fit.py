@@ -167,15 +167,16 @@ def _model_spec(model: dict, i: int, unit: str, period: str, period_step: int) -
 def _run_shared(executor: Executor, scan, notes: list, results: list) -> list[int]:
     """Estimate a shared scan's models: one scan for the cross-products, one for the
     score meats. Returns the models that must run alone (digits lost in one pass)."""
-    shifts = np.where(scan.shifted, executor.shifts(scan.columns), 0.0) if any(scan.shifted) else np.zeros(len(scan.columns))
-    params = {f"s{j}": float(v) for j, v in enumerate(shifts)}
+    shifts, scales = executor.shifts(scan.columns)
+    shifts = np.where(scan.shifted, shifts, 0.0)
+    params = scaled_params(shifts, scales)
     totals = executor.shared_moments(scan, params)
     prefill(executor, scan, totals)
     ready, alone = [], []
     for m in scan.members:
         eq = m.est.shared_equations(totals, m.sample, m.columns)
         if eq.n_obs == 0:
-            raise EstimationError(executor.empty_message())
+            raise EstimationError(executor.empty_message(m.est.spec.needs_order))
         if m.est.demeaned_retry and eq.cancellation() > CANCELLATION_LIMIT:
             alone.append(m.index)
             continue
@@ -183,18 +184,23 @@ def _run_shared(executor: Executor, scan, notes: list, results: list) -> list[in
     executor.collecting = []
     for m, eq in ready:  # learn each model's score request (solving is cheap)
         before = len(executor.collecting)
-        own, own_params = member_params(m, shifts)
+        own, own_params = member_params(m, shifts, scales)
         finish(m.est, executor, m.design, m.rows, own, own_params, eq, SHARED, Notes([]))
         executor.collecting[before:] = [(m.index, *r) for r in executor.collecting[before:]]
     requests, executor.collecting = executor.collecting, None
     executor.shared_meats(scan, requests, params)
     for m, eq in ready:
-        own, own_params = member_params(m, shifts)
+        own, own_params = member_params(m, shifts, scales)
         results[m.index] = finish(m.est, executor, m.design, m.rows, own, own_params, eq, SHARED, notes[m.index])
     return alone
 
 
 SHARED = "shared scan, shifted per-unit sums"
+
+
+def scaled_params(shifts: np.ndarray, scales: np.ndarray) -> dict:
+    """$s_j and $d_j: column j is summed as (x_j - s_j) * d_j."""
+    return {f"s{j}": float(v) for j, v in enumerate(shifts)} | {f"d{j}": float(v) for j, v in enumerate(scales)}
 
 
 def _source(source, where, table, query, csv_types, engine) -> Source:
@@ -229,12 +235,14 @@ def estimate(executor: Executor, spec: FitSpec, notes: Notes) -> FitResult:
     executor.notes = []
     est, design = prepare(executor, spec, notes)
     rows = est.rows(design)
-    shifts = executor.shifts(design.sql_columns) if est.shifted() else np.zeros(design.q)
-    params = {f"s{j}": float(shifts[j]) for j in range(design.q)}
+    shifts, scales = executor.shifts(design.sql_columns)
+    if not est.shifted():
+        shifts = np.zeros(design.q)
+    params = scaled_params(shifts, scales)
     request = est.first_pass(design, pilot(est, executor, design, params))
     eq = executor.moments(request, params, lambda chunks: est.equations(design, request, chunks, executor))
     if eq.n_obs == 0:
-        raise EstimationError(executor.empty_message())
+        raise EstimationError(executor.empty_message(spec.needs_order))
     accumulation = "one pass, shifted per-unit sums" + (" folded in numpy" if executor.fold_path == "numpy" else "")
     if est.demeaned_retry and eq.cancellation() > CANCELLATION_LIMIT:
         request = replace(request, rows=replace(request.rows, demeaned=True))

@@ -8,18 +8,19 @@ and its meat is requested from the executor when the first pass did not already 
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
 import scipy.special  # t and F tails; scipy.stats alone takes ~0.8 s to import
 
 from . import moments, variance
-from .errors import DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning
+from .errors import (
+    DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError, echo, shown,
+)  # fmt: skip
 from .estimators.base import Equations, Estimator
 from .requests import Nesting, Rows, Scores
 from .results import Coefficient, FitResult, VarianceSummary
-from .solve import solve_normal
+from .solve import overflowing_columns, solve_normal, unscale
 
 MAX_EXPANDED = 8  # largest model whose unit-cluster meat is summed in the first pass (k^4/4 sums)
 EXPANSION_LIMIT = 1e6  # largest-term/result ratio above which the expanded meat is recomputed
@@ -119,6 +120,11 @@ def _embed(var: variance.Variance, dim: int) -> variance.Variance:
     return variance.Variance(full, var.kind, var.df, var.small_sample_factor, var.n_clusters, var.clipped_eigenvalues)
 
 
+def _too_large(names: list[str], why: str) -> InputError:
+    return InputError(f"Values of {', '.join(shown(n) for n in names)} are out of a double's reach for this fit ({why}). "
+                      "Rescale the term or the outcome by a power of ten in the term or a query, and scale the estimate back.")
+
+
 def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, params: dict, eq: Equations,
            accumulation: str, notes: Notes) -> FitResult:
     """Solve the equations, estimate the variance and build the result."""
@@ -128,6 +134,9 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     extra = eq.extra_labels or (["(intercept)"] if est.constant else [])
     labels = list(design.labels) + extra
     is_effect = list(design.is_effect) + (eq.extra_effect or [False] * len(extra))
+    overflow = overflowing_columns(eq.total)
+    if overflow:
+        raise _too_large([(labels + [spec.outcome])[j] for j in overflow], "its sums of squares overflow")
     h, g, yy = eq.total[:k, :k], eq.total[:k, k], eq.total[k, k]
     terms_dropped: dict[str, str] = {}
     zero_var = np.zeros(k, dtype=bool)
@@ -145,7 +154,8 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     if terms_dropped:
         notes.add(DroppedTermsWarning, "Terms left out: " + ", ".join(f"{t} ({w})" for t, w in terms_dropped.items()))
     if not sol.kept.any():
-        raise EstimationError("No term can be estimated: " + "; ".join(f"{t}: {w}" for t, w in terms_dropped.items()) + ".")
+        raise EstimationError("No term can be estimated: " + echo("; ".join(f"{t}: {w}" for t, w in terms_dropped.items()))
+                              + ". Give terms that change within units and are not combinations of each other.")
     coef = sol.coef
     rss = max(float(yy - g @ coef), 0.0)
     tss = yy - eq.total[k - 1, k] ** 2 / eq.total[k - 1, k - 1] if est.constant else yy
@@ -154,22 +164,28 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     n_kept = int(sol.kept.sum())
     absorbed = est.absorbed(eq)
     var = choose_variance(est, executor, rows, params, eq, sol, rss, n_kept, absorbed, notes)
-    vcov = var.vcov
-    estimate = coef.copy()
+    # columns were scaled by powers of two in SQL (solve.py); back to the user's units, with
+    # the intercept moved back from the shifted columns:
+    # y - c_y = b0' + sum b_j (x_j - c_j), so the intercept is b0' + c_y - c'b
+    q = design.q
+    col_scale = np.ones(k)
+    col_scale[: q - 1] = [params[f"d{j}"] for j in range(q - 1)]
+    y_scale = params[f"d{q - 1}"]
     if est.constant and not is_effect[k - 1]:
-        # shifted columns: y - c_y = b0' + sum b_j (x_j - c_j); the intercept is b0' + c_y - c'b
         c_all = est.intercept_shifts(shifts)
-        c, c_y = c_all[: k - 1], c_all[-1]
-        t = np.eye(k)
-        t[k - 1, : k - 1] = -c
-        estimate[k - 1] = coef[k - 1] + c_y - c @ coef[: k - 1]
-        vcov = t @ vcov @ t.T
+        c = np.r_[c_all[: k - 1], 0.0]
+        estimate, std_error, overflow = unscale(coef, var.vcov, col_scale, y_scale, k - 1, c, c_all[-1])
+    else:
+        estimate, std_error, overflow = unscale(coef, var.vcov, col_scale, y_scale)
+    overflow = [j for j in overflow if sol.kept[j] and not is_effect[j]]
+    if overflow:
+        raise _too_large([labels[j] for j in overflow], "its estimate or standard error is beyond a double's range")
     crit = float(scipy.special.stdtrit(var.df, 0.975)) if var.df > 0 else float("nan")
     coefs = []
     for j in range(k):
         if is_effect[j] or not sol.kept[j]:
             continue
-        se = math.sqrt(vcov[j, j]) if vcov[j, j] >= 0 else float("nan")
+        se = float(std_error[j])
         tval = estimate[j] / se if se > 0 else float("nan")
         p = 2 * float(scipy.special.stdtr(var.df, -abs(tval))) if var.df > 0 else float("nan")
         coefs.append(Coefficient(labels[j], float(estimate[j]), se, float(tval), float(p),
@@ -177,8 +193,9 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     slopes = [j for j in range(k) if sol.kept[j] and not is_effect[j] and labels[j] != "(intercept)"]
     f_stat, f_p = float("nan"), float("nan")
     if slopes:
-        vs = vcov[np.ix_(slopes, slopes)]
-        bs = estimate[slopes]
+        # the Wald statistic does not change when columns are rescaled: take the scaled ones
+        vs = var.vcov[np.ix_(slopes, slopes)]
+        bs = coef[slopes]
         try:
             f_stat = float(bs @ np.linalg.solve(vs, bs) / len(slopes))
             f_p = float(scipy.special.fdtrc(len(slopes), var.df, f_stat))

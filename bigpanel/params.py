@@ -12,7 +12,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from .errors import InputError
+from .errors import InputError, echo
+from .expressions import split_top_level
 
 ESTIMATORS = ("pooled", "within", "first-difference")
 VARIANCES = ("iid", "hc1", "cluster")
@@ -34,8 +35,10 @@ class Param:
     default: Any = None
     choices: tuple[str, ...] = ()
     minimum: int | None = None
+    maximum: int | None = None
     required: bool = False
     flag: str | None = None
+    empty: str = ""  # what to do when the value is empty
 
     @property
     def option(self) -> str:
@@ -43,9 +46,11 @@ class Param:
 
 
 PARAMETERS: dict[str, Param] = {p.name: p for p in (
-    Param("outcome", "expression", "Outcome column or SQL expression, e.g. \"ln(parcels)\".", required=True),
+    Param("outcome", "expression", "Outcome column or SQL expression, e.g. \"ln(parcels)\".", required=True,
+          empty="Name the outcome column or expression."),
     Param("regressors", "terms", "Terms separated by commas (not inside parentheses): columns, SQL expressions, "
-          "lag(EXPR[, K]), levels(COLUMN[, 'BASE']).", required=True),
+          "lag(EXPR[, K]), levels(COLUMN[, 'BASE']).", required=True,
+          empty="Give at least one term, separated by commas."),
     Param("unit", "column", "Column identifying the unit (depot, store, worker, ...).", required=True),
     Param("period", "column", "Column identifying the period (whole numbers for differences and lags).", required=True),
     Param("estimator", "choice", "pooled, within or first-difference.", default="within", choices=ESTIMATORS),
@@ -56,30 +61,11 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("cluster", "columns", "One or two cluster columns, comma-separated (default: the unit)."),
     Param("intercept", "flag", "Intercept of pooled and first-difference fits (kept by default; --no-intercept drops it).",
           flag="--no-intercept"),
-    Param("period_step", "count", "Distance between consecutive periods.", default=1, minimum=1),
+    Param("period_step", "count", "Distance between consecutive periods.", default=1, minimum=1, maximum=2**53,
+          empty="Give the distance between consecutive periods."),
 )}
 
 MODEL_KEYS = tuple(PARAMETERS)
-
-
-def split_top_level(text: str, sep: str = ",") -> list[str]:
-    """Split on ``sep`` outside parentheses, brackets and quotes; strip the pieces."""
-    parts, depth, quote, start = [], 0, None, 0
-    for i, ch in enumerate(text):
-        if quote:
-            if ch == quote:
-                quote = None
-        elif ch in "'\"":
-            quote = ch
-        elif ch in "([{":
-            depth += 1
-        elif ch in ")]}":
-            depth -= 1
-        elif ch == sep and depth == 0:
-            parts.append(text[start:i].strip())
-            start = i + 1
-    parts.append(text[start:].strip())
-    return [p for p in parts if p]
 
 
 def as_list(value: str | Sequence[str] | None) -> tuple[str, ...]:
@@ -95,32 +81,36 @@ def check(name: str, value: Any) -> Any:
     p = PARAMETERS[name]
     if value is None:
         if p.required:
-            raise InputError(f"Option '{name}' is missing. {p.help}")
+            raise InputError(f"Option '{name}' is missing. {p.empty or p.help}")
         return p.default if p.kind != "columns" else ()
     if p.kind in ("expression", "column"):
         if not isinstance(value, str) or not value.strip():
-            raise InputError(f"Option '{name}' is empty. {p.help}")
+            raise InputError(f"Option '{name}' is empty. {p.empty or p.help}")
         return value.strip() if p.kind == "expression" else value
     if p.kind in ("terms", "columns"):
         if not isinstance(value, (str, list, tuple)):
             raise InputError(f"Option '{name}' must be text or a list of text; got {type(value).__name__}.")
         items = as_list(value)
         if p.kind == "terms" and not items:
-            raise InputError(f"Option '{name}' is empty. Give at least one term, separated by commas.")
+            raise InputError(f"Option '{name}' is empty. {p.empty}")
         return items
     if p.kind == "choice":
         if value not in p.choices:
-            raise InputError(f"Option '{name}' must be one of {', '.join(p.choices)}; got '{value}'.")
+            raise InputError(f"Option '{name}' must be one of {', '.join(p.choices)}; got '{echo(value)}'.")
         return value
     if p.kind == "flag":
         if value not in (True, False):
-            raise InputError(f"Option '{name}' must be True or False; got {value!r}.")
+            raise InputError(f"Option '{name}' must be True or False; got {echo(repr(value), 40)}.")
         return bool(value)
     if p.kind == "count":
-        if isinstance(value, bool) or not isinstance(value, int) and not (isinstance(value, float) and value.is_integer()):
-            raise InputError(f"Option '{name}' must be a whole number of {p.minimum} or more, got {value}.")
-        if p.minimum is not None and int(value) < p.minimum:
-            raise InputError(f"Option '{name}' must be a whole number of {p.minimum} or more, got {value}.")
+        whole = (isinstance(value, int) or type(value).__module__ == "numpy" and float(value).is_integer()
+                 or isinstance(value, float) and value.is_integer())
+        if isinstance(value, bool) or not whole:
+            raise InputError(f"Option '{name}' must be a whole number, got {echo(repr(value), 40)}.")
+        if not p.minimum <= int(value) <= (p.maximum or int(value)):
+            top = f"2**53 ({p.maximum:,})" if p.maximum == 2**53 else f"{p.maximum:,}"
+            raise InputError(f"Option '{name}' must be a whole number from {p.minimum} to {top}, "
+                             f"got {echo(value, 40)}. {p.empty}")
         return int(value)
     raise AssertionError(p.kind)
 

@@ -97,10 +97,10 @@ class ScanPlan:
         return cls(list(groups.values()), alone)
 
 
-def member_params(member: Member, shifts: np.ndarray) -> tuple[np.ndarray, dict]:
-    """The model's own shifts and shift parameters (its columns' order)."""
-    own = shifts[list(member.columns)]
-    return own, {f"s{j}": float(v) for j, v in enumerate(own)}
+def member_params(member: Member, shifts: np.ndarray, scales: np.ndarray) -> tuple[np.ndarray, dict]:
+    """The model's own shifts, and its shift and scale parameters (its columns' order)."""
+    own, own_scales = shifts[list(member.columns)], scales[list(member.columns)]
+    return own, {f"s{j}": float(v) for j, v in enumerate(own)} | {f"d{j}": float(v) for j, v in enumerate(own_scales)}
 
 
 def prefill(executor, scan: SharedScan, totals: dict) -> None:

@@ -99,8 +99,9 @@ class FitResult:
                 return c
         raise KeyError(term)
 
-    def table(self) -> str:
-        """A plain-text report of our own design."""
+    def table(self, notes: bool = True) -> str:
+        """A plain-text report of our own design; ``notes=False`` leaves out the notes (the
+        command line prints each on stderr, once)."""
         v = self.variance
         title = {"pooled": "Pooled least squares", "within": "Within (fixed effects)",
                  "first-difference": "First differences"}[self.estimator]
@@ -130,7 +131,7 @@ class FitResult:
             lines.append("  rows left out: " + "; ".join(parts))
         for term, why in self.terms_dropped.items():
             lines.append(f"  term left out: {term} ({why})")
-        for w in self.warnings:
+        for w in self.warnings if notes else ():
             lines.append(f"  note: {w}")
         lines.append("  Read causally only under: " + "; ".join(CAUTION_SHORT) + ".")
         return "\n".join(lines)

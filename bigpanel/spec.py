@@ -1,68 +1,67 @@
 """The model specification: what to estimate, checked once, frozen.
 
-Terms are written as SQL scalar expressions over the source's columns, plus two forms
-of our own:
+Every parameter is checked by the one table in :mod:`bigpanel.params`. Terms are written
+as SQL scalar expressions over the source's columns (each parsed once by DuckDB and run
+as SQL rendered from the checked tree, :mod:`bigpanel.expressions`), plus two forms of our
+own:
 
 - ``lag(EXPR)`` or ``lag(EXPR, K)``: EXPR in the same unit K periods earlier; missing
   (and the row dropped) when that period is absent, so gaps are respected.
 - ``levels(COLUMN)`` or ``levels(COLUMN, 'BASE')``: one 0/1 indicator per level of a
   categorical column except the base level (default: the first level in sort order).
+
+A term or outcome that SQL cannot parse but that may be a column's own name (a keyword
+such as ``union``, or ``Sales 2024``) is kept as that name, quoted; the design checks
+that the source has such a column.
 """
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass
 
-from . import params
-from .errors import InputError
-from .params import split_top_level
+from . import params, sqlbuild
+from .errors import InputError, echo
+from .expressions import Term, expression_sql, parse_term, parse_terms, split_top_level
 
-_LAG = re.compile(r"^lag\s*\((.*)\)$", re.IGNORECASE | re.DOTALL)
-_LEVELS = re.compile(r"^levels\s*\((.*)\)$", re.IGNORECASE | re.DOTALL)
-
-
-@dataclass(frozen=True)
-class Term:
-    """One regressor as the user wrote it, and how to compute it.
-
-    ``kind`` is ``expr`` (a SQL expression), ``lag`` (``expr`` K periods earlier) or
-    ``levels`` (indicators for the categorical column ``expr`` against ``base``).
-    """
-
-    text: str
-    kind: str
-    expr: str
-    lag: int = 0
-    base: str | None = None
+_NOT_A_NAME = ("(", ")", "'", '"', "--", "/*", ";", ",")
 
 
-def parse_term(text: str) -> Term:
-    text = text.strip()
-    m = _LAG.match(text)
-    if m:
-        args = split_top_level(m.group(1))
-        if len(args) not in (1, 2):
-            raise InputError(f"Term '{text}' is not understood: write lag(EXPR) or lag(EXPR, K).")
-        k = 1
-        if len(args) == 2:
-            if not args[1].isdigit() or int(args[1]) < 1:
-                raise InputError(f"Term '{text}' has lag order '{args[1]}'. Give a whole number of periods, 1 or more.")
-            k = int(args[1])
-        return Term(text=text, kind="lag", expr=args[0], lag=k)
-    m = _LEVELS.match(text)
-    if m:
-        args = split_top_level(m.group(1))
-        if len(args) not in (1, 2):
-            raise InputError(f"Term '{text}' is not understood: write levels(COLUMN) or levels(COLUMN, 'BASE').")
-        base = None
-        if len(args) == 2:
-            raw = args[1]
-            if not (len(raw) >= 2 and raw[0] == raw[-1] == "'"):
-                raise InputError(f"Term '{text}': the base level must be a quoted value, like levels(kind, 'hub').")
-            base = raw[1:-1].replace("''", "'")
-        return Term(text=text, kind="levels", expr=args[0].strip('"'), base=base)
-    return Term(text=text, kind="expr", expr=text)
+def _maybe_name(text: str) -> bool:
+    """Could ``text`` be a column's name that SQL does not parse (a keyword, spaces)?"""
+    return bool(text.strip()) and not any(mark in text for mark in _NOT_A_NAME)
+
+
+def _terms(regressors) -> tuple[Term, ...]:
+    """Checked terms; when SQL cannot parse the list, a piece that fails alone and may be a
+    column's name is kept as that name (never when the text holds a comment)."""
+    try:
+        return parse_terms(regressors)
+    except InputError:
+        texts = [regressors] if isinstance(regressors, str) else [str(v) for v in regressors]
+        if any("--" in t or "/*" in t for t in texts):
+            raise
+        pieces = split_top_level(regressors) if isinstance(regressors, str) else [t.strip() for t in texts]
+        if not any(_maybe_name(p) for p in pieces):
+            raise
+    return tuple(_term(p) for p in pieces if p)
+
+
+def _term(text: str) -> Term:
+    try:
+        return parse_term(text)
+    except InputError:
+        if not _maybe_name(text):
+            raise
+        return Term(text=" ".join(text.split()), kind="expr", expr=sqlbuild.quote_ident(text.strip()))
+
+
+def _outcome_sql(text: str) -> str:
+    try:
+        return expression_sql(text, "Outcome")
+    except InputError:
+        if not _maybe_name(text):
+            raise
+        return sqlbuild.quote_ident(text.strip())
 
 
 @dataclass(frozen=True)
@@ -70,6 +69,7 @@ class FitSpec:
     """A checked model specification (see :func:`bigpanel.fit` for the meaning of each field)."""
 
     outcome: str
+    outcome_sql: str  # rendered from the outcome's checked parse tree (or its quoted name)
     terms: tuple[Term, ...]
     unit: str
     period: str
@@ -94,26 +94,31 @@ class FitSpec:
         intercept: bool | None = None,
         period_step: int = 1,
     ) -> "FitSpec":
-        outcome = params.check("outcome", outcome)
-        texts = params.check("regressors", regressors)
-        unit, period = params.check("unit", unit), params.check("period", period)
         estimator = params.check("estimator", estimator)
+        outcome = params.check("outcome", outcome)
+        params.check("regressors", regressors)
+        unit, period = params.check("unit", unit), params.check("period", period)
+        terms = _terms(regressors)
+        if not terms:
+            raise InputError("Option 'regressors' is empty. Give at least one term, separated by commas.")
+        texts = [t.text for t in terms]
         if len(set(texts)) != len(texts):
             dup = next(t for t in texts if texts.count(t) > 1)
-            raise InputError(f"Option 'regressors' lists '{dup}' twice. Give each term once.")
-        terms = tuple(parse_term(t) for t in texts)
+            raise InputError(f"Option 'regressors' lists '{echo(dup)}' twice. Give each term once.")
+        outcome_sql = _outcome_sql(outcome)
         eff = params.check("effects", effects)
         if estimator == "within" and not eff:
             eff = (unit,)
         if estimator == "within" and unit not in eff:
-            raise InputError(f"Option 'effects' must include the unit column '{unit}' for the within estimator (got {', '.join(eff)}).")
+            raise InputError(f"Option 'effects' must include the unit column '{echo(unit)}' for the within estimator (got {echo(', '.join(eff))}); "
+                             f"write --effects {echo(unit)} or --effects {echo(unit)},{echo(period)}.")
         if estimator == "pooled" and unit in eff:
-            raise InputError(f"Option 'effects' names the unit '{unit}' for the pooled estimator; that is the within estimator. Use --estimator within.")
+            raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for the pooled estimator; that is the within estimator. Use --estimator within.")
         for e in eff:
             if e not in (unit, period):
-                raise InputError(f"Option 'effects' names '{e}': effects on columns other than the unit '{unit}' and the period '{period}' are not supported yet.")
+                raise InputError(f"Option 'effects' names '{echo(e)}': effects on columns other than the unit '{echo(unit)}' and the period '{echo(period)}' are not supported yet.")
         if estimator == "first-difference" and unit in eff:
-            raise InputError(f"Option 'effects' names the unit '{unit}' for first differences, which already remove it. Use --effects {period} for period intercepts.")
+            raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for first differences, which already remove it. Use --effects {echo(period)} for period intercepts.")
         if se is None:
             se = "iid" if estimator == "pooled" and not cluster else "cluster"
         se = params.check("se", se)
@@ -121,9 +126,11 @@ class FitSpec:
         if se == "cluster" and not clus:
             clus = (unit,)
         if se != "cluster" and clus:
-            raise InputError(f"Option 'cluster' is given but 'se' is '{se}'. Use --se cluster, or drop --cluster.")
+            raise InputError(f"Option 'cluster' is given but 'se' is '{echo(se)}'. Use --se cluster, or drop --cluster.")
         if len(clus) > 2:
-            raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported.")
+            raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported, so give one or two.")
+        if len(set(clus)) != len(clus):
+            raise InputError(f"Option 'cluster' names '{echo(clus[0])}' twice. Give two different columns for two-way clustering, or one.")
         if intercept is None:
             intercept = estimator != "within"
         intercept = params.check("intercept", intercept)
@@ -131,7 +138,7 @@ class FitSpec:
             raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects already remove it.")
         period_step = params.check("period_step", period_step)
         return cls(
-            outcome=str(outcome).strip(), terms=terms, unit=unit, period=period, estimator=estimator,
+            outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, se=se, cluster=clus, intercept=bool(intercept), period_step=int(period_step),
         )
 

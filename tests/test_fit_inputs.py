@@ -347,8 +347,8 @@ def test_terms_named_as_columns_are_those_columns(gappy, tmp_path):
     renamed = gappy.rename(columns={"unit": "group", "period": "year", "x1": "union", "x2": "Sales 2024", "y": "order"})
     path = write_parquet(renamed, tmp_path / "keywords.parquet")
     plain = bigpanel.fit(write_parquet(gappy, tmp_path / "plain.parquet"), "y", ["x1", "x2", "lag(x1)"], "unit", "period")
-    res = bigpanel.fit(path, "order", "union, Sales 2024, lag(union)", "group", "year")
-    assert [c.term for c in res.coefficients] == ["union", "Sales 2024", "lag(union)"]
-    np.testing.assert_allclose(estimates(res, ["union", "Sales 2024", "lag(union)"]),
+    res = bigpanel.fit(path, "order", 'union, Sales 2024, lag("union")', "group", "year")
+    assert [c.term for c in res.coefficients] == ["union", "Sales 2024", 'lag("union")']
+    np.testing.assert_allclose(estimates(res, ["union", "Sales 2024", 'lag("union")']),
                                estimates(plain, ["x1", "x2", "lag(x1)"]), rtol=1e-12)
     assert res.outcome == "order"

@@ -176,7 +176,7 @@ def test_pooled_moments_builder_matches_numpy(rows_table):
     # Reference: numpy sums over the complete rows.
     con, df = rows_table
     sql = sqlbuild.pooled_moments_sql(_used(rows_table), 2, "fsum")
-    row = con.execute(sql, {"s0": 0.0, "s1": 0.0}).fetchdf().iloc[0]
+    row = con.execute(sql, {"s0": 0.0, "s1": 0.0, "d0": 1.0, "d1": 1.0}).fetchdf().iloc[0]
     ok = df.dropna()
     assert row["n"] == len(ok) and row["n_units"] == ok["u"].nunique()
     assert row["p0_1"] == pytest.approx(float(ok["x"] @ ok["y"]), rel=1e-14)
@@ -187,7 +187,7 @@ def test_unit_pass_builder_gives_the_within_cross_product(rows_table):
     # Reference: pandas demeaning by unit, then the dense cross-product.
     con, df = rows_table
     units = sqlbuild.unit_moments_sql(_used(rows_table), 2, "fsum")
-    row = con.execute(sqlbuild.unit_pass_sql(units, 2, "within", False, "fsum"), {"s0": 1.0, "s1": -2.0}).fetchdf().iloc[0]
+    row = con.execute(sqlbuild.unit_pass_sql(units, 2, "within", False, "fsum"), {"s0": 1.0, "s1": -2.0, "d0": 1.0, "d1": 1.0}).fetchdf().iloc[0]
     ok = df.dropna()
     dm = ok[["x", "y"]] - ok.groupby("u")[["x", "y"]].transform("mean")
     assert row["w0_0"] == pytest.approx(float(dm["x"] @ dm["x"]), rel=1e-12)
@@ -199,15 +199,15 @@ def test_differenced_rows_builder_matches_pandas(rows_table):
     # Reference: pandas diff within units over consecutive periods.
     con, df = rows_table
     got = con.execute(f"SELECT k_unit, k_period, z0 FROM ({_used(rows_table, True)}) ORDER BY 1, 2",
-                      {"s0": 0.0, "s1": 0.0}).fetchdf()
+                      {"s0": 0.0, "s1": 0.0, "d0": 1.0, "d1": 1.0}).fetchdf()
     d = df.sort_values(["u", "t"]).assign(dx=lambda f: f.groupby("u")["x"].diff(), dy=lambda f: f.groupby("u")["y"].diff())
     ref = d.dropna(subset=["dx", "dy"])
     np.testing.assert_allclose(got["z0"].to_numpy(), ref["dx"].to_numpy(), rtol=1e-14)
 
 
 @pytest.mark.parametrize(("differenced", "expected"), [
-    (False, "(z0 * 0 + z1 * 0) = 0"),
-    (True, "k_prev_unit = k_unit AND k_prev = k_period - 2 AND (z0 * 0 + z1 * 0) = 0"),
+    (False, "k_unit IS NOT NULL AND (z0 * 0 + z1 * 0) = 0"),
+    (True, "k_prev_unit = k_unit AND k_prev = k_period - 2 AND k_unit IS NOT NULL AND (z0 * 0 + z1 * 0) = 0"),
 ])
 def test_valid_predicate_text(differenced, expected):
     assert sqlbuild.valid_predicate(2, differenced, 2) == expected
@@ -219,7 +219,7 @@ def test_valid_predicate_text(differenced, expected):
 @pytest.mark.parametrize(("name", "value", "message"), [
     ("estimator", "fe", "Option 'estimator' must be one of pooled, within, first-difference; got 'fe'."),
     ("se", "robust", "Option 'se' must be one of iid, hc1, cluster; got 'robust'."),
-    ("period_step", 0, "Option 'period_step' must be a whole number of 1 or more, got 0."),
+    ("period_step", 0, "Option 'period_step' must be a whole number from 1 to 2**53 (9,007,199,254,740,992), got 0."),
     ("regressors", "", "Option 'regressors' is empty."),
 ])
 def test_parameter_errors_come_from_the_table(name, value, message):
