@@ -78,6 +78,36 @@ def _bigpanel(estimator, effects=None, fold="as shipped"):
     return run
 
 
+def pooled_iid(files, settings):
+    """The fixed cost of a fit: pooled least squares with iid errors (one pass, no grouping)."""
+    import bigpanel
+
+    engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                             temp_directory=settings.temp_directory)
+    result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS, UNIT, PERIOD, estimator="pooled",
+                          se="iid", engine=engine)
+    return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
+            "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
+
+
+def fit_many_ten(files, settings):
+    """Ten within and pooled models (terms, estimator and cluster columns differ) from
+    fit_many's shared scans; reports the within model's estimates for the agreement check."""
+    import bigpanel
+
+    engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                             temp_directory=settings.temp_directory)
+    models = [dict(outcome=OUTCOME, regressors=REGRESSORS, se="cluster", cluster=UNIT)]
+    for i in range(1, 5):
+        models.append(dict(outcome=OUTCOME, regressors=REGRESSORS[:i], se="cluster", cluster=UNIT))
+    models += [dict(outcome=OUTCOME, regressors=REGRESSORS[:i], estimator="pooled", se=se)
+               for i, se in ((5, "iid"), (4, "hc1"), (3, "cluster"), (2, "iid"), (1, "hc1"))]
+    results = bigpanel.fit_many(str(Path(files[0]).parent), models, unit=UNIT, period=PERIOD, engine=engine)
+    first = results[0]
+    return {"coefficients": [first.coef(term).estimate for term in REGRESSORS],
+            "std_errors": [first.coef(term).std_error for term in REGRESSORS], "scans": results.scans}
+
+
 def _cluster_sandwich(xtx, meat, coef, n_obs, n_clusters):
     """Unit-cluster CR1 standard errors, the factor bigpanel uses for within with unit clusters:
     G/(G-1) * (N-1)/(N-K), unit effects nested in the clusters not counted (ESTIMATION.md)."""
@@ -162,6 +192,9 @@ CASES = {case.name: case for case in [
          "bigpanel within (unit and period effects), unit clusters"),
     Case("first-difference", "bigpanel", _bigpanel("first-difference"), _BP,
          "bigpanel first differences, unit clusters"),
+    Case("pooled-iid", "bigpanel", pooled_iid, _BP, "bigpanel pooled, iid errors (the fixed cost of a fit)"),
+    Case("fit-many-10", "bigpanel", fit_many_ten, _BP,
+         "bigpanel fit_many: 5 within (unit clusters) and 5 pooled models, shared scans"),
     Case("pooled-sql-fold", "bigpanel", _bigpanel("pooled", fold="sql"), _BP,
          "bigpanel pooled, unit clusters, unit fold summed in SQL"),
     Case("within-sql-fold", "bigpanel", _bigpanel("within", fold="sql"), _BP,
