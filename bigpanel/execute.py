@@ -297,11 +297,27 @@ class Executor:
         self._nested[request] = nested
 
     def shared_moments(self, scan, params: dict) -> dict:
-        """One scan: the cross-products of every sample of a shared scan (plan.SharedScan)."""
+        """One scan: the cross-products of every sample of a shared scan (plan.SharedScan),
+        chunk by chunk (unit ranges: every total adds up across chunks, bounds take min/max)."""
         rows = scan.rows
-        sql = sqlbuild.shared_moments_sql(self.rows_sql(rows), scan.samples, rows.differenced, self.keys.step,
-                                          scan.nesting_checks())
-        return self.run_once(sql, params)[0]
+
+        def make(chunk):
+            return sqlbuild.shared_moments_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
+                                               self.keys.step, scan.nesting_checks())
+
+        parts = [t[0] for t in self.run_chunked(make, params)]
+        out = {}
+        for key in parts[0]:
+            values = [p[key] for p in parts if p[key] is not None]
+            if not values:
+                out[key] = None
+            elif key.startswith(("lo", "tlo", "wtlo")):
+                out[key] = min(values)
+            elif key.startswith(("hi", "thi", "wthi")):
+                out[key] = max(values)
+            else:
+                out[key] = sum(values)
+        return out
 
     def shared_meats(self, scan, requests: list, params: dict) -> None:
         """One scan: the meats of every recorded score request (index, Scores, k,
@@ -313,9 +329,20 @@ class Executor:
         rows = scan.rows
         models, sets, values = score_models(scan, requests)
         keys = [k for k in ["k_unit"] + [f"k_c{i}" for i in range(len(scan.clusters))] if any(k in s for s in sets)]
-        sql = sqlbuild.shared_scores_sql(self.rows_sql(rows), scan.samples, rows.differenced, self.keys.step,
-                                         models, keys, sets)
-        by_gid = {r["gid"]: r for r in self.run_once(sql, {**params, **values})}
+
+        def make(chunk):
+            return sqlbuild.shared_scores_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
+                                              self.keys.step, models, keys, sets)
+
+        if all(s in (("k_unit",), ()) for s in sets):  # groups inside units: chunks add up
+            by_gid: dict = {}
+            for table in self.run_chunked(make, {**params, **values}):
+                for r in table:
+                    acc = by_gid.setdefault(r["gid"], dict.fromkeys(r, 0))
+                    for key, v in r.items():
+                        acc[key] = r["gid"] if key == "gid" else acc[key] + (v or 0)
+        else:  # clusters that cut across units need every row's cell at once
+            by_gid = {r["gid"]: r for r in self.run_once(make(None), {**params, **values})}
         members = {m.index: m for m in scan.members}
         for m, (index, req, k, _) in enumerate(requests):
             meats, counts = [], []

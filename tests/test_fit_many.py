@@ -134,3 +134,36 @@ def test_shared_queries_read_the_rows_once(gappy, monkeypatch):
     for sql, p in full:
         plan = "\n".join(row[1] for row in con.execute("EXPLAIN " + sql, p).fetchall())
         assert plan.count("READ_PARQUET") + plan.count("PARQUET_SCAN") == 1
+
+
+def test_chunked_shared_scan_equals_one_query(gappy, tmp_path, monkeypatch):
+    # Reference: the same models on one file (one query per scan); files cut by unit run
+    # the shared cross-product scan chunk by chunk (sums in another order: 1e-12).
+    import bigpanel.moments
+    from panel_cases import write_parquet_parts
+
+    df, path = gappy
+    one = bigpanel.fit_many(path, TEN, unit="unit", period="period")
+    parts = write_parquet_parts(df, tmp_path / "parts", 3)
+    monkeypatch.setattr(bigpanel.moments, "CHUNK_ROWS", 1)
+    many = bigpanel.fit_many(parts, TEN, unit="unit", period="period")
+    assert many.scans <= 2
+    for a, b in zip(many, one):
+        assert_same(a, b)
+
+
+def test_chunked_shared_scores_equal_one_query(gappy, tmp_path, monkeypatch):
+    # Reference: the same unit-cluster and HC1 models on one file (one query per scan);
+    # their score sums add up over unit chunks (sums in another order: 1e-12).
+    import bigpanel.moments
+    from panel_cases import write_parquet_parts
+
+    df, path = gappy
+    models = [m for m in TEN if m.get("se") in ("hc1", "iid") or m.get("cluster") in (None, "unit")]
+    one = bigpanel.fit_many(path, models, unit="unit", period="period")
+    parts = write_parquet_parts(df, tmp_path / "parts", 3)
+    monkeypatch.setattr(bigpanel.moments, "CHUNK_ROWS", 1)
+    many = bigpanel.fit_many(parts, models, unit="unit", period="period")
+    assert many.scans <= 2 and len(models) >= 5
+    for a, b in zip(many, one):
+        assert_same(a, b)
