@@ -30,7 +30,7 @@ from . import moments, sqlbuild, variance
 from .errors import (
     BigpanelWarning, DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError,
 )  # fmt: skip
-from .results import Coefficient, FitResult
+from .results import Coefficient, FitResult, run_record
 from .solve import solve_normal
 from .source import Engine, Session, Source, is_integer, is_numeric, open_source
 from .spec import FitSpec
@@ -510,11 +510,11 @@ class _Fit:
             return [scores.T @ scores], [len(groups)]
         all_rows = used(moments.Chunk())
         if spec.se == "hc1":
-            row = self.s.run(sqlbuild.residual_moments_sql(all_rows, q, intercept, demean, n_periods), p).to_pylist()[0]
+            row = moments.run_alone(self.s, sqlbuild.residual_moments_sql(all_rows, q, intercept, demean, n_periods), p).to_pylist()[0]
             return [moments.symmetric(row, "h", k)], []
         n_cl = len(spec.cluster)
         out = {r["gid"]: (moments.symmetric(r, "o", k), int(r["n_groups"]))
-               for r in self.s.run(sqlbuild.cluster_scores_sql(all_rows, q, intercept, demean, n_periods, n_cl), p).to_pylist()}
+               for r in moments.run_alone(self.s, sqlbuild.cluster_scores_sql(all_rows, q, intercept, demean, n_periods, n_cl), p).to_pylist()}
         order = [0] if n_cl == 1 else [1, 2, 0]  # GROUPING(c0, c1): c0 only 01, c1 only 10, both 00
         return [out[g][0] for g in order], [out[g][1] for g in order]
 
@@ -718,7 +718,7 @@ class _Fit:
             r_squared=float(r2), r_squared_kind=r2_kind, f_stat=f_stat, f_df=(float(len(slopes)), float(var.df)),
             f_p_value=f_p, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=acc.singletons,
             absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=self.s.source.label,
-            where=self.s.source.where, warnings=tuple(self.notes),
+            where=self.s.source.where, warnings=tuple(self.notes), run=run_record(moments.thread_count(self.s)),
         )
 
     def _variance(self, design, params, acc: _Pass, sol, rss, n_obs, n_kept, absorbed, mode, chunks) -> variance.Variance:
