@@ -294,8 +294,15 @@ def test_issue_reproduction_is_refused_and_writes_nothing(arena, place):
     done = subprocess.run(argv, cwd=arena / "work", env=env, capture_output=True, text=True, timeout=120)
     assert _snapshot(arena) == before, "the reproduction wrote or changed a file"
     assert _tables(arena / "src" / "depots.duckdb") == tables
-    assert done.returncode == 2, done.stderr
-    assert "Traceback" not in done.stderr and done.stderr.strip().count("\n") == 0
+    assert "Traceback" not in done.stderr
+    if place == "regressors":  # the filed reproduction itself is refused, in one sentence
+        assert done.returncode == 2, done.stderr
+        assert done.stderr.strip().count("\n") == 0
+    else:
+        # Rendered from its parse tree, the second half alone is one scalar expression, the
+        # length of a string literal: a harmless constant outcome may be fitted (exit 0),
+        # or refused (exit 2); either way nothing ran but that expression.
+        assert done.returncode in (0, 2), done.stderr
 
 
 # =============================================================== strategy two: random panels
