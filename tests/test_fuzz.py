@@ -251,8 +251,8 @@ def _check_hostile_run(arena: Path, argv: list[str]) -> None:
     model_refusal = code == 1 and err.strip().startswith(("No term can be estimated", "No usable rows"))
     assert code in (0, 2) or model_refusal, f"exit {code}: {err.strip()[:300]}"
     assert "Traceback" not in err
-    if code:
-        assert err.strip(), "a refusal without a message"
+    if code:  # one sentence: user text is echoed with its newlines escaped (errors.echo)
+        assert err.strip() and "\n" not in err.strip(), f"not one line: {err!r}"
 
 
 # The reproduction, exactly (its shell line, as an argv without a shell).
