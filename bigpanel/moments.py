@@ -114,14 +114,17 @@ def run_chunks(
     threads = session.source.engine.threads or os.cpu_count() or 1
 
     def one(chunk):
-        cur = session.cursor(threads=1)
+        cur = session.cursor(threads=1)  # the session's one-thread instance (its settings are locked)
         try:
             return session.run(make_sql(chunk), params, con=cur)
         finally:
             cur.close()
 
-    with ThreadPoolExecutor(max_workers=max(1, int(threads))) as pool:
+    pool = ThreadPoolExecutor(max_workers=max(1, int(threads)))
+    try:
         return list(pool.map(one, chunks))
+    finally:  # on an error or a stop signal, chunks not yet started are dropped
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 def symmetric(row: dict, prefix: str, dim: int) -> np.ndarray:
