@@ -56,3 +56,15 @@ def unknown_column(column: str, where: str, available: Iterable[str]) -> InputEr
     hint = f" Did you mean {', '.join(repr(c) for c in close)}?" if close else ""
     shown = ", ".join(names[:20]) + (", ..." if len(names) > 20 else "")
     return InputError(f"Column '{column}' not found in {where}.{hint} Available: {shown}.")
+
+
+ECHO_LIMIT = 200  # most characters of the user's own text repeated in a message
+
+
+def shown(text: object, limit: int = ECHO_LIMIT) -> str:
+    """The user's text quoted for a message: on one line, and cut after ``limit`` characters."""
+    raw = str(text)
+    flat = raw.replace("\\", "\\\\").replace("\n", "\\n").replace("\r", "\\r").replace("\t", "\\t")
+    if len(flat) > limit:
+        return f"'{flat[:limit]}...' ({len(raw):,} characters)"
+    return f"'{flat}'"

@@ -28,7 +28,7 @@ import scipy.special  # t and F tails; scipy.stats alone takes ~0.8 s to import
 
 from . import moments, sqlbuild, variance
 from .errors import (
-    BigpanelWarning, DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError,
+    BigpanelWarning, DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError, shown,
 )  # fmt: skip
 from .results import Coefficient, FitResult
 from .solve import solve_normal
@@ -155,10 +155,10 @@ class _Fit:
                     "whole-number periods. Use a period index column (for example months since a start date)."
                 )
 
-    def _numeric_term(self, expr: str, what: str) -> None:
-        self.s.check_expression(expr, what)
+    def _numeric_term(self, expr: str, what: str, text: str) -> None:
+        """``expr`` is SQL rendered from a checked parse tree; ``text`` is what the user wrote."""
         if _BASE_TEN_LOG.search(expr):
-            msg = f"{what} '{expr}' uses log(), which in SQL is the base-10 logarithm; ln() is the natural one"
+            msg = f"{what} {shown(text)} uses log(), which in SQL is the base-10 logarithm; ln() is the natural one"
             self.notes.append(msg)
             warnings.warn(msg, BigpanelWarning, stacklevel=4)
         cols = self.s.columns()
@@ -170,9 +170,9 @@ class _Fit:
                     f"Use levels({bare}) for a categorical column, or convert it in an expression."
                 )
             return
-        kind = self.s.describe_expression(expr)
+        kind = self.s.describe_expression(expr, what, text)
         if not is_numeric(kind):
-            raise InputError(f"{what} '{expr}' has type {kind}, not a number. Give a numeric expression.")
+            raise InputError(f"{what} {shown(text)} has type {kind}, not a number. Give a numeric expression.")
 
     def _levels(self, expr: str) -> list[str]:
         sql = sqlbuild.distinct_values_sql(self.s.source.filtered(), expr, MAX_LEVELS + 1)
@@ -202,7 +202,7 @@ class _Fit:
                         columns.append((sqlbuild.indicator_sql(quoted, level), 0))
                         is_effect.append(False)
             else:
-                self._numeric_term(term.expr, "Term")
+                self._numeric_term(term.expr, "Term", term.text)
                 labels.append(term.text)
                 columns.append((term.expr, term.lag))
                 is_effect.append(False)
@@ -215,8 +215,8 @@ class _Fit:
                 labels.append(f"{spec.period}[{value}]")
                 columns.append((sqlbuild.indicator_sql(quoted, value), 0))
                 is_effect.append(True)
-        self._numeric_term(spec.outcome, "Outcome")
-        columns.append((spec.outcome, 0))
+        self._numeric_term(spec.outcome_sql, "Outcome", spec.outcome)
+        columns.append((spec.outcome_sql, 0))
         return _Design(labels, columns, is_effect, absorbed)
 
     def _integer_period(self) -> bool:
@@ -245,7 +245,7 @@ class _Fit:
     def _rows(self, design: _Design, chunk: moments.Chunk | None = None, head: bool = False) -> str:
         spec = self.spec
         chunk = chunk or moments.Chunk()
-        source = self.s.source.filtered(chunk.files, chunk.unit_range(spec.unit))
+        source = chunk.source_sql(self.s.source, spec.unit)
         if head:
             source = sqlbuild.head_sql(source, PROBE_ROWS)
         rows = sqlbuild.design_rows_sql(source, spec.unit, spec.period, list(spec.cluster), design.columns, spec.period_step)

@@ -12,7 +12,7 @@ the session closes.
 An allowed path can still be written (a COPY over a source file), and a read-only DuckDB
 file, once detached, could be attached again for writing. So every statement a session
 runs goes through :class:`LockedConnection`, which runs nothing but a single SELECT
-(DESCRIBE included): no COPY, ATTACH, DETACH, SET, INSTALL, LOAD or PRAGMA, whatever a
+(DESCRIBE included; parsed by ``source.check_select``, each distinct text once): no COPY, ATTACH, DETACH, SET, INSTALL, LOAD or PRAGMA, whatever a
 check upstream missed.
 
 Remote sources (any ``scheme://``) are refused, as the source or read inside a query.
@@ -22,13 +22,13 @@ from __future__ import annotations
 
 import os
 import re
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from typing import Any
 
 import duckdb
 
 from . import interrupts, sqlbuild
-from .errors import BigpanelError, InputError
+from .errors import InputError
 
 _REMOTE = re.compile(r"^\s*[A-Za-z][A-Za-z0-9+.\-]*://")
 _WILDCARDS = "*?["
@@ -48,11 +48,6 @@ def refuse_remote_source(path: str) -> None:
 
 def _short(text: str, limit: int = 200) -> str:
     return text if len(text) <= limit else text[:limit] + "..."
-
-
-def parse_tree_sql(query: str) -> tuple[str, list[str]]:
-    """The query (and its parameter) that returns DuckDB's parse tree of ``query`` as JSON."""
-    return "SELECT json_serialize_sql($1)", [query]
 
 
 def query_reads(tree: dict) -> list[str]:
@@ -135,16 +130,10 @@ class LockedConnection:
     interrupts its running query.
     """
 
-    def __init__(self, raw: duckdb.DuckDBPyConnection):
+    def __init__(self, raw: duckdb.DuckDBPyConnection, check: Callable[[str], None]):
         self.raw = raw
+        self._check = check  # raises unless the text is exactly one SELECT statement
         interrupts.register(raw)
-
-    def _check(self, sql: str) -> None:
-        kinds = [s.type for s in self.raw.extract_statements(sql)]
-        if kinds != [duckdb.StatementType.SELECT]:
-            named = ", ".join(k.name for k in kinds) or "nothing"
-            raise BigpanelError(f"bigpanel refused to run SQL that is not one SELECT statement (found: {named}). "
-                                "This is a bug or a bypassed check: report it with the command line.")
 
     def execute(self, sql: str, params: Any = None) -> duckdb.DuckDBPyConnection:
         self._check(sql)
@@ -155,7 +144,7 @@ class LockedConnection:
         return self.raw.sql(sql, params=params) if params else self.raw.sql(sql)
 
     def cursor(self) -> LockedConnection:
-        return LockedConnection(self.raw.cursor())
+        return LockedConnection(self.raw.cursor(), self._check)
 
     def interrupt(self) -> None:
         self.raw.interrupt()

@@ -44,14 +44,30 @@ MIN_CHUNK_ROWS = 250_000  # fewest rows worth a query of their own (planning cos
 
 @dataclass(frozen=True)
 class Chunk:
-    """Files to read and the half-open range of units [low, high) to keep (None: open)."""
+    """Files to read and the half-open range of units [low, high) to keep (None: open).
+
+    ``without_unit`` is the chunk of rows whose unit is missing (they fall outside every
+    range). The bounds reach SQL as the parameters ``$unit_low`` and ``$unit_high``.
+    """
 
     files: tuple[str, ...] | None = None
     low: Any = None
     high: Any = None
+    without_unit: bool = False
 
-    def unit_range(self, unit: str) -> tuple[str, Any, Any] | None:
-        return None if self.low is None and self.high is None else (unit, self.low, self.high)
+    @property
+    def ranged(self) -> bool:
+        return self.low is not None or self.high is not None
+
+    def params(self) -> dict:
+        return {"unit_low": self.low, "unit_high": self.high} if self.ranged else {}
+
+    def source_sql(self, source, unit: str) -> str:
+        """The chunk's rows of ``source`` after its filter (all files: the same text for
+        every chunk; row groups outside the range are skipped by their statistics)."""
+        if self.without_unit:
+            return sqlbuild.rows_without_unit_sql(source.filtered(), unit)
+        return source.filtered(None, unit if self.ranged else None)
 
 
 def plan_chunks(session: Session, unit: str) -> list[Chunk]:
@@ -109,14 +125,17 @@ def run_chunks(
     params: dict,
 ) -> list:
     """Run one query per chunk; return their Arrow results in chunk order."""
+    def bound(chunk) -> dict:
+        return params | chunk.params() if isinstance(chunk, Chunk) else params
+
     if len(chunks) == 1:
-        return [session.run(make_sql(chunks[0]), params)]
+        return [session.run(make_sql(chunks[0]), bound(chunks[0]))]
     threads = session.source.engine.threads or os.cpu_count() or 1
 
     def one(chunk):
         cur = session.cursor(threads=1)  # the session's one-thread instance (its settings are locked)
         try:
-            return session.run(make_sql(chunk), params, con=cur)
+            return session.run(make_sql(chunk), bound(chunk), con=cur)
         finally:
             cur.close()
 

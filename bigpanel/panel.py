@@ -222,7 +222,7 @@ def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str]
         period_value = sqlbuild.period_value(period, kinds)
 
         shifts = _probe_shifts(session, checked, numeric)
-        chunks = [session.source.filtered(c.files, c.unit_range(unit)) for c in moments.plan_chunks(session, unit)]
+        chunks = moments.plan_chunks(session, unit)
         by_period = _scan_periods(session, chunks, unit, period_value, checked, shifts)
         grid = _period_grid(by_period["period_value"], kinds)
         if grid is None:
@@ -320,15 +320,15 @@ def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> d
     return {j: row[f"c_{j}"] if row[f"c_{j}"] is not None and math.isfinite(row[f"c_{j}"]) else 0.0 for j in indices}
 
 
-def _scan_periods(session: Session, chunks: list[str], unit: str, period_value: str, checked: list[str],
+def _scan_periods(session: Session, chunks: list[moments.Chunk], unit: str, period_value: str, checked: list[str],
                   shifts: dict[int, float]) -> dict:
     """Scan 1 over each chunk; the chunks' period rows are kept side by side (every figure
     taken from them is a sum, or a two-pass formula valid over any partition of the rows)."""
     if len(chunks) > 1:
-        chunks = chunks + [sqlbuild.rows_without_unit_sql(session.source.filtered(), unit)]
+        chunks = chunks + [moments.Chunk(without_unit=True)]
     max_groups = 2 * MAX_PERIODS + 2  # each period twice (with and without a unit), plus NULL periods
     tables = moments.run_chunks(
-        session, chunks, lambda src: sqlbuild.checkup_period_scan_sql(src, unit, period_value, checked, list(shifts)),
+        session, chunks, lambda c: sqlbuild.checkup_period_scan_sql(c.source_sql(session.source, unit), unit, period_value, checked, list(shifts)),
         {"max_groups": max_groups} | _shift_params(shifts),
     )
     table = pa.concat_tables(tables)
@@ -430,7 +430,7 @@ def _shift_params(shifts: dict[int, float]) -> dict[str, float]:
 # ---------------------------------------------------------------- scan 2: units
 
 
-def _scan_units(session: Session, chunks: list[str], unit: str, period_value: str, checked: list[str],
+def _scan_units(session: Session, chunks: list[moments.Chunk], unit: str, period_value: str, checked: list[str],
                 shifts: dict[int, float], grid: _Grid) -> dict:
     """Scan 2 over each chunk (every unit lies in one chunk), added up in chunk order."""
     bitmap = grid.n_slots <= BITMAP_MAX_SLOTS
@@ -439,7 +439,7 @@ def _scan_units(session: Session, chunks: list[str], unit: str, period_value: st
         params["last_slot"] = grid.n_slots - 1
     tables = moments.run_chunks(
         session, chunks,
-        lambda src: sqlbuild.checkup_unit_scan_sql(src, unit, period_value, checked, list(shifts), grid.mode, bitmap),
+        lambda c: sqlbuild.checkup_unit_scan_sql(c.source_sql(session.source, unit), unit, period_value, checked, list(shifts), grid.mode, bitmap),
         params,
     )
     rows = [t.to_pylist()[0] for t in tables]
@@ -473,9 +473,9 @@ def _quartiles(histogram) -> tuple[int, ...]:
 # ---------------------------------------------------------------- scan 3: duplicate keys
 
 
-def _scan_duplicates(session: Session, chunks: list[str], unit: str, period_value: str) -> tuple[list[tuple[Any, Any, int]], int]:
+def _scan_duplicates(session: Session, chunks: list[moments.Chunk], unit: str, period_value: str) -> tuple[list[tuple[Any, Any, int]], int]:
     """Scan 3 over each chunk: the first offending keys of all chunks, and their count."""
-    tables = moments.run_chunks(session, chunks, lambda src: sqlbuild.checkup_duplicate_scan_sql(src, unit, period_value),
+    tables = moments.run_chunks(session, chunks, lambda c: sqlbuild.checkup_duplicate_scan_sql(c.source_sql(session.source, unit), unit, period_value),
                                 {"n_examples": N_DUPLICATE_EXAMPLES})
     rows = [r for t in tables for r in t.to_pylist()]
     n_keys = sum(int(t.column("n_keys")[0].as_py()) for t in tables if t.num_rows)

@@ -11,79 +11,13 @@ of our own:
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass, field
 
 from .errors import InputError
+from .expressions import Term, expression_sql, parse_terms, split_top_level
 
 ESTIMATORS = ("pooled", "within", "first-difference")
 VARIANCES = ("iid", "hc1", "cluster")
-
-_LAG = re.compile(r"^lag\s*\((.*)\)$", re.IGNORECASE | re.DOTALL)
-_LEVELS = re.compile(r"^levels\s*\((.*)\)$", re.IGNORECASE | re.DOTALL)
-
-
-def split_top_level(text: str, sep: str = ",") -> list[str]:
-    """Split on ``sep`` outside parentheses, brackets and quotes; strip the pieces."""
-    parts, depth, quote, start = [], 0, None, 0
-    for i, ch in enumerate(text):
-        if quote:
-            if ch == quote:
-                quote = None
-        elif ch in "'\"":
-            quote = ch
-        elif ch in "([{":
-            depth += 1
-        elif ch in ")]}":
-            depth -= 1
-        elif ch == sep and depth == 0:
-            parts.append(text[start:i].strip())
-            start = i + 1
-    parts.append(text[start:].strip())
-    return [p for p in parts if p]
-
-
-@dataclass(frozen=True)
-class Term:
-    """One regressor as the user wrote it, and how to compute it.
-
-    ``kind`` is ``expr`` (a SQL expression), ``lag`` (``expr`` K periods earlier) or
-    ``levels`` (indicators for the categorical column ``expr`` against ``base``).
-    """
-
-    text: str
-    kind: str
-    expr: str
-    lag: int = 0
-    base: str | None = None
-
-
-def parse_term(text: str) -> Term:
-    text = text.strip()
-    m = _LAG.match(text)
-    if m:
-        args = split_top_level(m.group(1))
-        if len(args) not in (1, 2):
-            raise InputError(f"Term '{text}' is not understood: write lag(EXPR) or lag(EXPR, K).")
-        k = 1
-        if len(args) == 2:
-            if not args[1].isdigit() or int(args[1]) < 1:
-                raise InputError(f"Term '{text}' has lag order '{args[1]}'. Give a whole number of periods, 1 or more.")
-            k = int(args[1])
-        return Term(text=text, kind="lag", expr=args[0], lag=k)
-    m = _LEVELS.match(text)
-    if m:
-        args = split_top_level(m.group(1))
-        if len(args) not in (1, 2):
-            raise InputError(f"Term '{text}' is not understood: write levels(COLUMN) or levels(COLUMN, 'BASE').")
-        base = None
-        if len(args) == 2:
-            raw = args[1]
-            if not (len(raw) >= 2 and raw[0] == raw[-1] == "'"):
-                raise InputError(f"Term '{text}': the base level must be a quoted value, like levels(kind, 'hub').")
-            base = raw[1:-1].replace("''", "'")
-        return Term(text=text, kind="levels", expr=args[0].strip('"'), base=base)
-    return Term(text=text, kind="expr", expr=text)
 
 
 def _as_list(value: str | list[str] | tuple[str, ...] | None) -> tuple[str, ...]:
@@ -99,6 +33,7 @@ class FitSpec:
     """A checked model specification (see :func:`bigpanel.fit` for the meaning of each field)."""
 
     outcome: str
+    outcome_sql: str  # rendered from the outcome's checked parse tree
     terms: tuple[Term, ...]
     unit: str
     period: str
@@ -128,13 +63,14 @@ class FitSpec:
             raise InputError(f"Option 'estimator' must be one of {', '.join(ESTIMATORS)}; got '{estimator}'.")
         if not outcome or not str(outcome).strip():
             raise InputError("Option 'outcome' is empty. Name the outcome column or expression.")
-        texts = _as_list(regressors)
-        if not texts:
+        terms = parse_terms(regressors)
+        if not terms:
             raise InputError("Option 'regressors' is empty. Give at least one term, separated by commas.")
+        texts = [t.text for t in terms]
         if len(set(texts)) != len(texts):
             dup = next(t for t in texts if texts.count(t) > 1)
             raise InputError(f"Option 'regressors' lists '{dup}' twice. Give each term once.")
-        terms = tuple(parse_term(t) for t in texts)
+        outcome_sql = expression_sql(outcome, "Outcome")
         eff = _as_list(effects)
         if estimator == "within" and not eff:
             eff = (unit,)
@@ -165,7 +101,7 @@ class FitSpec:
         if int(period_step) < 1:
             raise InputError(f"Option 'period_step' must be a whole number of 1 or more, got {period_step}.")
         return cls(
-            outcome=str(outcome).strip(), terms=terms, unit=unit, period=period, estimator=estimator,
+            outcome=str(outcome).strip(), outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, se=se, cluster=clus, intercept=bool(intercept), period_step=int(period_step),
         )
 

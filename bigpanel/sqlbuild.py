@@ -109,54 +109,28 @@ def attach_sql(path: str, alias: str) -> str:
 # ---------------------------------------------------------------- expressions
 
 
-def parse_check_sql(expression: str) -> tuple[str, list]:
-    """Query that returns DuckDB's parse tree of ``SELECT <expression>`` as JSON."""
-    return "SELECT json_serialize_sql($1)", ["SELECT " + expression]
+def parse_check_sql(sql: str) -> tuple[str, list]:
+    """Query that returns DuckDB's parse tree of ``sql`` as JSON."""
+    return "SELECT json_serialize_sql($1)", [sql]
 
 
-_FORBIDDEN_CLASSES = {"SUBQUERY", "WINDOW", "STAR", "COLUMNS", "LAMBDA_REF"}
+def render_tree_sql(tree_json: str) -> tuple[str, list]:
+    """Query that returns the SQL text DuckDB generates from a parse tree."""
+    return "SELECT json_deserialize_sql(CAST($1 AS JSON))", [tree_json]
 
 
-def expression_problem(tree_json: str, function_kinds: dict[str, str]) -> str | None:
-    """Why a parsed ``SELECT <expr>`` is not a single scalar expression, or None.
+def describe_sql(select: str) -> str:
+    """``DESCRIBE`` of a SELECT: its result columns and types, reading no rows."""
+    return f"DESCRIBE {select}"
 
-    ``function_kinds`` maps function names to DuckDB's ``function_type`` (scalar,
-    aggregate, table, ...).
-    """
-    tree = json.loads(tree_json)
-    if tree.get("error"):
-        return f"it is not valid SQL ({tree.get('error_message', 'parse error')})"
-    statements = tree.get("statements", [])
-    if len(statements) != 1:
-        return "it holds more than one statement"
-    node = statements[0]["node"]
-    if node.get("type") != "SELECT_NODE" or len(node.get("select_list", [])) != 1:
-        return "it is not a single expression"
-    if node.get("from_table", {}).get("type") not in (None, "EMPTY"):
-        return "it reads from a table"
-    for key in ("where_clause", "having", "qualify", "sample"):
-        if node.get(key):
-            return "it is not a single expression"
-    if node.get("modifiers") or node.get("group_expressions") or node.get("cte_map", {}).get("map"):
-        return "it is not a single expression"
-    stack = list(node["select_list"])
-    while stack:
-        item = stack.pop()
-        if isinstance(item, dict):
-            cls = item.get("class")
-            if cls in _FORBIDDEN_CLASSES:
-                return {"SUBQUERY": "it contains a subquery", "WINDOW": "it contains a window function"}.get(
-                    cls, "it is not a scalar expression"
-                )
-            if cls == "FUNCTION":
-                name = str(item.get("function_name", "")).lower()
-                kind = function_kinds.get(name)
-                if kind not in (None, "scalar", "macro"):
-                    return f"it calls the {kind} function {name}()"
-            stack.extend(v for v in item.values() if isinstance(v, (dict, list)))
-        elif isinstance(item, list):
-            stack.extend(item)
-    return None
+
+def all_columns_sql(relation: str) -> str:
+    return f"SELECT * FROM {relation}"
+
+
+def expression_type_sql(expression: str, relation: str) -> str:
+    """A query whose one column is a checked expression over ``relation`` (for its type)."""
+    return f"SELECT ({expression}) AS x FROM {relation} AS src"
 
 
 def function_kinds_sql() -> str:
