@@ -394,6 +394,10 @@ def open_source(
             src = Source(kind="query" if query else "duckdb", label=f"{Path(path).name}" + (f" table {table}" if table else ""),
                          database=path, table=table, query=query, **common)
         elif lower.endswith((".csv", ".tsv", ".csv.gz", ".tsv.gz", ".txt")):
+            unknown = sorted(set(csv_options or {}) - set(sqlbuild.CSV_OPTIONS))
+            if unknown:
+                raise InputError(f"Option 'csv_options' names {shown(unknown[0], 40)}, which is not a CSV reader option. "
+                                 f"Use one of: {', '.join(sqlbuild.CSV_OPTIONS)}.")
             files = sorted(globmod.glob(path, recursive=True)) if any(c in path for c in "*?[") else [path]
             if not files or not all(os.path.exists(f) for f in files):
                 raise InputError(f"Source '{path}' does not exist. Check the path.")

@@ -80,6 +80,10 @@ def parquet_relation(paths: list[str], hive: bool) -> str:
     return f"read_parquet({files}, union_by_name = true, hive_partitioning = {str(hive).lower()})"
 
 
+CSV_OPTIONS = ("delim", "sep", "quote", "escape", "header", "decimal_separator", "nullstr", "skip", "dateformat",
+               "timestampformat", "new_line", "comment")
+
+
 def csv_relation(paths: list[str], types: dict[str, str] | None, options: dict[str, str] | None) -> str:
     """``read_csv`` with auto-detection; ``types`` pins column types, ``options`` passes
     ``delim``, ``decimal_separator``, ``nullstr`` or ``header``."""
@@ -89,6 +93,8 @@ def csv_relation(paths: list[str], types: dict[str, str] | None, options: dict[s
         pairs = ", ".join(f"{quote_literal(k)}: {quote_literal(v)}" for k, v in types.items())
         parts.append(f"types = {{{pairs}}}")
     for key, value in (options or {}).items():
+        if key not in CSV_OPTIONS:  # the option's name is SQL text: only names we know
+            raise ValueError(f"unknown CSV reader option {key!r}")
         parts.append(f"{key} = {quote_literal(value)}")
     return f"read_csv({', '.join(parts)})"
 

@@ -219,3 +219,13 @@ def test_an_assembled_query_that_is_not_one_select_is_never_run():
     for sql in ["SELECT 1; SELECT 2", "COPY (SELECT 1) TO 'x.csv'", "SELECT 1 FROM"]:
         with pytest.raises(bigpanel.BigpanelError, match="not exactly one SELECT"):
             source.check_select(sql)
+
+
+def test_csv_reader_options_are_names_we_know(tmp_path):
+    # Source: the security issue (no user text reaches SQL except through the parse tree or quoting).
+    path = tmp_path / "depots.csv"
+    path.write_text("depot,month,parcels\n1,1,2.0\n")
+    with pytest.raises(InputError, match="not a CSV reader option"):
+        source.open_source(str(path), csv_options={"delim = ',') ; COPY (SELECT 1) TO 'x.csv' --": ","})
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["depots.csv"]
+    assert source.open_source(str(path), csv_options={"nullstr": "NA"}).csv_options == (("nullstr", "NA"),)
