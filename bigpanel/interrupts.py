@@ -9,8 +9,9 @@ A handler runs only in the main thread, and only between Python bytecodes: while
 runs a query it checks for signals but lets the query finish first. So the handler also
 calls ``interrupt()`` on every live connection and cursor (the registry below, filled by
 :mod:`bigpanel.source`), which stops running queries within milliseconds; a connection
-opened after the signal is refused. Only the first signal raises :class:`Interrupted`;
-later ones are ignored so that clean-up is not cut short.
+opened after the signal is refused. Only the first signal raises :class:`Interrupted`,
+and only until the command returns; later ones are ignored so that clean-up is not cut
+short.
 
 Private folders (DuckDB's spill files) are registered here too; the session that made one
 removes it when it closes, and the console entry removes any left over, after a signal as
@@ -31,6 +32,7 @@ _lock = threading.RLock()  # re-entrant: the handler may run while the main thre
 _connections: dict[int, Any] = {}
 _folders: set[str] = set()
 _received: int | None = None
+_closing = False  # the command has returned: a signal now is recorded, not raised
 
 
 class Interrupted(BaseException):
@@ -141,7 +143,8 @@ def _on_signal(signum: int, frame: object) -> None:
         return
     _received = signum
     interrupt_all()
-    raise Interrupted(signum)
+    if not _closing:
+        raise Interrupted(signum)
 
 
 def install() -> None:
@@ -152,6 +155,7 @@ def install() -> None:
 
 def run(argv: list[str] | None = None) -> int:
     """Run the command line with stop signals handled; return the exit code."""
+    global _closing
     install()
     code = 1
     try:
@@ -160,7 +164,7 @@ def run(argv: list[str] | None = None) -> int:
 
             code = cli_main(argv)
         finally:
-            signal.pthread_sigmask(signal.SIG_BLOCK, STOP_SIGNALS)  # clean-up runs to its end
+            _closing = True  # from here on clean-up runs to its end
     except Interrupted:
         pass
     close_all()
@@ -175,4 +179,6 @@ def main() -> None:
     """The ``bigpanel`` console script."""
     code = run()
     sys.stdout.flush()
-    os._exit(code) if _received is not None else sys.exit(code)
+    if _received is not None:
+        os._exit(code)  # nothing left to clean; skip waiting on threads at interpreter exit
+    sys.exit(code)

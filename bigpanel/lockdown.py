@@ -137,10 +137,12 @@ class LockedConnection:
 
     def execute(self, sql: str, params: Any = None) -> duckdb.DuckDBPyConnection:
         self._check(sql)
+        interrupts.raise_if_received()  # a query about to start after a stop signal
         return self.raw.execute(sql, params) if params else self.raw.execute(sql)
 
     def sql(self, sql: str, params: Any = None) -> duckdb.DuckDBPyRelation:
         self._check(sql)
+        interrupts.raise_if_received()
         return self.raw.sql(sql, params=params) if params else self.raw.sql(sql)
 
     def cursor(self) -> LockedConnection:
