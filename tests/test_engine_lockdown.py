@@ -187,6 +187,20 @@ def test_query_source_reads_exactly_its_own_files(root, monkeypatch):
     assert report.n_rows == make_panel(seed=5).num_rows
 
 
+def test_query_inside_a_duckdb_file_may_read_the_files_it_names(root):
+    query = f"SELECT d.* FROM depots d JOIN '{root / 'parts' / 'a.parquet'}' a USING (depot, month)"
+    source = open_source(root / "data" / "depots.duckdb", query=query)
+    with Session(source) as session:
+        raw = session.con.raw
+        allowed = raw.execute("SELECT value FROM duckdb_settings() WHERE name = 'allowed_paths'").fetchone()[0]
+        # DuckDB adds the attached file and its write-ahead logs itself (hence the SELECT-only guard)
+        db = root / "data" / "depots.duckdb"
+        assert set(allowed.strip("[]").split(", ")) == {str(root / "parts" / "a.parquet"), str(db), f"{db}.wal",
+                                                         f"{db}.wal.checkpoint", f"{db}.wal.recovery"}
+        assert "Permission Error" in refused_by_engine(raw, f"SELECT * FROM '{root / 'parts' / 'b.parquet'}'")
+    assert inspect_panel(source, "depot", "month").n_rows == make_panel(seed=5).num_rows // 2
+
+
 def test_query_that_reads_no_file_may_read_none(root):
     with Session(open_source(None, query="SELECT range AS depot, range % 3 AS month FROM range(30)")) as session:
         raw = session.con.raw
