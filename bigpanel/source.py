@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import glob as globmod
 import json
+import numbers
 import os
 import re
 import threading
@@ -132,7 +133,7 @@ class Engine:
     temp_directory: str | None = None
 
     def __post_init__(self) -> None:
-        if self.threads is not None and (isinstance(self.threads, bool) or not isinstance(self.threads, int) or self.threads < 1):
+        if self.threads is not None and (isinstance(self.threads, bool) or not isinstance(self.threads, numbers.Integral) or self.threads < 1):
             raise InputError(f"Option --threads must be a whole number of at least 1, got {str(self.threads)[:40]}. "
                              "Give a positive count, or leave it out to use all cores.")
         if self.memory_limit is not None:
