@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING, Annotated, Optional
 import typer
 
 from . import interrupts
-from .errors import BigpanelError, BigpanelWarning, InputError
+from .errors import BigpanelError, BigpanelWarning, InputError, echo
 
 if TYPE_CHECKING:  # the source module imports DuckDB: only the commands that read data load it
     from .source import Source
@@ -79,7 +79,7 @@ def _parse_csv_types(text: str | None) -> dict[str, str] | None:
     for item in _TYPE_SEPARATOR.split(text):
         name, sep, duck_type = item.partition("=")
         if not sep or not name.strip() or not duck_type.strip():
-            raise InputError(f"Option --csv-types has an item '{item.strip()}' that is not col=TYPE. "
+            raise InputError(f"Option --csv-types has an item '{echo(item.strip())}' that is not col=TYPE. "
                              "Write pairs like \"month=DATE,depot=VARCHAR\".")
         out[name.strip()] = duck_type.strip()
     return out

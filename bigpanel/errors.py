@@ -52,19 +52,40 @@ def unknown_column(column: str, where: str, available: Iterable[str]) -> InputEr
         The columns the source does have.
     """
     names = list(available)
-    close = difflib.get_close_matches(column, names, n=3, cutoff=0.5)
-    hint = f" Did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+    close = difflib.get_close_matches(column, names, n=3, cutoff=0.5) if len(column) <= ECHO_LIMIT else []
+    hint = f" Did you mean {', '.join(repr(echo(c)) for c in close)}?" if close else ""
     shown = ", ".join(names[:20]) + (", ..." if len(names) > 20 else "")
-    return InputError(f"Column '{column}' not found in {where}.{hint} Available: {shown}.")
+    return InputError(f"Column '{echo(column)}' not found in {where}.{hint} Available: {echo(shown, 2 * ECHO_LIMIT)}.")
 
 
-ECHO_LIMIT = 200  # most characters of the user's own text repeated in a message
+ECHO_LIMIT = 200
+"""Longest piece of the user's own text (a term, filter, query, option value) repeated in
+a message; longer text is cut in the middle, so both its start and its end stay visible."""
+
+_ESCAPES = {"\\": "\\\\", "\n": "\\n", "\r": "\\r", "\t": "\\t"}
+
+
+def echo(text: object, limit: int = ECHO_LIMIT) -> str:
+    """The user's text as a message may repeat it: on one line, at most about ``limit``
+    characters. Every message that repeats user text goes through here (or :func:`shown`).
+
+    Backslashes, newlines, tabs and other control characters are written as escapes
+    (``\\n``, ``\\x0f``), so a message is one line and a smuggled newline stays visible;
+    text longer than ``limit`` keeps its first and last characters around
+    `` ... (N characters) ... ``.
+    """
+    raw = str(text)
+    flat = raw if raw.isprintable() and "\\" not in raw else "".join(
+        _ESCAPES.get(ch) or (ch if ch.isprintable() else f"\\x{ord(ch):02x}" if ord(ch) < 256 else f"\\u{ord(ch):04x}")
+        for ch in raw)
+    if len(flat) <= limit:
+        return flat
+    marker = f" ... ({len(raw):,} characters) ... "
+    keep = max(limit - len(marker), 20)
+    head = keep - keep // 3
+    return flat[:head] + marker + flat[len(flat) - (keep - head):]
 
 
 def shown(text: object, limit: int = ECHO_LIMIT) -> str:
-    """The user's text quoted for a message: on one line, and cut after ``limit`` characters."""
-    raw = str(text)
-    flat = raw.replace("\\", "\\\\").replace("\n", "\\n").replace("\r", "\\r").replace("\t", "\\t")
-    if len(flat) > limit:
-        return f"'{flat[:limit]}...' ({len(raw):,} characters)"
-    return f"'{flat}'"
+    """:func:`echo` in single quotes: the user's text quoted for a message."""
+    return f"'{echo(text, limit)}'"

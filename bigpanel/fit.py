@@ -17,7 +17,6 @@ The plan for one fit:
 
 from __future__ import annotations
 
-import math
 import re
 import warnings
 from dataclasses import dataclass, field
@@ -28,10 +27,11 @@ import scipy.special  # t and F tails; scipy.stats alone takes ~0.8 s to import
 
 from . import moments, sqlbuild, variance
 from .errors import (
-    BigpanelWarning, DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError, shown,
+    BigpanelWarning, DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError, echo,
+    shown,
 )  # fmt: skip
 from .results import Coefficient, FitResult
-from .solve import solve_normal
+from .solve import overflowing_columns, power_of_two_scale, solve_normal, unscale
 from .source import Engine, Session, Source, is_integer, is_numeric, open_source
 from .spec import FitSpec
 
@@ -165,10 +165,9 @@ class _Fit:
         bare = expr.strip().strip('"')
         if bare in cols:
             if not is_numeric(cols[bare]):
-                raise InputError(
-                    f"Column '{bare}' in {self.s.source.label} has type {cols[bare]}, not a number. "
-                    f"Use levels({bare}) for a categorical column, or convert it in an expression."
-                )
+                advice = (f"Use levels({bare}) for a categorical column, or convert it in an expression." if what == "Term"
+                          else "Give a numeric outcome, or convert it in an expression.")
+                raise InputError(f"Column '{bare}' in {self.s.source.label} has type {cols[bare]}, not a number. {advice}")
             return
         kind = self.s.describe_expression(expr, what, text)
         if not is_numeric(kind):
@@ -195,7 +194,8 @@ class _Fit:
                 levels = self._levels(quoted)
                 base = term.base if term.base is not None else (levels[0] if levels else None)
                 if base not in levels:
-                    raise InputError(f"Term '{term.text}': base level '{base}' does not occur in column '{term.expr}'. Levels: {', '.join(levels[:10])}.")
+                    raise InputError(f"Term '{echo(term.text)}': base level '{echo(base)}' does not occur in column '{echo(term.expr)}'; "
+                                     f"name one of its levels ({echo(', '.join(map(str, levels[:10])))}) as the base.")
                 for level in levels:
                     if level != base:
                         labels.append(f"{term.expr}[{level}]")
@@ -258,18 +258,20 @@ class _Fit:
     def _valid(self, q: int) -> str:
         return sqlbuild.valid_predicate(q, self.spec.estimator == "first-difference", self.spec.period_step)
 
-    def _shifts(self, design: _Design) -> np.ndarray:
+    def _shifts(self, design: _Design) -> tuple[np.ndarray, np.ndarray]:
+        """Shift and scale (a power of two, see solve.py) per design column, from the first rows."""
         q = len(design.columns)
-        if self.spec.estimator != "within" and not self.spec.intercept:
-            return np.zeros(q)
-        zero = {f"s{j}": 0.0 for j in range(q)}
+        zero = {f"s{j}": 0.0 for j in range(q)} | {f"d{j}": 1.0 for j in range(q)}
         spec = self.spec
         head = sqlbuild.head_sql(self.s.source.filtered(), PROBE_ROWS)
         rows = sqlbuild.design_rows_sql(head, spec.unit, spec.period, list(spec.cluster), design.columns, spec.period_step)
         sql = sqlbuild.probe_sql(rows, q)  # levels, not differences: only the constant's column moves
         row = self.s.run(sql, zero).to_pylist()[0]
+        scales = np.array([power_of_two_scale(row[f"m{j}"]) for j in range(q)])
+        if spec.estimator != "within" and not spec.intercept:
+            return np.zeros(q), scales
         shifts = np.array([row[f"a{j}"] if row[f"a{j}"] is not None else 0.0 for j in range(q)], dtype=float)
-        return np.where(np.isfinite(shifts), shifts, 0.0)
+        return np.where(np.isfinite(shifts), shifts, 0.0), scales
 
     # ------------------------------------------------------------------ passes
     def _mode(self) -> str:
@@ -532,8 +534,8 @@ class _Fit:
             self._duplicates(only_if_any=True)
         design = self._design()
         q = len(design.columns)
-        shifts = self._shifts(design)
-        params = {f"s{j}": float(shifts[j]) for j in range(q)}
+        shifts, scales = self._shifts(design)
+        params = {f"s{j}": float(shifts[j]) for j in range(q)} | {f"d{j}": float(scales[j]) for j in range(q)}
         chunks = moments.plan_chunks(s, spec.unit)
         pilot = self._pilot(design, params)
         # Sorted extracts are differenced in scan order; if any consecutive pair was missed
@@ -561,9 +563,13 @@ class _Fit:
 
     def _empty_message(self) -> str:
         src = self.s.source
-        where = f" after the filter '{src.where}'" if src.where else ""
-        return (f"No usable rows in {src.label}{where}: every row was filtered out or has a missing value in a term. "
-                "Check the filter and the columns.")
+        where = f" after the filter '{echo(src.where)}'" if src.where else ""
+        pairs, check = "", "the filter and the columns"
+        if self.spec.estimator == "first-difference" or any(t.lag for t in self.spec.terms):
+            pairs = f", or (differences and lags) lacks the unit's period {self.spec.period_step:,} before it"
+            check = "the filter, the columns and the period step"
+        return (f"No usable rows in {src.label}{where}: every row was filtered out or lacks a value of the unit "
+                f"'{echo(self.spec.unit)}' or of a term{pairs}. Check {check}.")
 
     def _rows_after_filter(self) -> int:
         """Rows left by the filter (footers only for unfiltered Parquet; counted once)."""
@@ -633,6 +639,9 @@ class _Fit:
         extra = acc.extra_labels or (["(intercept)"] if mode == "intercept" else [])
         labels = list(design.labels) + extra
         is_effect = list(design.is_effect) + (acc.extra_effect or [False] * len(extra))
+        overflow = overflowing_columns(acc.total)
+        if overflow:
+            raise _too_large([(labels + [spec.outcome])[j] for j in overflow], "its sums of squares overflow")
         h, g, yy = acc.total[:k, :k], acc.total[:k, k], acc.total[k, k]
         terms_dropped: dict[str, str] = {}
         zero_var = np.zeros(k, dtype=bool)
@@ -650,7 +659,8 @@ class _Fit:
         if terms_dropped:
             warnings.warn("Terms left out: " + ", ".join(f"{t} ({w})" for t, w in terms_dropped.items()), DroppedTermsWarning, stacklevel=3)
         if not sol.kept.any():
-            raise EstimationError("No term can be estimated: " + "; ".join(f"{t}: {w}" for t, w in terms_dropped.items()) + ".")
+            raise EstimationError("No term can be estimated: " + echo("; ".join(f"{t}: {w}" for t, w in terms_dropped.items()))
+                                  + ". Give terms that change within units and are not combinations of each other.")
         coef = sol.coef
         rss = max(float(yy - g @ coef), 0.0)
         if mode == "intercept":
@@ -662,22 +672,27 @@ class _Fit:
         n_kept = int(sol.kept.sum())
         absorbed = acc.n_units if spec.estimator == "within" else 0
         var = self._variance(design, params, acc, sol, rss, n_obs, n_kept, absorbed, mode, chunks)
-        vcov = var.vcov
-        estimate = coef.copy()
+        # columns were scaled by powers of two in SQL (solve.py); back to the user's units,
+        # with the intercept moved back from the shifted columns:
+        # y - c_y = b0' + sum b_j (x_j - c_j), so the intercept is b0' + c_y - c'b
+        col_scale = np.ones(k)
+        col_scale[: len(design.labels)] = [params[f"d{j}"] for j in range(len(design.labels))]
+        y_scale = params[f"d{len(design.columns) - 1}"]
         if mode == "intercept" and not is_effect[k - 1]:
-            # shifted columns: y - c_y = b0' + sum b_j (x_j - c_j); the intercept is b0' + c_y - c'b
-            c = np.array([0.0 if spec.estimator == "first-difference" else shifts[j] for j in range(k - 1)])
+            c = np.array([0.0 if spec.estimator == "first-difference" else shifts[j] for j in range(k - 1)] + [0.0])
             c_y = 0.0 if spec.estimator == "first-difference" else shifts[-1]
-            t = np.eye(k)
-            t[k - 1, : k - 1] = -c
-            estimate[k - 1] = coef[k - 1] + c_y - c @ coef[: k - 1]
-            vcov = t @ vcov @ t.T
+            estimate, std_error, overflow = unscale(coef, var.vcov, col_scale, y_scale, k - 1, c, c_y)
+        else:
+            estimate, std_error, overflow = unscale(coef, var.vcov, col_scale, y_scale)
+        overflow = [j for j in overflow if sol.kept[j] and not is_effect[j]]
+        if overflow:
+            raise _too_large([labels[j] for j in overflow], "its estimate or standard error is beyond a double's range")
         crit = float(scipy.special.stdtrit(var.df, 0.975)) if var.df > 0 else float("nan")
         coefs = []
         for j in range(k):
             if is_effect[j] or not sol.kept[j]:
                 continue
-            se = math.sqrt(vcov[j, j]) if vcov[j, j] >= 0 else float("nan")
+            se = float(std_error[j])
             tval = estimate[j] / se if se > 0 else float("nan")
             p = 2 * float(scipy.special.stdtr(var.df, -abs(tval))) if var.df > 0 else float("nan")
             coefs.append(Coefficient(labels[j], float(estimate[j]), se, float(tval), float(p),
@@ -685,8 +700,9 @@ class _Fit:
         slopes = [j for j in range(k) if sol.kept[j] and not is_effect[j] and labels[j] != "(intercept)"]
         f_stat, f_p = float("nan"), float("nan")
         if slopes:
-            vs = vcov[np.ix_(slopes, slopes)]
-            bs = estimate[slopes]
+            # the Wald statistic does not change when columns are rescaled: take the scaled ones
+            vs = var.vcov[np.ix_(slopes, slopes)]
+            bs = coef[slopes]
             try:
                 f_stat = float(bs @ np.linalg.solve(vs, bs) / len(slopes))
                 f_p = float(scipy.special.fdtrc(len(slopes), var.df, f_stat))
@@ -749,6 +765,11 @@ class _Fit:
             return _embed(v, len(sol.coef))
         kp = (n_kept + (0 if nested[0] else absorbed), n_kept + (0 if nested[1] else absorbed), n_kept + absorbed)
         return _embed(variance.two_way(inverse, tuple(meats), tuple(counts), n_obs, kp), len(sol.coef))
+
+
+def _too_large(names: list[str], why: str) -> InputError:
+    return InputError(f"Values of {', '.join(shown(n) for n in names)} are out of a double's reach for this fit ({why}). "
+                      "Rescale the term or the outcome by a power of ten in the term or a query, and scale the estimate back.")
 
 
 def _embed(var: variance.Variance, dim: int) -> variance.Variance:

@@ -28,7 +28,7 @@ from typing import Any
 import duckdb
 
 from . import interrupts, sqlbuild
-from .errors import InputError
+from .errors import InputError, echo
 
 _REMOTE = re.compile(r"^\s*[A-Za-z][A-Za-z0-9+.\-]*://")
 _WILDCARDS = "*?["
@@ -42,12 +42,8 @@ def is_remote(path: str) -> bool:
 
 def refuse_remote_source(path: str) -> None:
     if is_remote(path):
-        raise InputError(f"Source '{_short(path)}' is a remote URL; bigpanel reads local files only. "
+        raise InputError(f"Source '{echo(path)}' is a remote URL; bigpanel reads local files only. "
                          "Download the data and point at the local copy.")
-
-
-def _short(text: str, limit: int = 200) -> str:
-    return text if len(text) <= limit else text[:limit] + "..."
 
 
 def query_reads(tree: dict) -> list[str]:
@@ -96,7 +92,7 @@ def allowed_for_query(reads: Iterable[str]) -> tuple[list[str], list[str]]:
     folders: list[str] = []
     for text in reads:
         if is_remote(text):
-            raise InputError(f"Option --query reads the remote URL '{_short(text)}'; bigpanel reads local files only. "
+            raise InputError(f"Option --query reads the remote URL '{echo(text)}'; bigpanel reads local files only. "
                              "Download the data and read the local copy.")
         if any(c in text for c in _WILDCARDS):
             parts = text.split(os.sep)

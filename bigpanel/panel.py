@@ -6,7 +6,12 @@ runs them and reads their rows):
 
 0. ``checkup_shifts``: the mean of each numeric column over the first rows (a tiny read),
    subtracted in the scans below, so that values far from zero (a large offset) keep
-   their digits and the parallel sums differ from run to run only in the last bits.
+   their digits and the parallel sums differ from run to run only in the last bits; and
+   their largest magnitude, from which a power-of-two scale is chosen that brings the
+   values near 1 (exact: no digit changes), so that squares of very large or very small
+   values neither overflow nor underflow.
+Values that are NaN or infinite are counted apart ("not finite") and otherwise left out,
+like missing values.
 1. ``checkup_periods``: GROUP BY period. Row counts, the distinct periods (from which the
    regular step is found here, in Python, over at most ``MAX_PERIODS`` values), and per
    period the count, mean and sum of squared deviations of each column. The periods are
@@ -41,9 +46,10 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.parquet as pq
 
-from . import moments, sqlbuild
-from .errors import InputError
+from . import moments, solve, sqlbuild
+from .errors import ECHO_LIMIT, InputError, echo
 from .source import Session, Source, is_integer, is_numeric
 
 MAX_PERIODS = 1_000_000
@@ -78,12 +84,16 @@ class ColumnCheck:
     ``within_estimable`` is False when the column never changes inside a unit, so that its
     effect cannot be estimated by within or first-difference regressions. The numeric
     fields are None for other columns; the shares are None for a column with no spread.
+    ``n_not_finite`` counts NaN and infinite values, which are left out of every figure
+    like missing ones. ``too_large`` is True when the column's sums of squares overflow a
+    double even after scaling (std, shares and ``within_estimable`` are then None).
     """
 
     name: str
     dtype: str
     numeric: bool
     n_missing: int
+    n_not_finite: int = 0
     mean: float | None = None
     std: float | None = None
     min: float | None = None
@@ -92,6 +102,7 @@ class ColumnCheck:
     between_share: float | None = None
     units_varying: int | None = None
     within_estimable: bool | None = None
+    too_large: bool = False
 
 
 @dataclass(frozen=True)
@@ -105,7 +116,9 @@ class PanelReport:
     ``n_grid_periods`` is the length of the regular grid from the first to the last period
     (``n_empty_periods`` of them have no rows at all); ``n_missing_unit_periods`` counts
     grid periods absent inside units' own spans. ``duplicate_examples`` holds
-    (unit, period, rows) for the first offending keys, in key order.
+    (unit, period, rows) for the first offending keys, in key order. ``absent_in_files``
+    holds (column, files without it, the first of them) for checked columns that some
+    files of a Parquet source lack (their rows count as missing).
     """
 
     source: str
@@ -135,6 +148,7 @@ class PanelReport:
     n_duplicate_rows: int
     duplicate_examples: tuple[tuple[Any, Any, int], ...]
     columns: tuple[ColumnCheck, ...]
+    absent_in_files: tuple[tuple[str, int, str], ...] = ()
 
     @property
     def balanced_share(self) -> float:
@@ -150,11 +164,11 @@ class PanelReport:
         """One sentence naming the first duplicate keys, or None when every key is unique."""
         if not self.n_duplicate_keys:
             return None
-        shown = ", ".join(f"({_show(u)}, {_show(p)})" for u, p, _ in self.duplicate_examples)
+        shown = echo(", ".join(f"({_show(u)}, {_show(p)})" for u, p, _ in self.duplicate_examples), 2 * ECHO_LIMIT)
         more = ", ..." if self.n_duplicate_keys > len(self.duplicate_examples) else ""
         plural = "s" if self.n_duplicate_keys != 1 else ""
         return (
-            f"Source {self.source} has {self.n_duplicate_keys:,} duplicate ({self.unit}, {self.period}) "
+            f"Source {self.source} has {self.n_duplicate_keys:,} duplicate ({echo(self.unit)}, {echo(self.period)}) "
             f"key{plural}, first {shown}{more}; keep one row per unit and period (filter or aggregate "
             "the source with a query) before estimating."
         )
@@ -173,9 +187,9 @@ class PanelReport:
 
         schema = {
             "name": pl.String, "dtype": pl.String, "numeric": pl.Boolean, "n_missing": pl.Int64,
-            "mean": pl.Float64, "std": pl.Float64, "min": pl.Float64, "max": pl.Float64,
+            "n_not_finite": pl.Int64, "mean": pl.Float64, "std": pl.Float64, "min": pl.Float64, "max": pl.Float64,
             "within_share": pl.Float64, "between_share": pl.Float64, "units_varying": pl.Int64,
-            "within_estimable": pl.Boolean,
+            "within_estimable": pl.Boolean, "too_large": pl.Boolean,
         }  # fmt: skip
         data = {name: [getattr(c, name) for c in self.columns] for name in schema}
         return pl.DataFrame(data, schema=schema)
@@ -264,6 +278,7 @@ def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str]
         n_duplicate_rows=int(units["duplicate_rows"]),
         duplicate_examples=tuple(duplicates),
         columns=column_checks,
+        absent_in_files=_absent_in_files(source, checked),
     )
 
 
@@ -271,19 +286,19 @@ def _check_arguments(session: Session, unit: str, period: str, columns: Sequence
     """Validate the key and column names; return the period kind (integer/date/timestamp)."""
     label = session.source.label
     if unit == period:
-        raise InputError(f"Unit and period are the same column '{unit}'. Give two different columns.")
+        raise InputError(f"Unit and period are the same column '{echo(unit)}'. Give two different columns.")
     if columns is not None:
         if isinstance(columns, str):
-            raise InputError(f"Option 'columns' must be a list of column names, got the text '{columns}'.")
+            raise InputError(f"Option 'columns' must be a list of column names, got the text '{echo(columns)}'.")
         for name in (unit, period):
             if name in columns:
-                raise InputError(f"Column '{name}' is a key of the panel, not a column to check. Leave it out of 'columns'.")
+                raise InputError(f"Column '{echo(name)}' is a key of the panel, not a column to check. Leave it out of 'columns'.")
     session.require_columns([unit, period, *(columns or [])], numeric=list(columns or []))
     duck_type = session.columns()[period]
     kind = _period_kind(duck_type)
     if kind is None:
         raise InputError(
-            f"Column '{period}' in {label} has type {duck_type}, which cannot be a period. "
+            f"Column '{echo(period)}' in {label} has type {duck_type}, which cannot be a period. "
             "Use an integer, DATE or TIMESTAMP column, or convert it in a query (for example CAST(... AS DATE))."
         )
     return kind
@@ -302,26 +317,31 @@ def _period_kind(duck_type: str) -> str | None:
 
 def _no_rows_message(source: Source, unit: str, period: str, n_rows: np.ndarray) -> str:
     if int(np.sum(n_rows)) == 0:
-        where = f" after the filter '{source.where}'" if source.where else ""
+        where = f" after the filter '{echo(source.where)}'" if source.where else ""
         return f"Source {source.label} has no rows{where}. Loosen the filter or check the source."
-    return f"No row of {source.label} has both a unit ('{unit}') and a period ('{period}'). Check the key columns."
+    return f"No row of {source.label} has both a unit ('{echo(unit)}') and a period ('{echo(period)}'). Check the key columns."
 
 
 # ---------------------------------------------------------------- scan 1: periods
 
 
-def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> dict[int, float]:
-    """Column index -> shift, for the numeric columns (0.0 where the first rows have no value)."""
+def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> dict[int, tuple[float, float]]:
+    """Column index -> (shift, scale) for the numeric columns: the mean of the first rows'
+    finite values (0.0 when there are none) and a power of two near 1 / their magnitude."""
     indices = [j for j, c in enumerate(checked) if c in numeric]
     if not indices:
         return {}
     sql = sqlbuild.checkup_shift_probe_sql(session.source.filtered(), checked, indices)
     row = session.run(sql, {"probe_rows": PROBE_ROWS}).to_pylist()[0]
-    return {j: row[f"c_{j}"] if row[f"c_{j}"] is not None and math.isfinite(row[f"c_{j}"]) else 0.0 for j in indices}
+    out = {}
+    for j in indices:
+        shift = row[f"c_{j}"] if row[f"c_{j}"] is not None and math.isfinite(row[f"c_{j}"]) else 0.0
+        out[j] = (shift, solve.power_of_two_scale(row[f"m_{j}"]))
+    return out
 
 
 def _scan_periods(session: Session, chunks: list[moments.Chunk], unit: str, period_value: str, checked: list[str],
-                  shifts: dict[int, float]) -> dict:
+                  shifts: dict[int, tuple[float, float]]) -> dict:
     """Scan 1 over each chunk; the chunks' period rows are kept side by side (every figure
     taken from them is a sum, or a two-pass formula valid over any partition of the rows)."""
     if len(chunks) > 1:
@@ -423,15 +443,18 @@ def _from_numpy(stamp: np.datetime64, kind: str) -> Any:
     return value.date() if kind == "date" else value
 
 
-def _shift_params(shifts: dict[int, float]) -> dict[str, float]:
-    return {f"c_{j}": float(c) for j, c in shifts.items()}
+def _shift_params(shifts: dict[int, tuple[float, float]]) -> dict[str, float]:
+    params = {}
+    for j, (shift, scale) in shifts.items():
+        params[f"c_{j}"], params[f"d_{j}"] = float(shift), float(scale)
+    return params
 
 
 # ---------------------------------------------------------------- scan 2: units
 
 
 def _scan_units(session: Session, chunks: list[moments.Chunk], unit: str, period_value: str, checked: list[str],
-                shifts: dict[int, float], grid: _Grid) -> dict:
+                shifts: dict[int, tuple[float, float]], grid: _Grid) -> dict:
     """Scan 2 over each chunk (every unit lies in one chunk), added up in chunk order."""
     bitmap = grid.n_slots <= BITMAP_MAX_SLOTS
     params = {"first": grid.first_ordinal, "step": grid.slot_step, "n_periods": grid.n_periods} | _shift_params(shifts)
@@ -453,7 +476,7 @@ def _scan_units(session: Session, chunks: list[moments.Chunk], unit: str, period
                     histogram[n_periods] = histogram.get(n_periods, 0) + n_units
             out[name] = histogram
         elif name.startswith("within_ss_"):
-            out[name] = math.fsum(values)
+            out[name] = math.fsum(values) if all(math.isfinite(v) for v in values) else math.inf
         else:
             out[name] = sum(values)
     return out
@@ -486,27 +509,42 @@ def _scan_duplicates(session: Session, chunks: list[moments.Chunk], unit: str, p
 # ---------------------------------------------------------------- columns
 
 
-def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, shift: float | None) -> ColumnCheck:
-    """Column j's figures; ``shift`` (None for a non-numeric column) was subtracted in the scans."""
+def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict,
+                  shift: tuple[float, float] | None) -> ColumnCheck:
+    """Column j's figures; ``shift`` = (shift, scale), None for a non-numeric column, is what
+    the scans subtracted and multiplied by."""
     keyed = by_period["keyed"]
     n_rows = by_period["n_rows"][keyed]
     counts = _floats(by_period[f"n_{j}"])[keyed]
-    n_missing = int(n_rows.sum() - counts.sum())
+    n_not_finite = 0 if shift is None else int(_floats(by_period[f"nf_{j}"])[keyed].sum())
+    n_missing = int(n_rows.sum() - counts.sum()) - n_not_finite
     if shift is None:
         return ColumnCheck(name=name, dtype=dtype, numeric=False, n_missing=n_missing)
     n = float(counts.sum())
     if n == 0:
-        return ColumnCheck(name=name, dtype=dtype, numeric=True, n_missing=n_missing, units_varying=0, within_estimable=False)
+        return ColumnCheck(name=name, dtype=dtype, numeric=True, n_missing=n_missing, n_not_finite=n_not_finite,
+                           units_varying=0, within_estimable=False)
+    offset, scale = shift
     present = counts > 0
     counts = counts[present]
     means = _floats(by_period[f"mean_{j}"])[keyed][present]
     within_period = _floats(by_period[f"ss_{j}"])[keyed][present]
+    low = float(np.min(_floats(by_period[f"min_{j}"])[keyed][present]))
+    high = float(np.max(_floats(by_period[f"max_{j}"])[keyed][present]))
     # Two passes over the period means (exact, few values): total SS = sum of the periods'
-    # own sums of squares + sum of n_t (mean_t - mean)^2.
-    mean = math.fsum(counts * means) / n
-    total_ss = math.fsum(within_period) + math.fsum(counts * (means - mean) ** 2)
+    # own sums of squares + sum of n_t (mean_t - mean)^2, all in scaled units.
+    with np.errstate(over="ignore", invalid="ignore"):
+        weighted = counts * means
+        spread = counts * (means - math.fsum(weighted) / n) ** 2 if np.isfinite(weighted).all() else weighted
+    parts = (within_period, weighted, spread)
     within_ss = float(units[f"within_ss_{j}"] or 0.0)
     varying = int(units[f"varying_units_{j}"])
+    if not all(np.isfinite(p).all() for p in parts) or not math.isfinite(within_ss):
+        # values far larger than the first rows' (which set the scale): the squares overflow
+        return ColumnCheck(name=name, dtype=dtype, numeric=True, n_missing=n_missing, n_not_finite=n_not_finite,
+                           min=low, max=high, units_varying=varying, too_large=True)
+    mean = math.fsum(weighted) / n
+    total_ss = math.fsum(within_period) + math.fsum(spread)
     if total_ss > 0:
         # The two sums come from different scans; clip the rounding that can push a share
         # a few ulps past 0 or 1.
@@ -516,11 +554,10 @@ def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, s
         within_share = between_share = None
     estimable = varying > 0 and within_share is not None and within_share >= WITHIN_SHARE_FLOOR
     return ColumnCheck(
-        name=name, dtype=dtype, numeric=True, n_missing=n_missing,
-        mean=shift + mean,
-        std=math.sqrt(total_ss / (n - 1)) if n > 1 else None,
-        min=float(np.min(_floats(by_period[f"min_{j}"])[keyed][present])),
-        max=float(np.max(_floats(by_period[f"max_{j}"])[keyed][present])),
+        name=name, dtype=dtype, numeric=True, n_missing=n_missing, n_not_finite=n_not_finite,
+        mean=offset + mean / scale,
+        std=math.sqrt(total_ss / (n - 1)) / scale if n > 1 else None,
+        min=low, max=high,
         within_share=within_share, between_share=between_share,
         units_varying=varying, within_estimable=estimable,
     )  # fmt: skip
@@ -528,6 +565,20 @@ def _column_check(name: str, dtype: str, j: int, by_period: dict, units: dict, s
 
 def _floats(column) -> np.ndarray:
     return np.asarray(column.to_numpy(zero_copy_only=False), dtype=np.float64)
+
+
+def _absent_in_files(source: Source, checked: Sequence[str]) -> tuple[tuple[str, int, str], ...]:
+    """(column, files without it, the first such file) for checked columns that some of a
+    Parquet source's files lack (footers only; the files were read with union by name)."""
+    if source.kind != "parquet" or len(source.files) < 2:
+        return ()
+    missing: dict[str, list[str]] = {}
+    for f in source.files:
+        names = set(pq.read_schema(f).names)
+        for name in checked:
+            if name not in names:
+                missing.setdefault(name, []).append(f)
+    return tuple((name, len(files), files[0]) for name, files in missing.items())
 
 
 # ---------------------------------------------------------------- rendering
@@ -610,21 +661,38 @@ def _render(r: PanelReport, color: bool) -> str:
     lines.append("")
     name_width = max([len("column")] + [len(c.name) for c in r.columns])
     type_width = max([len("type")] + [len(c.dtype) for c in r.columns])
-    header = (f"  {'column':<{name_width}}  {'type':<{type_width}}  {'missing':>9}  {'mean':>11}  {'std':>11}  "
+    header = (f"  {'column':<{name_width}}  {'type':<{type_width}}  {'missing':>9}  {'not finite':>10}  {'mean':>11}  {'std':>11}  "
               f"{'within':>7}  {'between':>7}  {'units varying':>13}")
     lines.append("Columns (within/between: shares of the variance inside units and across unit means)")
     lines.append(header)
     for c in r.columns:
         varying = "-" if c.units_varying is None else f"{c.units_varying:,}"
-        row = (f"  {c.name:<{name_width}}  {c.dtype:<{type_width}}  {c.n_missing:>9,}  {_number(c.mean):>11}  "
+        not_finite = f"{c.n_not_finite:,}" if c.numeric else "-"
+        row = (f"  {c.name:<{name_width}}  {c.dtype:<{type_width}}  {c.n_missing:>9,}  {not_finite:>10}  {_number(c.mean):>11}  "
                f"{_number(c.std):>11}  {_share(c.within_share):>7}  {_share(c.between_share):>7}  {varying:>13}")
         if c.within_estimable is False:
-            row = bad(row + ("  no values" if c.mean is None else "  no change within units"))
+            row = bad(row + (("  no values" if not c.n_not_finite else "  no finite values") if c.mean is None else "  no change within units"))
+        elif c.too_large:
+            row = bad(row + "  too large to square")
         lines.append(row)
     if r.not_estimable:
         names = ", ".join(r.not_estimable)
         lines.append("")
         lines.append(bad(f"Not estimable by within or first-difference regressions (constant within every unit): {names}."))
+    not_finite = [c for c in r.columns if c.n_not_finite]
+    if not_finite:
+        shown = ", ".join(f"{c.name} ({c.n_not_finite:,})" for c in not_finite)
+        lines.append("")
+        lines.append(bad(f"Not finite (NaN or infinite; left out like missing values, and so are their rows in a fit): {shown}."))
+    too_large = [c.name for c in r.columns if c.too_large]
+    if too_large:
+        lines.append("")
+        lines.append(bad(f"Too large: the sums of squares of {', '.join(too_large)} overflow a double; "
+                         "divide the column by a power of ten in a query or term."))
+    if r.absent_in_files:
+        shown = ", ".join(f"{name} (absent from {_count(n, 'file')}, first {echo(first)})" for name, n, first in r.absent_in_files)
+        lines.append("")
+        lines.append(bad(f"Not in every file (their rows count as missing): {shown}."))
     if not r.columns:
         lines.append("  (no columns to check)")
     return "\n".join(lines)

@@ -3,10 +3,19 @@
 The normal equations H b = g are solved on the scaled matrix D H D (D = diag(H)^-1/2,
 so its diagonal is 1) with a column-pivoted QR: terms whose pivot falls below
 ``tol`` times the largest are collinear with earlier ones and are dropped by name.
+
+That scaling comes too late for columns whose squares overflow (values near 1e200) or
+underflow (near 1e-200) while the sums are accumulated in SQL. So each design column is
+first multiplied, in SQL, by a power of two that brings the first rows' values near 1
+(:func:`power_of_two_scale`: exact, no digit changes); the algebra runs on the scaled
+columns and :func:`unscale` turns coefficients and variances back into the user's units.
+What a double still cannot hold is found by :func:`overflowing_columns` and
+:func:`unscale`, for the caller to refuse by name.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -62,3 +71,60 @@ def solve_normal(h: np.ndarray, g: np.ndarray, tol: float = RANK_TOL, zero_varia
     eig = np.linalg.eigvalsh(hk)
     condition = float(eig[-1] / eig[0]) if eig[0] > 0 else float("inf")
     return Solution(coef, kept, inverse, condition)
+
+
+def power_of_two_scale(magnitude: float | None) -> float:
+    """2**-e with 2**(e-1) <= ``magnitude`` < 2**e: multiplying by it brings values of that
+    magnitude into [0.5, 1) without changing a digit. 1.0 for None, zero or non-finite input."""
+    if magnitude is None or not math.isfinite(magnitude) or magnitude == 0:
+        return 1.0
+    return math.ldexp(1.0, -math.frexp(magnitude)[1])
+
+
+def overflowing_columns(total: np.ndarray) -> list[int]:
+    """Indices of the columns of a cross-product matrix whose sums are not finite (an
+    overflow, or an infinite value that reached the sums)."""
+    bad = ~np.isfinite(total)
+    return [int(j) for j in np.flatnonzero(bad.any(axis=0))]
+
+
+def unscale(coef: np.ndarray, vcov: np.ndarray, scales: np.ndarray, y_scale: float, intercept: int | None = None,
+            shifts: np.ndarray | None = None, y_shift: float = 0.0) -> tuple[np.ndarray, np.ndarray, list[int]]:
+    """Estimates and standard errors in the user's units, from a fit on shifted, scaled
+    columns z_j = (x_j - shifts[j]) scales[j] and outcome (y - y_shift) y_scale.
+
+    The estimates are e = M b' (+ y_shift for the intercept), where M = diag(scales / y_scale)
+    except for the intercept's row (index ``intercept``, a constant column: scale 1), which
+    is (e_intercept - sum_j shifts[j] scales[j] e_j) / y_scale; their covariance is M V' M'.
+    A standard error is computed as |row| sqrt(r V' r') with r = row / |row| (max norm), so
+    that it stays finite whenever it is representable, even when M V' M' itself is not.
+    Also returns the indices whose estimate or standard error a double cannot hold.
+    """
+    k = len(coef)
+    with np.errstate(over="ignore"):
+        factor = np.asarray(scales, dtype=float) / y_scale
+    rows = np.diag(factor)
+    if intercept is not None:
+        rows[intercept] = 0.0
+        rows[intercept, intercept] = 1.0 / y_scale
+        if shifts is not None:
+            with np.errstate(over="ignore", invalid="ignore"):
+                others = [j for j in range(k) if j != intercept]
+                rows[intercept, others] = -np.asarray(shifts, dtype=float)[others] * factor[others]
+    estimate = np.zeros(k)
+    std_error = np.zeros(k)
+    with np.errstate(over="ignore", invalid="ignore"):
+        for j in range(k):
+            size = float(np.max(np.abs(rows[j])))
+            if size == 0 or not math.isfinite(size):
+                estimate[j] = std_error[j] = float("nan") if size else 0.0
+                continue
+            r = rows[j] / size
+            estimate[j] = size * float(r @ coef)
+            quad = float(r @ vcov @ r)
+            std_error[j] = size * math.sqrt(quad) if quad >= 0 else float("nan")
+        if intercept is not None:
+            estimate[intercept] += y_shift
+    bad = [j for j in range(k) if math.isinf(estimate[j]) or math.isinf(std_error[j])
+           or (rows[j].any() and not np.isfinite(rows[j]).all())]
+    return estimate, std_error, bad

@@ -23,7 +23,7 @@ import duckdb
 import pyarrow.parquet as pq
 
 from . import interrupts, lockdown, sqlbuild
-from .errors import InputError, shown, unknown_column
+from .errors import InputError, echo, shown, unknown_column
 
 INTEGER_TYPES = (
     "TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
@@ -113,6 +113,7 @@ def check_select(sql: str) -> None:
 _checked_queries: set[str] = set()
 
 
+MAX_THREADS = max(1024, 4 * (os.cpu_count() or 1))  # beyond any machine; DuckDB aborts the process on absurd counts
 _SIZE = re.compile(
     r"^\s*(\d+(?:\.\d*)?|\.\d+)\s*(b|bytes?|k|kb|kib|kilobytes?|m|mb|mib|megabytes?|g|gb|gib|gigabytes?|"
     r"t|tb|tib|terabytes?|%)\s*$",
@@ -133,20 +134,21 @@ class Engine:
     temp_directory: str | None = None
 
     def __post_init__(self) -> None:
-        if self.threads is not None and (isinstance(self.threads, bool) or not isinstance(self.threads, numbers.Integral) or self.threads < 1):
-            raise InputError(f"Option --threads must be a whole number of at least 1, got {str(self.threads)[:40]}. "
-                             "Give a positive count, or leave it out to use all cores.")
+        if self.threads is not None and (isinstance(self.threads, bool) or not isinstance(self.threads, numbers.Integral)
+                                         or not 1 <= self.threads <= MAX_THREADS):
+            raise InputError(f"Option --threads must be a whole number from 1 to {MAX_THREADS}, got {echo(self.threads, 40)}. "
+                             "Give a count up to the machine's cores, or leave it out to use all cores.")
         if self.memory_limit is not None:
             match = _SIZE.match(str(self.memory_limit))
             value = float(match.group(1)) if match else 0.0
             if not match or value <= 0 or (match.group(2) == "%" and value > 100):
                 raise InputError(
-                    f"Option --memory-limit must be a positive size such as 500MB, 4GB or 2GiB, got '{str(self.memory_limit)[:40]}'. "
+                    f"Option --memory-limit must be a positive size such as 500MB, 4GB or 2GiB, got '{echo(self.memory_limit, 40)}'. "
                     "Give a number with a unit (KB, MB, GB, TB or KiB, MiB, GiB, TiB), or leave the option out for no limit.")
         if self.temp_directory is not None:
             problem = _unwritable_folder(str(self.temp_directory))
             if problem:
-                raise InputError(f"Option --temp-directory names '{str(self.temp_directory)[:200]}', {problem}. "
+                raise InputError(f"Option --temp-directory names '{echo(self.temp_directory)}', {problem}. "
                                  "Give a folder you can write to, or leave the option out to use the system's temporary folder.")
 
     def settings(self, spill_folder: str | None, threads: int | None = None) -> list[str]:
@@ -168,20 +170,21 @@ class Engine:
 
 
 def _unwritable_folder(path: str) -> str | None:
-    """Why ``path`` cannot be (made into) a writable folder, or None when it can."""
+    """Why ``path`` cannot be made (if missing) and written to, or None when it can. The
+    folder is made and a probe folder created and removed in it: permission bits alone
+    do not tell (root passes them, a read-only or virtual file system does not)."""
+    import tempfile
+
     if lockdown.is_remote(path):
-        return "a remote URL, not a local folder"
-    probe = os.path.abspath(path)
-    while not os.path.exists(probe):
-        parent = os.path.dirname(probe)
-        if parent == probe:
-            break
-        probe = parent
-    if not os.path.isdir(probe):
-        return "which is a file, not a folder" if probe == os.path.abspath(path) else f"but '{probe}' on its way is a file"
-    if not os.access(probe, os.W_OK | os.X_OK):
-        where = "" if probe == os.path.abspath(path) else f" (it does not exist and its parent '{probe}' is not writable)"
-        return f"which is not writable: permission denied{where}"
+        return "which is a remote URL, not a local folder"
+    if os.path.exists(path) and not os.path.isdir(path):
+        return "which is a file, not a folder"
+    try:
+        os.makedirs(path, exist_ok=True)
+        os.rmdir(tempfile.mkdtemp(prefix="bigpanel-probe-", dir=path))
+    except OSError as exc:
+        reason = (exc.strerror or type(exc).__name__).lower()
+        return f"which cannot be {'written to' if os.path.isdir(path) else 'made'} ({reason})"
     return None
 
 
@@ -306,16 +309,16 @@ def out_of_memory_message(source: Source, spill_folder: str, message: str) -> st
     except OSError:
         free = "free space unknown"
     if engine.temp_directory:
-        spill = f"--temp-directory '{engine.temp_directory}' ({free})"
+        spill = f"--temp-directory '{echo(engine.temp_directory)}' ({free})"
         more_disk = "free space in --temp-directory or point it at a larger disk"
     else:
         spill = f"the system's temporary folder {os.path.dirname(spill_folder)} ({free})"
         more_disk = "give --temp-directory on a disk with more free space"
     if engine.memory_limit is None:
-        return (f"DuckDB ran out of memory on {source.label} with no --memory-limit set ({message[:200]}); "
+        return (f"DuckDB ran out of memory on {source.label} with no --memory-limit set ({message}); "
                 f"it spills to {spill}. Set --memory-limit below this machine's free memory (for example 4GB) "
                 f"so that DuckDB spills to disk sooner, or {more_disk}.")
-    return (f"DuckDB ran out of memory on {source.label} under --memory-limit {engine.memory_limit} ({message[:200]}); "
+    return (f"DuckDB ran out of memory on {source.label} under --memory-limit {echo(engine.memory_limit, 40)} ({message}); "
             f"it spills to {spill}. Raise --memory-limit if the machine has the memory, or {more_disk}.")
 
 
@@ -329,18 +332,86 @@ def _parquet_files(path: str) -> tuple[list[str], bool]:
     if any(ch in path for ch in "*?["):
         files = sorted(f for f in globmod.glob(path, recursive=True) if os.path.isfile(f))
         if not files:
-            raise InputError(f"No files match '{path}'. Check the pattern (brace lists like {{a,b}} are not supported).")
+            raise InputError(f"No files match '{echo(path)}'. Check the pattern (brace lists like {{a,b}} are not supported).")
+        _check_same_kinds(files)
         return files, any("=" in part for part in Path(files[0]).parts)
     p = Path(path)
     if p.is_dir():
-        files = sorted(str(f) for f in p.rglob("*.parquet") if f.is_file())
+        files = sorted(_walk_parquet(p, path))
         if not files:
-            raise InputError(f"Folder '{path}' holds no Parquet files (searched its subfolders for *.parquet). Point at the folder that holds the data.")
+            raise InputError(f"Folder '{echo(path)}' holds no Parquet files (searched its subfolders for *.parquet). Point at the folder that holds the data.")
+        _check_same_kinds(files)
         hive = any("=" in part for f in files[:1] for part in Path(f).relative_to(p).parts[:-1])
         return files, hive
     if not p.exists():
-        raise InputError(f"Source '{path}' does not exist. Check the path.")
+        raise InputError(f"Source '{echo(path)}' does not exist. Check the path.")
+    _require_readable(path)
     return [str(p)], False
+
+
+def _value_kind(arrow_type) -> str:
+    """number, text, time or other: types within a kind unify without losing meaning."""
+    import pyarrow.types as pt
+
+    if pt.is_integer(arrow_type) or pt.is_floating(arrow_type) or pt.is_decimal(arrow_type) or pt.is_boolean(arrow_type):
+        return "number"
+    if pt.is_string(arrow_type) or pt.is_large_string(arrow_type) or pt.is_dictionary(arrow_type):
+        return "text"
+    if pt.is_temporal(arrow_type):
+        return "time"
+    return str(arrow_type)
+
+
+def _check_same_kinds(files: Sequence[str]) -> None:
+    """Refuse files that give one column values of different kinds (numbers in one file,
+    text in another): read together they would all turn into text. Footers only. A column
+    that some files lack is allowed (its rows count as missing there)."""
+    if len(files) < 2:
+        return
+    first: dict[str, tuple[str, str, Any]] = {}
+    for f in files:
+        try:
+            schema = pq.read_schema(f)
+        except Exception:  # noqa: BLE001 - an unreadable file is named when the scan fails
+            continue
+        for field_ in schema:
+            kind = _value_kind(field_.type)
+            seen = first.setdefault(field_.name, (kind, f, field_.type))
+            if seen[0] != kind:
+                raise InputError(
+                    f"Column '{echo(field_.name)}' is {seen[2]} in '{echo(seen[1])}' but {field_.type} in '{echo(f)}'. "
+                    "Give it one type in every file (re-export the odd ones), or read the files with a --query that casts it."
+                )
+
+
+def _walk_parquet(folder: Path, shown: str) -> list[str]:
+    """Every *.parquet file under ``folder``; a subfolder that cannot be listed is an error
+    (skipping it would silently drop its rows)."""
+
+    def refuse(exc: OSError) -> None:
+        where = exc.filename or shown
+        raise InputError(f"Folder '{echo(where)}' cannot be read ({exc.strerror or exc}). "
+                         "Check its permissions, or point at a folder you can read.") from None
+
+    files = []
+    for root, _dirs, names in os.walk(folder, onerror=refuse):
+        for name in names:
+            if name.endswith(".parquet"):
+                full = os.path.join(root, name)
+                if os.path.isfile(full):
+                    _require_readable(full)
+                    files.append(full)
+    return files
+
+
+def _require_readable(path: str) -> None:
+    """Refuse a file that exists but cannot be opened (permissions), naming it."""
+    try:
+        with open(path, "rb"):
+            pass
+    except OSError as exc:
+        raise InputError(f"File '{echo(path)}' cannot be read ({exc.strerror or exc}). "
+                         "Check its permissions.") from None
 
 
 def open_source(
@@ -377,6 +448,7 @@ def open_source(
     """
     engine = engine or Engine()
     common = dict(where=where, engine=engine)
+    _check_source_options(source, table, query, csv_types)
     if source is None:
         if not query:
             raise InputError("No source given. Pass a file, folder, glob, DuckDB file or a query.")
@@ -389,10 +461,10 @@ def open_source(
         lower = path.lower()
         if lower.endswith((".duckdb", ".db", ".ddb")):
             if not os.path.exists(path):
-                raise InputError(f"DuckDB file '{path}' does not exist. Check the path.")
+                raise InputError(f"DuckDB file '{echo(path)}' does not exist. Check the path.")
             if not table and not query:
-                raise InputError(f"DuckDB file '{path}' needs a table name or a query. Pass --table NAME or --query SQL.")
-            src = Source(kind="query" if query else "duckdb", label=f"{Path(path).name}" + (f" table {table}" if table else ""),
+                raise InputError(f"DuckDB file '{echo(path)}' needs a table name or a query. Pass --table NAME or --query SQL.")
+            src = Source(kind="query" if query else "duckdb", label=echo(f"{Path(path).name}" + (f" table {table}" if table else "")),
                          database=path, table=table, query=query, **common)
         elif lower.endswith((".csv", ".tsv", ".csv.gz", ".tsv.gz", ".txt")):
             unknown = sorted(set(csv_options or {}) - set(sqlbuild.CSV_OPTIONS))
@@ -401,13 +473,31 @@ def open_source(
                                  f"Use one of: {', '.join(sqlbuild.CSV_OPTIONS)}.")
             files = sorted(globmod.glob(path, recursive=True)) if any(c in path for c in "*?[") else [path]
             if not files or not all(os.path.exists(f) for f in files):
-                raise InputError(f"Source '{path}' does not exist. Check the path.")
-            src = Source(kind="csv", label=Path(path).name, files=tuple(files),
+                raise InputError(f"Source '{echo(path)}' does not exist. Check the path.")
+            src = Source(kind="csv", label=echo(Path(path).name), files=tuple(files),
                          csv_types=tuple((csv_types or {}).items()), csv_options=tuple((csv_options or {}).items()), **common)
         else:
             files, hive = _parquet_files(path)
-            src = Source(kind="parquet", label=Path(path).name or path, files=tuple(files), hive=hive, **common)
+            src = Source(kind="parquet", label=echo(Path(path).name or path), files=tuple(files), hive=hive, **common)
     return src
+
+
+def _check_source_options(source: Any, table: str | None, query: str | None, csv_types: dict | None) -> None:
+    """Refuse options that the kind of source would silently ignore."""
+    path = str(source).lower() if isinstance(source, (str, os.PathLike)) else None
+    database = path is not None and path.endswith((".duckdb", ".db", ".ddb"))
+    csv = path is not None and path.endswith((".csv", ".tsv", ".csv.gz", ".tsv.gz", ".txt"))
+    given = shown(source) if path is not None else "an in-memory frame"
+    if table and not database:
+        raise InputError(f"Option --table applies to DuckDB files, but the source is {given}. "
+                         "Leave --table out, or give a .duckdb file.")
+    if table and query:
+        raise InputError("Options --table and --query are both given. Give one of them.")
+    if query and source is not None and not database:
+        raise InputError(f"Option --query applies to a DuckDB file or stands alone, but the source is {given}. "
+                         "Leave the source out and read the files in the query, or drop --query.")
+    if csv_types and not csv:
+        raise InputError(f"Option --csv-types applies to CSV sources, but the source is {given}. Leave it out.")
 
 
 def _as_arrow(frame: Any):
@@ -502,19 +592,32 @@ class Session:
 
         if interrupts.received() is not None:
             return interrupts.Interrupted(interrupts.received())
-        message = _first_line(exc)
+        message = echo(_first_line(exc))
         if isinstance(exc, duckdb.InterruptException):
             return BigpanelError(f"The query on {self.source.label} was interrupted.")
         if isinstance(exc, duckdb.PermissionException):
-            reached = re.search(r'"([^"]*)"', message)
+            reached = re.search(r'"([^"]*)"', str(exc))
             return InputError(
-                f"SQL on {self.source.label} tried to reach '{reached.group(1)[:200] if reached else message[:200]}', "
+                f"SQL on {self.source.label} tried to reach '{echo(reached.group(1)) if reached else message}', "
                 "which bigpanel does not open: queries may read the source's own files only. "
                 "Name that file as the source, or read it in --query.")
-        if isinstance(exc, (duckdb.IOException, duckdb.InvalidInputException)) and self.source.kind == "parquet":
-            bad = _find_corrupt_parquet(self.source.files)
+        settled = (duckdb.ParserException, duckdb.BinderException, duckdb.CatalogException, duckdb.OutOfMemoryException,
+                   duckdb.InterruptException)
+        if self.source.kind == "parquet" and not isinstance(exc, settled):
+            bad = _find_corrupt_parquet(self.source.files) or _find_unreadable_pages(self.source.files)
             if bad:
-                return InputError(f"File '{bad[0]}' is not a readable Parquet file ({bad[1]}). Re-export it or move it out of the source.")
+                return InputError(f"File '{echo(bad[0])}' is not a readable Parquet file ({echo(bad[1])}). "
+                                  "Re-export it or move it out of the source.")
+        if self.source.kind == "csv" and self.source.csv_types and re.search(r"\bTYPE|DuckDB Type|COLUMN_TYPES", str(exc), re.IGNORECASE):
+            shown = echo(", ".join(f"{k}={v}" for k, v in self.source.csv_types))
+            return InputError(f"Option --csv-types ({shown}) was refused by DuckDB for {self.source.label} ({message}). "
+                              "Name columns the CSV file has, with DuckDB type names such as BIGINT, DOUBLE, DATE or VARCHAR.")
+        if isinstance(exc, duckdb.InvalidInputException) and self.source.kind == "csv" and "sniffing" in str(exc):
+            return InputError(f"CSV file {self.source.label} could not be read as CSV ({message}). "
+                              "Check that it is a CSV text file with a header line.")
+        if isinstance(exc, duckdb.CatalogException) and self.source.kind == "duckdb" and self.source.table is not None:
+            return InputError(f"Table '{echo(self.source.table)}' not found in DuckDB file '{echo(self.source.database)}' "
+                              f"({message}). Check the table name, or pass --query.")
         if isinstance(exc, duckdb.IOException):
             return InputError(f"Source {self.source.label} could not be read ({message}). Check the path and file format.")
         if isinstance(exc, duckdb.ConversionException):
@@ -534,6 +637,8 @@ class Session:
             except duckdb.Error as exc:
                 raise self._explain(exc) from None
             self._columns = dict(rows)
+            if self.source.kind == "csv" and all(t == "VARCHAR" for t in self._columns.values()):
+                _check_csv_shape(self.source.files, self._columns)
         return self._columns
 
     def require_columns(self, names: Sequence[str], numeric: Sequence[str] = ()) -> None:
@@ -587,6 +692,63 @@ def _find_corrupt_parquet(files: Sequence[str]) -> tuple[str, str] | None:
     for f in files:
         try:
             pq.read_metadata(f)
+        except Exception as exc:  # noqa: BLE001 - any failure means the file is unreadable
+            return f, _first_line(exc)
+    return None
+
+
+def _check_csv_shape(files: Sequence[str], columns: dict[str, str]) -> None:
+    """Explain a CSV source read as text columns only: an empty file, a header without
+    rows, or a line whose number of fields differs from the header's (DuckDB's detection
+    then gives up on the delimiter and reads one column)."""
+    import csv
+    import gzip
+
+    def opened(f: str):
+        opener = gzip.open if f.endswith(".gz") else open
+        return opener(f, "rt", newline="", encoding="utf-8", errors="replace")
+
+    for f in files:
+        if os.path.getsize(f) == 0:
+            raise InputError(f"CSV file '{echo(f)}' is empty. Give a file with a header line and rows.")
+    if all(_csv_has_no_rows(opened(f)) for f in files):
+        raise InputError(f"CSV file '{echo(files[0])}' has a header line but no rows. Give a file with rows.")
+    only_column = next(iter(columns)) if len(columns) == 1 else ""
+    delimiter = next((d for d in (",", ";", "\t", "|") if d in only_column), None)
+    if delimiter is None:
+        return
+    for f in files:
+        with opened(f) as handle:
+            rows = csv.reader(handle, delimiter=delimiter)
+            header = next(rows, [])
+            for row in rows:
+                if row and len(row) != len(header):
+                    raise InputError(
+                        f"CSV file '{echo(f)}' line {rows.line_num} has {len(row)} fields where the header has "
+                        f"{len(header)}. Fix or remove that line (a stray delimiter or an unquoted one inside a value)."
+                    )
+
+
+def _csv_has_no_rows(handle) -> bool:
+    """Does the open text file hold at most one non-blank line (a header)?"""
+    with handle:
+        lines = 0
+        for line in handle:
+            lines += bool(line.strip())
+            if lines > 1:
+                return False
+    return True
+
+
+def _find_unreadable_pages(files: Sequence[str]) -> tuple[str, str] | None:
+    """The first file whose data pages cannot be decoded (its footer may be intact): every
+    column of every row group is read, one row group at a time. Only run after a scan
+    failed, to name the culprit."""
+    for f in files:
+        try:
+            reader = pq.ParquetFile(f)
+            for group in range(reader.metadata.num_row_groups):
+                reader.read_row_group(group)
         except Exception as exc:  # noqa: BLE001 - any failure means the file is unreadable
             return f, _first_line(exc)
     return None

@@ -13,11 +13,16 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-from .errors import InputError
+import numpy as np
+
+from .errors import InputError, echo
 from .expressions import Term, expression_sql, parse_terms, split_top_level
 
 ESTIMATORS = ("pooled", "within", "first-difference")
 VARIANCES = ("iid", "hc1", "cluster")
+MAX_PERIOD_STEP = 2**53
+"""Largest period step: a whole number a double holds exactly, and far enough below the
+BIGINT limit (9.2e18) that period + step cannot overflow for any practical period value."""
 
 
 def _as_list(value: str | list[str] | tuple[str, ...] | None) -> tuple[str, ...]:
@@ -60,7 +65,7 @@ class FitSpec:
         period_step: int = 1,
     ) -> "FitSpec":
         if estimator not in ESTIMATORS:
-            raise InputError(f"Option 'estimator' must be one of {', '.join(ESTIMATORS)}; got '{estimator}'.")
+            raise InputError(f"Option 'estimator' must be one of {', '.join(ESTIMATORS)}; got '{echo(estimator)}'.")
         if not outcome or not str(outcome).strip():
             raise InputError("Option 'outcome' is empty. Name the outcome column or expression.")
         terms = parse_terms(regressors)
@@ -69,37 +74,44 @@ class FitSpec:
         texts = [t.text for t in terms]
         if len(set(texts)) != len(texts):
             dup = next(t for t in texts if texts.count(t) > 1)
-            raise InputError(f"Option 'regressors' lists '{dup}' twice. Give each term once.")
+            raise InputError(f"Option 'regressors' lists '{echo(dup)}' twice. Give each term once.")
         outcome_sql = expression_sql(outcome, "Outcome")
         eff = _as_list(effects)
         if estimator == "within" and not eff:
             eff = (unit,)
         if estimator == "within" and unit not in eff:
-            raise InputError(f"Option 'effects' must include the unit column '{unit}' for the within estimator (got {', '.join(eff)}).")
+            raise InputError(f"Option 'effects' must include the unit column '{echo(unit)}' for the within estimator (got {echo(', '.join(eff))}); "
+                             f"write --effects {echo(unit)} or --effects {echo(unit)},{echo(period)}.")
         if estimator == "pooled" and unit in eff:
-            raise InputError(f"Option 'effects' names the unit '{unit}' for the pooled estimator; that is the within estimator. Use --estimator within.")
+            raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for the pooled estimator; that is the within estimator. Use --estimator within.")
         for e in eff:
             if e not in (unit, period):
-                raise InputError(f"Option 'effects' names '{e}': effects on columns other than the unit '{unit}' and the period '{period}' are not supported yet.")
+                raise InputError(f"Option 'effects' names '{echo(e)}': effects on columns other than the unit '{echo(unit)}' and the period '{echo(period)}' are not supported yet.")
         if estimator == "first-difference" and unit in eff:
-            raise InputError(f"Option 'effects' names the unit '{unit}' for first differences, which already remove it. Use --effects {period} for period intercepts.")
+            raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for first differences, which already remove it. Use --effects {echo(period)} for period intercepts.")
         if se is None:
             se = "iid" if estimator == "pooled" and not cluster else "cluster"
         if se not in VARIANCES:
-            raise InputError(f"Option 'se' must be one of {', '.join(VARIANCES)}; got '{se}'.")
+            raise InputError(f"Option 'se' must be one of {', '.join(VARIANCES)}; got '{echo(se)}'.")
         clus = _as_list(cluster)
         if se == "cluster" and not clus:
             clus = (unit,)
         if se != "cluster" and clus:
-            raise InputError(f"Option 'cluster' is given but 'se' is '{se}'. Use --se cluster, or drop --cluster.")
+            raise InputError(f"Option 'cluster' is given but 'se' is '{echo(se)}'. Use --se cluster, or drop --cluster.")
         if len(clus) > 2:
-            raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported.")
+            raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported, so give one or two.")
+        if len(set(clus)) != len(clus):
+            raise InputError(f"Option 'cluster' names '{echo(clus[0])}' twice. Give two different columns for two-way clustering, or one.")
         if intercept is None:
             intercept = estimator != "within"
         if estimator == "within" and intercept:
             raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects already remove it.")
-        if int(period_step) < 1:
-            raise InputError(f"Option 'period_step' must be a whole number of 1 or more, got {period_step}.")
+        whole = isinstance(period_step, (int, np.integer)) or (isinstance(period_step, float) and period_step.is_integer())
+        if isinstance(period_step, bool) or not whole:
+            raise InputError(f"Option 'period_step' must be a whole number, got {echo(repr(period_step), 40)}.")
+        if not 1 <= int(period_step) <= MAX_PERIOD_STEP:
+            raise InputError(f"Option 'period_step' must be a whole number from 1 to 2**53 ({MAX_PERIOD_STEP:,}), "
+                             f"got {echo(period_step, 40)}. Give the distance between consecutive periods.")
         return cls(
             outcome=str(outcome).strip(), outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, se=se, cluster=clus, intercept=bool(intercept), period_step=int(period_step),

@@ -169,7 +169,7 @@ def design_rows_sql(
                 f"first_value({value}) OVER (PARTITION BY {quote_ident(unit)} ORDER BY {quote_ident(period)} "
                 f"RANGE BETWEEN {span} PRECEDING AND {span} PRECEDING)"
             )
-        items.append(f"{value} - $s{j} AS {_z(j)}")
+        items.append(f"({value} - $s{j}) * $d{j} AS {_z(j)}")
     return render("design_rows", source=source, columns=", ".join(items))
 
 
@@ -183,10 +183,10 @@ def differenced_rows_sql(rows: str, n_clusters: int, q: int, streaming: bool = F
 
 
 def valid_predicate(q: int, differenced: bool, step: int) -> str:
-    """All design columns finite (and, for differences, the previous row the unit's previous
-    period). z * 0 is 0 for a finite z and NaN for an infinite or NaN one (NULL stays NULL),
-    so one comparison tests every column: cheaper than one isfinite() per column."""
-    terms = ["(" + " + ".join(f"{_z(j)} * 0" for j in range(q)) + ") = 0"]
+    """A unit, all design columns finite (and, for differences, the previous row the unit's
+    previous period). z * 0 is 0 for a finite z and NaN for an infinite or NaN one (NULL
+    stays NULL), so one comparison tests every column: cheaper than one isfinite() per column."""
+    terms = ["k_unit IS NOT NULL", "(" + " + ".join(f"{_z(j)} * 0" for j in range(q)) + ") = 0"]
     if differenced:
         terms.insert(0, f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)}")
     return " AND ".join(terms)
@@ -274,12 +274,13 @@ def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum
 def row_counts_sql(rows: str, q: int, differenced: bool, step: int) -> str:
     finite = " AND ".join(f"isfinite({_z(j)})" for j in range(q))
     usable = f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)} AND " if differenced else ""
-    counts = ["count(*) AS n_rows", f"count(*) FILTER (WHERE {usable}NOT coalesce({finite}, false)) AS missing"]
-    if differenced:
+    counts = ["count(*) AS n_rows",
+              f"count(*) FILTER (WHERE k_unit IS NULL OR ({usable}NOT coalesce({finite}, false))) AS missing"]
+    if differenced:  # rows without a unit are counted as missing above, and only there
         counts += [
-            "count(*) FILTER (WHERE k_prev IS NULL) AS first_of_unit",
-            f"count(*) FILTER (WHERE k_prev < k_period - {int(step)}) AS after_gap",
-            "count(*) FILTER (WHERE k_prev = k_period) AS duplicate_keys",
+            "count(*) FILTER (WHERE k_unit IS NOT NULL AND k_prev IS NULL) AS first_of_unit",
+            f"count(*) FILTER (WHERE k_unit IS NOT NULL AND k_prev < k_period - {int(step)}) AS after_gap",
+            "count(*) FILTER (WHERE k_unit IS NOT NULL AND k_prev = k_period) AS duplicate_keys",
         ]
     return render("row_counts", rows=f"({rows})", counts=", ".join(counts))
 
@@ -427,9 +428,11 @@ def demeaned_rows_sql(used: str, q: int, n_clusters: int) -> str:
 
 
 def probe_sql(rows: str, q: int) -> str:
-    """Means of the design columns over ``rows`` (built on the source's first rows):
-    the shift subtracted before accumulating."""
-    means = ", ".join(f"avg({_z(j)}) FILTER (WHERE isfinite({_z(j)})) AS a{j}" for j in range(q))
+    """Means and largest magnitudes of the finite values of the design columns over ``rows``
+    (built on the source's first rows): the shift subtracted and the scale multiplied by
+    before accumulating."""
+    means = ", ".join(f"avg({_z(j)}) FILTER (WHERE isfinite({_z(j)})) AS a{j}, "
+                      f"max(abs({_z(j)})) FILTER (WHERE isfinite({_z(j)})) AS m{j}" for j in range(q))
     return f"SELECT {means} FROM ({rows}) AS head"
 
 
@@ -450,13 +453,20 @@ def period_value(period: str, kind: str) -> str:
 
 
 def checkup_shift_probe_sql(source_sql: str, checked: Sequence[str], numeric: Sequence[int]) -> str:
-    """SQL of the shift probe: c_j for each index j (into ``checked``) in ``numeric``."""
-    means = [f"favg(CAST({quote_ident(checked[j])} AS DOUBLE)) AS c_{j}" for j in numeric]
+    """SQL of the shift probe: for each index j (into ``checked``) in ``numeric``, the mean c_j
+    and the largest magnitude m_j of the finite values."""
+    means = []
+    for j in numeric:
+        raw = f"CAST({quote_ident(checked[j])} AS DOUBLE)"
+        means += [f"favg({raw}) FILTER (WHERE isfinite({raw})) AS c_{j}",
+                  f"max(abs({raw})) FILTER (WHERE isfinite({raw})) AS m_{j}"]
     return render("checkup_shifts", source=source_sql, means=", ".join(means))
 
 
 def _shifted(name: str, j: int) -> str:
-    return f"(CAST({quote_ident(name)} AS DOUBLE) - $c_{j})"
+    """Column j shifted by $c_j and scaled by $d_j (a power of two); NULL unless finite."""
+    raw = f"CAST({quote_ident(name)} AS DOUBLE)"
+    return f"(CASE WHEN isfinite({raw}) THEN ({raw} - $c_{j}) * $d_{j} END)"
 
 
 def rows_without_unit_sql(source_sql: str, unit: str) -> str:
@@ -466,15 +476,20 @@ def rows_without_unit_sql(source_sql: str, unit: str) -> str:
 
 def checkup_period_scan_sql(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
                             numeric: Sequence[int]) -> str:
-    """SQL of the period scan. Column j's aggregates are n_j and, for j in ``numeric``
-    (indices into ``checked``), the shifted mean_j and ss_j, and the unshifted min_j, max_j."""
+    """SQL of the period scan. Column j's aggregates are n_j (values present; for j in
+    ``numeric``, indices into ``checked``, finite values) and, for numeric columns, nf_j (NaN
+    and infinite values), the shifted and scaled mean_j and ss_j, and the raw min_j, max_j."""
     parts = []
     for j, name in enumerate(checked):
         q = quote_ident(name)
-        parts.append(f"count({q}) AS n_{j}")
-        if j in numeric:
-            v, raw = _shifted(name, j), f"CAST({q} AS DOUBLE)"
-            parts += [f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}", f"min({raw}) AS min_{j}", f"max({raw}) AS max_{j}"]
+        if j not in numeric:
+            parts.append(f"count({q}) AS n_{j}")
+            continue
+        v, raw = _shifted(name, j), f"CAST({q} AS DOUBLE)"
+        finite = f"FILTER (WHERE isfinite({raw}))"
+        parts += [f"count({v}) AS n_{j}", f"count({q}) FILTER (WHERE NOT isfinite({raw})) AS nf_{j}",
+                  f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}",
+                  f"min({raw}) {finite} AS min_{j}", f"max({raw}) {finite} AS max_{j}"]
     return render(
         "checkup_periods",
         source=source_sql,

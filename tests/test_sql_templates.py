@@ -85,9 +85,9 @@ def test_built_scans_bind_in_duckdb(bitmap):
     checked = ["select", "sum x"]
     scans = [
         (sqlbuild.checkup_shift_probe_sql(source, checked, [1]), {"probe_rows": 3}),
-        (sqlbuild.checkup_period_scan_sql(source, "order", '"a""b"', checked, [1]), {"max_groups": 10, "c_1": 0.5}),
+        (sqlbuild.checkup_period_scan_sql(source, "order", '"a""b"', checked, [1]), {"max_groups": 10, "c_1": 0.5, "d_1": 0.25}),
         (sqlbuild.checkup_unit_scan_sql(source, "order", '"a""b"', checked, [1], "month", bitmap),
-         {"first": 0, "step": 1, "n_periods": 1, "c_1": 0.5} | ({"last_slot": 0} if bitmap else {})),
+         {"first": 0, "step": 1, "n_periods": 1, "c_1": 0.5, "d_1": 0.25} | ({"last_slot": 0} if bitmap else {})),
         (sqlbuild.checkup_duplicate_scan_sql(source, "order", '"a""b"'), {"n_examples": 5}),
         (f"SELECT count(*) FROM {sqlbuild.rows_without_unit_sql(source, 'order')}", {}),
     ]
