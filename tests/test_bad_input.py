@@ -215,13 +215,6 @@ CASES = [
          "Values of 'staff_hours' are out of a double's reach for this fit (its estimate or standard error is beyond a double's range). Rescale the term or the outcome by a power of ten in the term or a query, and scale the estimate back.", 2),
 ]  # fmt: skip
 
-# Rows whose behaviour another branch of issue 7 delivers; each fails here until that
-# branch is merged (strict: a pass then fails the run, so the row is moved to CASES and
-# README). The message is only the part every wording must have.
-PENDING = [
-]  # fmt: skip
-
-
 @pytest.fixture(scope="module")
 def folder(tmp_path_factory) -> Path:
     root = make_files(tmp_path_factory.mktemp("bad_input"))
@@ -313,12 +306,6 @@ def _check(case: Case, folder: Path, monkeypatch) -> None:
 
 @pytest.mark.parametrize("case", CASES, ids=[c.line.removeprefix("bigpanel ") for c in CASES])
 def test_catalogue(case: Case, folder: Path, monkeypatch):
-    _check(case, folder, monkeypatch)
-
-
-@pytest.mark.parametrize("case", [pytest.param(c, marks=pytest.mark.xfail(strict=True, reason="delivered by another branch"))
-                                  for c in PENDING], ids=[c.line.removeprefix("bigpanel ") for c in PENDING])
-def test_pending(case: Case, folder: Path, monkeypatch):
     _check(case, folder, monkeypatch)
 
 
