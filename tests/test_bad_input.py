@@ -9,8 +9,7 @@ Python warning, no file written or changed; and at most about 200 characters of 
 user text. ``test_readme_matches_cases`` keeps README's table and CASES the same.
 
 To add a case: add a row to CASES (a trap file, if it needs one, to bad_input_data.py)
-and the same row to README's table; run this file. Rows another branch is still
-delivering go in PENDING (expected to fail until that branch is merged; then move them).
+and the same row to README's table; run this file.
 """
 
 from __future__ import annotations
