@@ -141,14 +141,17 @@ def run_chunks(
     threads = thread_count(session)
 
     def one(chunk):
-        cur = session.cursor(threads=1)
+        cur = session.cursor(threads=1)  # the session's one-thread instance (its settings are locked)
         try:
             return session.run(make_sql(chunk), bound(chunk), con=cur)
         finally:
             cur.close()
 
-    with ThreadPoolExecutor(max_workers=max(1, int(threads))) as pool:
+    pool = ThreadPoolExecutor(max_workers=max(1, int(threads)))
+    try:
         return list(pool.map(one, chunks))
+    finally:  # on an error or a stop signal, chunks not yet started are dropped
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 def thread_count(session: Session) -> int:
@@ -160,12 +163,11 @@ def run_alone(session: Session, sql: str, params: dict | None = None):
     """Run one query over the whole source on one thread, so that its sums are added in
     one order whatever the engine's thread count (see the module note).
 
-    DuckDB's ``threads`` is a database-wide setting (a cursor's SET changes it for the
-    session's connection too), while ``USE`` is per connection: so the setting is made
-    on a cursor and the query runs on the session's own connection, which a query
-    source inside a DuckDB file needs."""
+    It runs on the session's one-thread DuckDB instance (Session.cursor(threads=1) makes
+    it), on that instance's own connection rather than a cursor: ``USE`` is per
+    connection, and a query source inside a DuckDB file needs it."""
     session.cursor(threads=1).close()
-    return session.run(sql, params)
+    return session.run(sql, params, con=session._single)
 
 
 def symmetric(row: dict, prefix: str, dim: int) -> np.ndarray:
