@@ -1,7 +1,5 @@
 """``python -m bigpanel``: the same command line as the ``bigpanel`` script."""
 
-import sys
+from .interrupts import main
 
-from .cli import main
-
-sys.exit(main())
+main()

@@ -13,13 +13,16 @@ import re
 import sys
 import warnings
 from enum import Enum
-from typing import Annotated, Optional
+from typing import TYPE_CHECKING, Annotated, Optional
 
 import typer
 
+from . import interrupts
 from .errors import BigpanelError, BigpanelWarning, InputError, echo
 from .params import PARAMETERS
-from .source import Engine, Source, open_source
+
+if TYPE_CHECKING:  # the source module imports DuckDB: only the commands that read data load it
+    from .source import Source
 
 app = typer.Typer(
     name="bigpanel",
@@ -61,6 +64,8 @@ def _source_from_options(
     temp_directory: str | None = None,
 ) -> Source:
     """Build the Source described by the shared command-line options."""
+    from .source import Engine, open_source
+
     engine = Engine(threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
     return open_source(source, table=table, query=query, where=where, csv_types=_parse_csv_types(csv_types), engine=engine)
 
@@ -191,23 +196,31 @@ def fit_command(
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Run the command line and return its exit code (the console script exits with it)."""
+    """Run the command line and return its exit code (the console script exits with it).
+
+    Stop signals are handled by :mod:`bigpanel.interrupts`, whose entry calls this; any
+    error seen after a stop signal is its consequence and re-raised as the interruption.
+    """
     command = typer.main.get_command(app)
     try:
         command.main(args=argv, prog_name="bigpanel", standalone_mode=True)
     except SystemExit as exc:  # usage errors (2), --help (0) and typer.Exit(code)
+        interrupts.raise_if_received()
         code = exc.code
         return code if isinstance(code, int) else (0 if code is None else 1)
     except InputError as exc:
+        interrupts.raise_if_received()
         _say(exc)
         return 2
     except BigpanelError as exc:
+        interrupts.raise_if_received()
         _say(exc)
         return 1
     except KeyboardInterrupt:
         _say("Interrupted.")
         return 130
     except Exception as exc:  # noqa: BLE001 - a bug must still end with one sentence, not a traceback
+        interrupts.raise_if_received()
         if os.environ.get("BIGPANEL_TRACEBACK"):
             raise
         _say(f"bigpanel stopped on an unexpected {type(exc).__name__}: {exc}. "

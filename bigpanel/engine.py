@@ -8,7 +8,6 @@ another SQL engine is a new adapter (DEVELOPERS.md lists what it must provide).
 
 from __future__ import annotations
 
-import os
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from typing import Protocol
@@ -56,6 +55,13 @@ class EngineAdapter(Protocol):
 
     def run(self, sql: str, params: dict | None = None):
         """Run one query; return its (aggregate) result as a pyarrow Table."""
+
+    def run_alone(self, sql: str, params: dict | None = None):
+        """Run one query over the whole source so that its sums are added in one fixed
+        order whatever the thread count (DuckDB: on one thread)."""
+
+    def thread_count(self) -> int:
+        """Chunk queries run at once."""
 
     def plan_chunks(self, unit: str) -> list[moments.Chunk]:
         """Cut the source into unit ranges that read few storage blocks (or one chunk)."""
@@ -110,6 +116,12 @@ class DuckDBEngine:
     def run(self, sql: str, params: dict | None = None):
         return self.session.run(sql, params)
 
+    def run_alone(self, sql: str, params: dict | None = None):
+        return moments.run_alone(self.session, sql, params)
+
+    def thread_count(self) -> int:
+        return moments.thread_count(self.session)
+
     def plan_chunks(self, unit: str) -> list[moments.Chunk]:
         return moments.plan_chunks(self.session, unit)
 
@@ -118,7 +130,7 @@ class DuckDBEngine:
 
     def fold_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict, fold: Callable) -> list:
         session = self.session
-        threads = self.source.engine.threads or os.cpu_count() or 1
+        threads = moments.thread_count(session)
 
         def one(chunk):
             sql = make_sql(chunk)
@@ -132,8 +144,11 @@ class DuckDBEngine:
             finally:
                 cur.close()
 
-        with ThreadPoolExecutor(max_workers=max(1, int(threads))) as pool:
+        pool = ThreadPoolExecutor(max_workers=max(1, int(threads)))
+        try:
             return list(pool.map(one, chunks))
+        finally:  # on an error or a stop signal, chunks not yet started are dropped
+            pool.shutdown(wait=True, cancel_futures=True)
 
     def row_count(self) -> int | None:
         if self.source.kind == "parquet" and not self.source.where:

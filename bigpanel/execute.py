@@ -69,7 +69,8 @@ class Executor:
     def run_once(self, sql: str, params: dict | None = None, scan: bool = True) -> list[dict]:
         """One query over all rows (``scan``: it reads every row)."""
         self.scans += int(scan)
-        return self.engine.run(sql, params).to_pylist()
+        run = self.engine.run_alone if scan else self.engine.run  # whole-source sums in one fixed order
+        return run(sql, params).to_pylist()
 
     def run_chunked(self, make_sql: Callable, params: dict, chunks: Sequence | None = None) -> list[list[dict]]:
         chunks = self.chunks() if chunks is None else chunks

@@ -21,7 +21,7 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
-from .errors import InputError, shown
+from .errors import InputError, echo, shown
 from .source import parse_tree, render_tree, scalar_function_kinds, statement_kinds
 
 MAX_LAG_ORDER = 100_000  # periods; far beyond any panel, small enough that K * step stays exact
@@ -92,7 +92,7 @@ def _select_items(text: str, what: str) -> list[dict]:
     """The select list of ``SELECT <text>``, refused unless it is a bare list of expressions."""
     tree = parse_tree("SELECT " + text)
     if tree.get("error"):
-        raise InputError(f"{what} {shown(text)} is not valid SQL ({tree.get('error_message', 'parse error')}). Fix the expression.")
+        raise InputError(f"{what} {shown(text)} is not valid SQL ({echo(tree.get('error_message', 'parse error'))}). Fix the expression.")
     statements = tree.get("statements", [])
     if len(statements) != 1:
         raise InputError(f"{what} {shown(text)} is refused: it holds more than one statement. Give one scalar SQL expression.")
@@ -254,7 +254,7 @@ def parse_terms(value: str | Iterable[str] | None, option: str = "regressors") -
             whole = parse_tree("SELECT " + value)
             if whole.get("error"):
                 raise InputError(f"Option '{option}' {shown(value)} is not a valid list of SQL expressions "
-                                 f"({whole.get('error_message', 'parse error')}). Fix the terms.")
+                                 f"({echo(whole.get('error_message', 'parse error'))}). Fix the terms.")
             statements = whole.get("statements", [])
             count = len(statements[0]["node"].get("select_list", [])) if len(statements) == 1 else None
             if count != len(pieces):
@@ -275,14 +275,14 @@ def query_sql(text: str) -> str:
         raise InputError("Option 'query' is empty. Give one SELECT query.")
     kinds = statement_kinds(text)
     if isinstance(kinds, str):
-        raise InputError(f"Option 'query' {shown(text)} is not valid SQL ({kinds}). Fix the query.")
+        raise InputError(f"Option 'query' {shown(text)} is not valid SQL ({echo(kinds)}). Fix the query.")
     if len(kinds) != 1:
         raise InputError(f"Option 'query' holds {len(kinds)} statements ({', '.join(kinds)}). Give a single SELECT query.")
     if kinds[0] != "SELECT":
         raise InputError(f"Option 'query' is a {kinds[0]} statement, not a SELECT query. Give one SELECT query that returns the panel's rows.")
     tree = parse_tree(text)
     if tree.get("error"):
-        raise InputError(f"Option 'query' {shown(text)} is not valid SQL ({tree.get('error_message', 'parse error')}). Fix the query.")
+        raise InputError(f"Option 'query' {shown(text)} is not valid SQL ({echo(tree.get('error_message', 'parse error'))}). Fix the query.")
     statements = tree.get("statements", [])
     if _has_class(statements[0], "PARAMETER"):
         raise InputError(f"Option 'query' {shown(text)} has a query parameter ($name or ?). Write the values into the query.")

@@ -19,7 +19,7 @@ from .errors import (
 )  # fmt: skip
 from .estimators.base import Equations, Estimator
 from .requests import Nesting, Rows, Scores
-from .results import Coefficient, FitResult, VarianceSummary
+from .results import Coefficient, FitResult, VarianceSummary, run_record
 from .solve import overflowing_columns, solve_normal, unscale
 
 MAX_EXPANDED = 8  # largest model whose unit-cluster meat is summed in the first pass (k^4/4 sums)
@@ -227,5 +227,5 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         r_squared=float(r2), r_squared_kind=est.r2_kind, f_stat=f_stat, f_df=(float(len(slopes)), float(var.df)),
         f_p_value=f_p, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=eq.singletons,
         absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=executor.label,
-        where=executor.engine.where, warnings=notes.texts,
+        where=executor.engine.where, warnings=notes.texts, run=run_record(executor.engine.thread_count()),
     )

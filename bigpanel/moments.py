@@ -21,8 +21,12 @@ Chunks: when a Parquet source's row groups hold consecutive ranges of units (an 
 sorted by unit), each range of units is its own query, so each GROUP BY hashes few
 units and stays in cache; the chunks run in parallel on cursors with one thread each,
 which also makes every sum's order, and so its last digits, the same on every run.
-Otherwise the whole source is one chunk on all threads, and sums are compensated
-(``fsum``) so that their result does not depend on the threads' timing.
+Otherwise the whole source is one chunk, run on one thread (``run_alone``), with
+compensated sums (``fsum``) for accuracy. One thread because DuckDB's ``fsum`` is not
+exactly rounded: on many threads its partial sums meet in an order set by the thread
+count and the threads' timing, and the last bits follow (measured on DuckDB 2.0.1:
+adversarial per-group sums differed from 1-thread results in ~4% of groups at 2-16
+threads, and from run to run); one thread reads the rows in one fixed order.
 """
 
 from __future__ import annotations
@@ -40,6 +44,7 @@ from .source import Session, parquet_row_groups
 
 CHUNK_ROWS = 1_000_000  # most rows per chunk query: bounds the GROUP BY (memory flat in rows)
 MIN_CHUNK_ROWS = 250_000  # fewest rows worth a query of their own (planning costs ~10 ms)
+TARGET_CHUNKS = 16  # chunks wanted between those bounds: work for up to 8 threads, two chunks each
 
 
 @dataclass(frozen=True)
@@ -74,10 +79,14 @@ def plan_chunks(session: Session, unit: str) -> list[Chunk]:
     """Split a Parquet source into unit ranges that each read few row groups.
 
     When the row groups' unit ranges (footer statistics) follow one another, as in an
-    extract sorted by unit, consecutive row groups are cut into chunks of about
-    two or more per thread (between MIN_CHUNK_ROWS and CHUNK_ROWS rows) at unit boundaries; each chunk keeps the units in [low, high), so a
-    unit split across row groups still lies wholly in one chunk, and DuckDB skips the
-    row groups outside the range. Otherwise the whole source is one chunk.
+    extract sorted by unit, consecutive row groups are cut at unit boundaries into
+    chunks of about total / TARGET_CHUNKS rows, kept between MIN_CHUNK_ROWS and
+    CHUNK_ROWS; each chunk keeps the units in [low, high), so a unit split across row
+    groups still lies wholly in one chunk, and DuckDB skips the row groups outside the
+    range. Otherwise the whole source is one chunk.
+
+    The plan depends on the files alone, never on the thread count: the chunks' sums
+    are added in chunk order, so the same files give the same bits with any ``threads``.
     """
     src = session.source
     whole = [Chunk()]
@@ -88,8 +97,7 @@ def plan_chunks(session: Session, unit: str) -> list[Chunk]:
     except Exception:  # noqa: BLE001 - unreadable footers are reported by the scan itself
         return whole
     total = sum(g[1] for g in groups) if groups else 0
-    threads = src.engine.threads or os.cpu_count() or 1
-    size = min(CHUNK_ROWS, max(MIN_CHUNK_ROWS, total // (2 * threads)))  # at least 2 chunks per thread
+    size = min(CHUNK_ROWS, max(MIN_CHUNK_ROWS, total // TARGET_CHUNKS))
     if not groups or total < 2 * size:
         return whole
     try:
@@ -129,18 +137,37 @@ def run_chunks(
         return params | chunk.params() if isinstance(chunk, Chunk) else params
 
     if len(chunks) == 1:
-        return [session.run(make_sql(chunks[0]), bound(chunks[0]))]
-    threads = session.source.engine.threads or os.cpu_count() or 1
+        return [run_alone(session, make_sql(chunks[0]), bound(chunks[0]))]
+    threads = thread_count(session)
 
     def one(chunk):
-        cur = session.cursor(threads=1)
+        cur = session.cursor(threads=1)  # the session's one-thread instance (its settings are locked)
         try:
             return session.run(make_sql(chunk), bound(chunk), con=cur)
         finally:
             cur.close()
 
-    with ThreadPoolExecutor(max_workers=max(1, int(threads))) as pool:
+    pool = ThreadPoolExecutor(max_workers=max(1, int(threads)))
+    try:
         return list(pool.map(one, chunks))
+    finally:  # on an error or a stop signal, chunks not yet started are dropped
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def thread_count(session: Session) -> int:
+    """Chunk queries run at once: the engine's ``threads``, by default one per core."""
+    return int(session.source.engine.threads or os.cpu_count() or 1)
+
+
+def run_alone(session: Session, sql: str, params: dict | None = None):
+    """Run one query over the whole source on one thread, so that its sums are added in
+    one order whatever the engine's thread count (see the module note).
+
+    It runs on the session's one-thread DuckDB instance (Session.cursor(threads=1) makes
+    it), on that instance's own connection rather than a cursor: ``USE`` is per
+    connection, and a query source inside a DuckDB file needs it."""
+    session.cursor(threads=1).close()
+    return session.run(sql, params, con=session._single)
 
 
 def symmetric(row: dict, prefix: str, dim: int) -> np.ndarray:

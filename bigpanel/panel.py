@@ -29,8 +29,8 @@ each chunk on one thread (chunks in parallel), and Python adds the chunks' resul
 chunk order: the unit scan's hash table holds one chunk's units at a time, and every
 figure is the same, to the last bit, on every run. (Rows without a unit fall outside
 every range; scan 1 reads them with one more query, which row-group statistics make
-nearly free.) Otherwise each scan is one query on all threads: figures may then differ
-in their last bits from run to run, and peak memory is set by the unit scan's hash table
+nearly free.) Otherwise each scan is one query on one thread (so that its sums, too,
+come out the same whatever the thread count), and peak memory is set by the unit scan's hash table
 (a small row per unit); an Engine ``memory_limit`` (and ``temp_directory``) bounds it,
 DuckDB then spills.
 """
@@ -51,6 +51,7 @@ import pyarrow.parquet as pq
 from . import moments, solve, sqlbuild
 from .convert import json_ready
 from .errors import ECHO_LIMIT, InputError, echo
+from .results import run_record
 from .source import Session, Source, is_integer, is_numeric
 
 MAX_PERIODS = 1_000_000
@@ -150,6 +151,7 @@ class PanelReport:
     duplicate_examples: tuple[tuple[Any, Any, int], ...]
     columns: tuple[ColumnCheck, ...]
     absent_in_files: tuple[tuple[str, int, str], ...] = ()
+    run: dict = dataclasses.field(default_factory=dict)  # {"threads": N, "version": "x.y.z"}
 
     @property
     def balanced_share(self) -> float:
@@ -176,10 +178,13 @@ class PanelReport:
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-ready dict of the fields above (periods as ISO text), plus the derived
-        ``balanced_share`` and ``not_estimable``."""
+        ``balanced_share`` and ``not_estimable``; ``run`` (threads and version) comes last,
+        the one entry that differs between runs with other thread counts."""
         out = json_ready(self)
+        run = out.pop("run")
         out["balanced_share"] = self.balanced_share
         out["not_estimable"] = list(self.not_estimable)
+        out["run"] = run
         return out
 
     def to_polars(self):
@@ -280,6 +285,7 @@ def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str]
         duplicate_examples=tuple(duplicates),
         columns=column_checks,
         absent_in_files=_absent_in_files(source, checked),
+        run=run_record(moments.thread_count(session)),
     )
 
 

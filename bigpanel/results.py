@@ -78,6 +78,7 @@ class FitResult:
     source: str
     where: str | None
     warnings: tuple[str, ...] = field(default=())
+    run: dict = field(default_factory=dict)  # how it ran: {"threads": N, "version": "x.y.z"}
 
     def to_dict(self) -> dict:
         out = json_ready(self)
@@ -135,6 +136,15 @@ class FitResult:
             lines.append(f"  note: {w}")
         lines.append("  Read causally only under: " + "; ".join(CAUTION_SHORT) + ".")
         return "\n".join(lines)
+
+
+def run_record(threads: int) -> dict:
+    """The ``run`` entry of a result's JSON: the thread count and the tool's version. The
+    numbers do not depend on the threads (moments.plan_chunks); the entry says how the
+    run was made, and is the one field that two runs with other threads may differ in."""
+    from . import __version__
+
+    return {"threads": int(threads), "version": __version__}
 
 
 def _num(x: float) -> str:

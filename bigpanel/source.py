@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import glob as globmod
 import json
+import numbers
 import os
 import re
 import threading
@@ -21,7 +22,7 @@ from typing import Any
 import duckdb
 import pyarrow.parquet as pq
 
-from . import sqlbuild
+from . import interrupts, lockdown, sqlbuild
 from .errors import InputError, echo, shown, unknown_column
 
 INTEGER_TYPES = (
@@ -112,26 +113,79 @@ def check_select(sql: str) -> None:
 _checked_queries: set[str] = set()
 
 
+MAX_THREADS = max(1024, 4 * (os.cpu_count() or 1))  # beyond any machine; DuckDB aborts the process on absurd counts
+_SIZE = re.compile(
+    r"^\s*(\d+(?:\.\d*)?|\.\d+)\s*(b|bytes?|k|kb|kib|kilobytes?|m|mb|mib|megabytes?|g|gb|gib|gigabytes?|"
+    r"t|tb|tib|terabytes?|%)\s*$",
+    re.IGNORECASE,
+)
+
+
 @dataclass(frozen=True)
 class Engine:
-    """DuckDB settings: worker threads, memory limit (e.g. ``"4GB"``) and spill folder."""
+    """DuckDB settings: worker threads, memory limit (e.g. ``"4GB"``) and the folder under
+    which a private spill folder is made (default: the system's temporary folder).
+
+    The values are checked when the Engine is made, before anything is read.
+    """
 
     threads: int | None = None
     memory_limit: str | None = None
     temp_directory: str | None = None
 
-    def settings(self) -> list[tuple[str, str]]:
-        """(setting name, SET statement) pairs, built by sqlbuild."""
-        pairs = list(sqlbuild.BASE_SETTINGS)
-        if self.threads is not None:
-            if int(self.threads) < 1:
-                raise InputError(f"Option 'threads' must be at least 1, got {self.threads}. Give a positive count.")
-            pairs.append(("threads", int(self.threads)))
+    def __post_init__(self) -> None:
+        if self.threads is not None and (isinstance(self.threads, bool) or not isinstance(self.threads, numbers.Integral)
+                                         or not 1 <= self.threads <= MAX_THREADS):
+            raise InputError(f"Option --threads must be a whole number from 1 to {MAX_THREADS}, got {echo(self.threads, 40)}. "
+                             "Give a count up to the machine's cores, or leave it out to use all cores.")
         if self.memory_limit is not None:
-            pairs.append(("memory_limit", str(self.memory_limit)))
+            match = _SIZE.match(str(self.memory_limit))
+            value = float(match.group(1)) if match else 0.0
+            if not match or value <= 0 or (match.group(2) == "%" and value > 100):
+                raise InputError(
+                    f"Option --memory-limit must be a positive size such as 500MB, 4GB or 2GiB, got '{echo(self.memory_limit, 40)}'. "
+                    "Give a number with a unit (KB, MB, GB, TB or KiB, MiB, GiB, TiB), or leave the option out for no limit.")
         if self.temp_directory is not None:
-            pairs.append(("temp_directory", str(self.temp_directory)))
-        return [(name, sqlbuild.setting_sql(name, value)) for name, value in pairs]
+            problem = _unwritable_folder(str(self.temp_directory))
+            if problem:
+                raise InputError(f"Option --temp-directory names '{echo(self.temp_directory)}', {problem}. "
+                                 "Give a folder you can write to, or leave the option out to use the system's temporary folder.")
+
+    def settings(self, spill_folder: str | None, threads: int | None = None) -> list[str]:
+        """SET statements for a connection; ``spill_folder`` None turns spilling off,
+        ``threads`` overrides the worker count (1 for the chunk instance)."""
+        out = [
+            "SET enable_progress_bar = false",
+            "SET enable_progress_bar_print = false",
+            "SET preserve_insertion_order = true",
+            "SET parquet_metadata_cache = true",
+        ]
+        threads = threads or self.threads
+        if threads is not None:
+            out.append(f"SET threads = {int(threads)}")
+        if self.memory_limit is not None:
+            out.append(f"SET memory_limit = {sqlbuild.quote_literal(self.memory_limit)}")
+        out.append(f"SET temp_directory = {sqlbuild.quote_literal(spill_folder or '')}")
+        return out
+
+
+def _unwritable_folder(path: str) -> str | None:
+    """Why ``path`` cannot be made (if missing) and written to, or None when it can. The
+    folder is made and a probe folder created and removed in it: permission bits alone
+    do not tell (root passes them, a read-only or virtual file system does not)."""
+    import tempfile
+
+    if lockdown.is_remote(path):
+        return "which is a remote URL, not a local folder"
+    if os.path.exists(path) and not os.path.isdir(path):
+        return "which is a file, not a folder"
+    try:
+        os.makedirs(path, exist_ok=True)
+        os.rmdir(tempfile.mkdtemp(prefix="bigpanel-probe-", dir=path))
+    except OSError as exc:
+        reason = (exc.strerror or type(exc).__name__).lower()
+        return f"which cannot be {'written to' if os.path.isdir(path) else 'made'} ({reason})"
+    return None
 
 
 @dataclass(frozen=True)
@@ -182,34 +236,90 @@ class Source:
         column) only units in [``$unit_low``, ``$unit_high``) are kept, a NULL bound being
         open: the bounds travel as parameters, so every chunk of a scan runs the same SQL
         text, and DuckDB still skips row groups by them (both checked with EXPLAIN ANALYZE)."""
-        return sqlbuild.filtered_sql(self.relation(files), self.where_sql, unit_range)
+        conditions = [f"({self.where_sql})"] if self.where_sql else []
+        if unit_range is not None:
+            column = sqlbuild.quote_ident(unit_range)
+            conditions.append(f"($unit_low IS NULL OR {column} >= $unit_low) AND ($unit_high IS NULL OR {column} < $unit_high)")
+        where = f" WHERE {' AND '.join(conditions)}" if conditions else ""
+        return f"(SELECT * FROM {self.relation(files)}{where})"
 
-    def connect(self) -> duckdb.DuckDBPyConnection:
-        """A fresh in-memory connection with the engine settings and the source attached."""
-        con = duckdb.connect(":memory:")
-        for setting, statement in self.engine.settings():
+    def connect(self, spill_folder: str | None = None, threads: int | None = None) -> duckdb.DuckDBPyConnection:
+        """A fresh in-memory DuckDB instance with the engine settings and the source
+        attached, then locked down (:mod:`bigpanel.lockdown`): it can read the source's
+        files only and its settings cannot change. ``spill_folder`` None: no spilling."""
+        con = duckdb.connect(":memory:", config={"autoinstall_known_extensions": False, "autoload_known_extensions": False})
+        try:
+            self._set_up(con, spill_folder, threads)
+        except BaseException:
+            con.close()
+            raise
+        return con
+
+    def _set_up(self, con: duckdb.DuckDBPyConnection, spill_folder: str | None, threads: int | None) -> None:
+        for statement in self.engine.settings(spill_folder, threads):
             try:
                 con.execute(statement)
             except duckdb.Error as exc:
-                con.close()
+                setting = statement.split()[1]
+                option = {"memory_limit": "--memory-limit", "temp_directory": "--temp-directory"}.get(setting, setting)
                 raise InputError(
-                    f"Option '{setting}' was refused by DuckDB ({_first_line(exc)}). "
-                    "Give a size like 4GB for the memory limit, or an existing folder for the temporary directory."
+                    f"Option {option} was refused by DuckDB ({_first_line(exc)}). "
+                    "Give a size like 4GB for the memory limit, or a writable folder for the temporary directory."
                 ) from None
         if self.database is not None:
             try:
                 con.execute(sqlbuild.attach_sql(self.database, _ATTACHED))
             except duckdb.Error as exc:
-                con.close()
                 raise InputError(
                     f"DuckDB file '{self.database}' could not be opened read-only ({_first_line(exc)}). "
                     "Check that it is a DuckDB database written by a compatible version."
                 ) from None
             if self.kind == "query":
-                con.execute(sqlbuild.use_sql(_ATTACHED))
+                con.execute(f"USE {sqlbuild.quote_ident(_ATTACHED)}")
         if self.frame is not None:
             con.register(_FRAME_VIEW, self.frame)
-        return con
+        files, folders = self._allowed()
+        for statement in lockdown.lockdown_sql(files, folders):
+            con.execute(statement)
+
+    def _allowed(self) -> tuple[list[str], list[str]]:
+        """Files and folders this source's queries may read (the DuckDB file is attached
+        already and needs no entry)."""
+        if self.kind in ("parquet", "csv"):
+            return [os.path.abspath(f) for f in self.files], []
+        if self.kind == "query" and self.query_sql:
+            return lockdown.allowed_for_query(lockdown.query_reads(parse_tree(self.query_sql)))
+        return [], []
+
+
+def _subfolder(folder: str, name: str) -> str:
+    """A spill subfolder, one per DuckDB instance (made now, so it is there to inspect)."""
+    path = os.path.join(folder, name)
+    os.makedirs(path, exist_ok=True)
+    return path
+
+
+def out_of_memory_message(source: Source, spill_folder: str, message: str) -> str:
+    """The next step after DuckDB ran out of memory, for the settings in force."""
+    import shutil
+
+    engine = source.engine
+    try:
+        free = f"{shutil.disk_usage(spill_folder).free / 1e9:.1f} GB free"
+    except OSError:
+        free = "free space unknown"
+    if engine.temp_directory:
+        spill = f"--temp-directory '{echo(engine.temp_directory)}' ({free})"
+        more_disk = "free space in --temp-directory or point it at a larger disk"
+    else:
+        spill = f"the system's temporary folder {os.path.dirname(spill_folder)} ({free})"
+        more_disk = "give --temp-directory on a disk with more free space"
+    if engine.memory_limit is None:
+        return (f"DuckDB ran out of memory on {source.label} with no --memory-limit set ({message}); "
+                f"it spills to {spill}. Set --memory-limit below this machine's free memory (for example 4GB) "
+                f"so that DuckDB spills to disk sooner, or {more_disk}.")
+    return (f"DuckDB ran out of memory on {source.label} under --memory-limit {echo(engine.memory_limit, 40)} ({message}); "
+            f"it spills to {spill}. Raise --memory-limit if the machine has the memory, or {more_disk}.")
 
 
 def _first_line(exc: BaseException) -> str:
@@ -347,6 +457,7 @@ def open_source(
         src = Source(kind="frame", label=f"in-memory {type(source).__name__}", frame=_as_arrow(source), **common)
     else:
         path = str(source)
+        lockdown.refuse_remote_source(path)
         lower = path.lower()
         if lower.endswith((".duckdb", ".db", ".ddb")):
             if not os.path.exists(path):
@@ -410,12 +521,28 @@ class Session:
 
     def __init__(self, source: Source):
         self.source = source
-        self.con = source.connect()
         self._lock = threading.Lock()
         self._columns: dict[str, str] | None = None
+        self._single: lockdown.LockedConnection | None = None
+        self._closed = False
+        self.spill_folder = interrupts.private_folder(source.engine.temp_directory)
+        try:
+            self.con = lockdown.LockedConnection(source.connect(_subfolder(self.spill_folder, "main")), check_select)
+        except BaseException:
+            interrupts.remove_folder(self.spill_folder)
+            raise
 
     def close(self) -> None:
-        self.con.close()
+        """Close the connections and remove the private spill folder (idempotent)."""
+        if self._closed:
+            return
+        self._closed = True
+        try:
+            for con in (self._single, self.con):
+                if con is not None:
+                    con.close()
+        finally:
+            interrupts.remove_folder(self.spill_folder)
 
     def __enter__(self) -> "Session":
         return self
@@ -424,7 +551,7 @@ class Session:
         self.close()
 
     # ---- running
-    def run(self, sql: str, params: Sequence[Any] | None = None, con: duckdb.DuckDBPyConnection | None = None):
+    def run(self, sql: str, params: Sequence[Any] | None = None, con: lockdown.LockedConnection | None = None):
         """Run a query and return a pyarrow Table of its (aggregate) result. The query is
         parsed first and must be exactly one SELECT (else it is not run: a bug)."""
         check_select(sql)
@@ -441,16 +568,39 @@ class Session:
         rows = self.con.execute(sqlbuild.describe_sql(sql)).fetchall()
         return [(r[0], r[1]) for r in rows]
 
-    def cursor(self, threads: int | None = None) -> duckdb.DuckDBPyConnection:
-        cur = self.con.cursor()
-        if threads is not None:
-            cur.execute(sqlbuild.setting_sql("threads", int(threads)))
-        return cur
+    def cursor(self, threads: int | None = None) -> lockdown.LockedConnection:
+        """A cursor for a query in another Python thread; close it after use.
 
-    def _explain(self, exc: duckdb.Error) -> Exception:
+        ``threads=1``: a cursor of a second DuckDB instance set up like the first but
+        with one worker thread (its own spill subfolder), made on first use. Chunk
+        queries run there, each on one thread, so the order of every sum is fixed
+        (bitwise reproducible runs); the configuration is locked, so the thread count
+        cannot be changed per cursor. ``threads=None``: a cursor of the main instance.
+        """
+        if threads is None:
+            return self.con.cursor()
+        if threads != 1:
+            raise ValueError("Session.cursor takes threads=None (all) or threads=1")
+        with self._lock:
+            if self._single is None:
+                folder = _subfolder(self.spill_folder, "single")
+                self._single = lockdown.LockedConnection(self.source.connect(folder, threads=1), check_select)
+        return self._single.cursor()
+
+    def _explain(self, exc: duckdb.Error) -> BaseException:
         from .errors import BigpanelError
 
+        if interrupts.received() is not None:
+            return interrupts.Interrupted(interrupts.received())
         message = echo(_first_line(exc))
+        if isinstance(exc, duckdb.InterruptException):
+            return BigpanelError(f"The query on {self.source.label} was interrupted.")
+        if isinstance(exc, duckdb.PermissionException):
+            reached = re.search(r'"([^"]*)"', str(exc))
+            return InputError(
+                f"SQL on {self.source.label} tried to reach '{echo(reached.group(1)) if reached else message}', "
+                "which bigpanel does not open: queries may read the source's own files only. "
+                "Name that file as the source, or read it in --query.")
         settled = (duckdb.ParserException, duckdb.BinderException, duckdb.CatalogException, duckdb.OutOfMemoryException,
                    duckdb.InterruptException)
         if self.source.kind == "parquet" and not isinstance(exc, settled):
@@ -473,7 +623,7 @@ class Session:
         if isinstance(exc, duckdb.ConversionException):
             return InputError(f"A value in {self.source.label} could not be converted ({message}). Check the column types or pass csv types.")
         if isinstance(exc, duckdb.OutOfMemoryException):
-            return BigpanelError(f"DuckDB ran out of memory ({message}). Raise --memory-limit or set --temp-directory for spilling.")
+            return BigpanelError(out_of_memory_message(self.source, self.spill_folder, message))
         if isinstance(exc, (duckdb.ParserException, duckdb.BinderException, duckdb.CatalogException)):
             return InputError(f"SQL on {self.source.label} was refused ({message}). Check the filter, terms and query.")
         return BigpanelError(f"DuckDB failed on {self.source.label}: {message}")

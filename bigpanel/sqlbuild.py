@@ -470,7 +470,8 @@ def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods:
     if not by_unit:
         adjusted = "r.k_c0, " + adjusted
     return render("unit_scores", used=used, adjusted=adjusted, period_join=period_join_sql(n_periods, q - 1),
-                  pick=pick, sum_e=f"{total}(e)", unit_sums=unit_sums, scores=scores, final=final)
+                  pick=pick, sum_e=f"{total}(e)", unit_sums=unit_sums, scores=scores, final=final,
+                  keep="n > 1" if demean else "true")
 
 
 def twoway_pass_sql(used: str, q: int, first: int, last: int, total: str = "sum") -> str:

@@ -9,11 +9,13 @@
 --          {{sum_e}}, {{unit_sums}}  sum(e); sum(a_j * e) AS ae_j, sum(a_j) AS sa_j (fsum on
 --                        one multi-threaded query);
 --          {{scores}}      the unit's score e_j from its sums;
+--          {{keep}}        which units are in the fit (within: n > 1; a singleton unit is left out,
+--                          and so is not counted as a cluster);
 --          {{final}}       the outer sums over units (unit clusters) or per-cluster sums.
 -- params:  $s_j shifts, $b_j coefficients, period values and effects.
 -- output:  one row (n_groups, o_j_l), or one row per cluster (g, e_j).
 WITH used AS ({{used}}),
 adjusted AS (SELECT r.k_unit, {{adjusted}} FROM used AS r {{period_join}}),
 per_unit AS (SELECT {{pick}} AS g, count(*) AS n, {{sum_e}} AS se, {{unit_sums}} FROM adjusted GROUP BY k_unit),
-scores AS (SELECT g, {{scores}} FROM per_unit)
+scores AS (SELECT g, {{scores}} FROM per_unit WHERE {{keep}})
 {{final}}

@@ -9,8 +9,7 @@ Python warning, no file written or changed; and at most about 200 characters of 
 user text. ``test_readme_matches_cases`` keeps README's table and CASES the same.
 
 To add a case: add a row to CASES (a trap file, if it needs one, to bad_input_data.py)
-and the same row to README's table; run this file. Rows another branch is still
-delivering go in PENDING (expected to fail until that branch is merged; then move them).
+and the same row to README's table; run this file.
 """
 
 from __future__ import annotations
@@ -75,9 +74,18 @@ CASES = [
     Case("bigpanel fit depots.parquet $FIT --period-step abc",
          "Error: Invalid value for '--period-step': … integer", 2, usage=True),
     Case("bigpanel fit depots.parquet $FIT --threads 0",
-         "Option 'threads' must be at least 1, got 0. Give a positive count.", 2),
+         "Option --threads must be a whole number from 1 to …, got 0. Give a count up to the machine's cores, or leave it out to use all cores.", 2),
+    # DuckDB aborts the whole process (std::bad_alloc) on such a count if it gets it: isolated in a subprocess
+    Case("bigpanel fit depots.parquet $FIT --threads 999999999999",
+         "Option --threads must be a whole number from 1 to …, got 999999999999. Give a count up to the machine's cores, or leave it out to use all cores.", 2, isolated=True),
     Case("bigpanel fit depots.parquet $FIT --memory-limit lots",
-         "Option 'memory_limit' was refused by DuckDB (…). Give a size like 4GB for the memory limit, or an existing folder for the temporary directory.", 2),
+         "Option --memory-limit must be a positive size such as 500MB, 4GB or 2GiB, got 'lots'. Give a number with a unit (KB, MB, GB, TB or KiB, MiB, GiB, TiB), or leave the option out for no limit.", 2),
+    Case("bigpanel fit depots.parquet $FIT --memory-limit -1GB",
+         "Option --memory-limit must be a positive size such as 500MB, 4GB or 2GiB, got '-1GB'. Give a number with a unit (KB, MB, GB, TB or KiB, MiB, GiB, TiB), or leave the option out for no limit.", 2),
+    Case("bigpanel fit depots.parquet $FIT --temp-directory /proc/bigpanel-spill",
+         "Option --temp-directory names '/proc/bigpanel-spill', which cannot be made (…). Give a folder you can write to, or leave the option out to use the system's temporary folder.", 2),
+    Case("bigpanel checkup --query \"SELECT * FROM read_parquet('https://example.invalid/depots.parquet')\" $KEYS",
+         "Option --query reads the remote URL 'https://example.invalid/depots.parquet'; bigpanel reads local files only. Download the data and read the local copy.", 2),
     Case("bigpanel fit depots.parquet $FIT --regressors staff_hours,staff_hours",
          "Option 'regressors' lists 'staff_hours' twice. Give each term once.", 2),
     Case('bigpanel fit depots.parquet $FIT --regressors ""',
@@ -206,18 +214,6 @@ CASES = [
          "Values of 'staff_hours' are out of a double's reach for this fit (its estimate or standard error is beyond a double's range). Rescale the term or the outcome by a power of ten in the term or a query, and scale the estimate back.", 2),
 ]  # fmt: skip
 
-# Rows whose behaviour another branch of issue 7 delivers; each fails here until that
-# branch is merged (strict: a pass then fails the run, so the row is moved to CASES and
-# README). The message is only the part every wording must have.
-PENDING = [
-    Case("bigpanel fit depots.parquet $FIT --memory-limit -1GB", "--memory-limit", 2),
-    Case("bigpanel fit depots.parquet $FIT --temp-directory /proc/bigpanel-spill", "--temp-directory", 2),
-    Case("bigpanel checkup --query \"SELECT * FROM read_parquet('https://example.invalid/depots.parquet')\" $KEYS", "remote", 2),
-    # today DuckDB aborts the whole process (std::bad_alloc): isolated in a subprocess
-    Case("bigpanel fit depots.parquet $FIT --threads 999999999999", "threads", 2, isolated=True),
-]  # fmt: skip
-
-
 @pytest.fixture(scope="module")
 def folder(tmp_path_factory) -> Path:
     root = make_files(tmp_path_factory.mktemp("bad_input"))
@@ -309,12 +305,6 @@ def _check(case: Case, folder: Path, monkeypatch) -> None:
 
 @pytest.mark.parametrize("case", CASES, ids=[c.line.removeprefix("bigpanel ") for c in CASES])
 def test_catalogue(case: Case, folder: Path, monkeypatch):
-    _check(case, folder, monkeypatch)
-
-
-@pytest.mark.parametrize("case", [pytest.param(c, marks=pytest.mark.xfail(strict=True, reason="delivered by another branch"))
-                                  for c in PENDING], ids=[c.line.removeprefix("bigpanel ") for c in PENDING])
-def test_pending(case: Case, folder: Path, monkeypatch):
     _check(case, folder, monkeypatch)
 
 

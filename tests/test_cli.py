@@ -98,7 +98,7 @@ def test_duplicate_keys_exit_1_after_the_report(data, capsys):
         pytest.param(["depots.parquet", *KEYS, "--where", "parcels >>> 3 AND"], ["Filter 'parcels >>> 3 AND'"], id="filter-not-sql"),
         pytest.param(["depots.parquet", *KEYS, "--where", "region > 99"],
                      ["depots.parquet", "no rows after the filter 'region > 99'"], id="empty-after-filter"),
-        pytest.param(["depots.parquet", *KEYS, "--memory-limit", "lots"], ["memory_limit"], id="bad-memory-limit"),
+        pytest.param(["depots.parquet", *KEYS, "--memory-limit", "lots"], ["--memory-limit", "'lots'"], id="bad-memory-limit"),
         pytest.param(["depots.parquet", *KEYS, "--csv-types", "month"], ["--csv-types", "'month'"], id="bad-csv-types"),
     ],
 )
