@@ -302,9 +302,11 @@ class Executor:
         chunk by chunk (unit ranges: every total adds up across chunks, bounds take min/max)."""
         rows = scan.rows
 
+        total = moments.sum_function(self.chunks())  # plain sums on one-thread chunks
+
         def make(chunk):
             return sqlbuild.shared_moments_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
-                                               self.keys.step, scan.nesting_checks())
+                                               self.keys.step, scan.nesting_checks(), total)
 
         parts = [t[0] for t in self.run_chunked(make, params)]
         out = {}
@@ -331,11 +333,14 @@ class Executor:
         models, sets, values = score_models(scan, requests)
         keys = [k for k in ["k_unit"] + [f"k_c{i}" for i in range(len(scan.clusters))] if any(k in s for s in sets)]
 
+        chunked = all(s in (("k_unit",), ()) for s in sets)  # groups inside units: chunks add up
+        total = moments.sum_function(self.chunks() if chunked else [None])
+
         def make(chunk):
             return sqlbuild.shared_scores_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
-                                              self.keys.step, models, keys, sets)
+                                              self.keys.step, models, keys, sets, total)
 
-        if all(s in (("k_unit",), ()) for s in sets):  # groups inside units: chunks add up
+        if chunked:
             by_gid: dict = {}
             for table in self.run_chunked(make, {**params, **values}):
                 for r in table:

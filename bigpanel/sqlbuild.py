@@ -638,9 +638,10 @@ def sample_flags(samples: Sequence[Sequence[int]], differenced: bool, step: int)
 
 
 def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
-                       nesting: Sequence[tuple[int, int]] = (), dialect: Dialect = DUCKDB) -> str:
+                       nesting: Sequence[tuple[int, int]] = (), total: str = DUCKDB.compensated) -> str:
     """Cross-products of every sample in one scan; ``nesting`` lists (sample, cluster
-    position) pairs whose clusters are checked to hold whole units."""
+    position) pairs whose clusters are checked to hold whole units; ``total`` is the sum
+    function (compensated unless the query is one of several one-thread chunks)."""
     unit_sums = ["count(*) AS n_all", "min(k_period) AS lo", "max(k_period) AS hi"]
     totals = ["sum(n_all) AS n_rows", "min(lo) AS lo", "max(hi) AS hi"]
     if differenced:
@@ -653,18 +654,18 @@ def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced:
     for s, cols in enumerate(samples):
         unit_sums += [f"count(*) FILTER (WHERE f{s}) AS n{s}", f"count(*) FILTER (WHERE {usable}NOT m{s}) AS miss{s}",
                       f"min(k_period) FILTER (WHERE f{s}) AS tlo{s}", f"max(k_period) FILTER (WHERE f{s}) AS thi{s}"]
-        unit_sums += [f"{dialect.compensated}({_z(j)}) FILTER (WHERE f{s}) AS s{s}_{j}" for j in cols]
-        unit_sums += [f"{dialect.compensated}({_z(j)} * {_z(l)}) FILTER (WHERE f{s}) AS p{s}_{j}_{l}" for a, j in enumerate(cols) for l in cols[a:]]
+        unit_sums += [f"{total}({_z(j)}) FILTER (WHERE f{s}) AS s{s}_{j}" for j in cols]
+        unit_sums += [f"{total}({_z(j)} * {_z(l)}) FILTER (WHERE f{s}) AS p{s}_{j}_{l}" for a, j in enumerate(cols) for l in cols[a:]]
         totals += [f"count(k_unit) FILTER (WHERE n{s} > 0) AS units{s}", f"count(*) FILTER (WHERE n{s} > 1) AS wunits{s}",
                    f"count(*) FILTER (WHERE n{s} = 1) AS single{s}", f"sum(n{s}) AS n{s}",
                    f"sum(n{s}) FILTER (WHERE n{s} > 1) AS wn{s}", f"sum(n{s}) FILTER (WHERE n{s} = 1) AS single_rows{s}",
                    f"sum(miss{s}) AS miss{s}", f"min(tlo{s}) AS tlo{s}", f"max(thi{s}) AS thi{s}",
                    f"min(tlo{s}) FILTER (WHERE n{s} > 1) AS wtlo{s}", f"max(thi{s}) FILTER (WHERE n{s} > 1) AS wthi{s}"]
-        totals += [f"{dialect.compensated}(s{s}_{j}) AS tot_s{s}_{j}" for j in cols]
+        totals += [f"{total}(s{s}_{j}) AS tot_s{s}_{j}" for j in cols]
         for a, j in enumerate(cols):
             for l in cols[a:]:
-                totals.append(f"{dialect.compensated}(p{s}_{j}_{l}) AS tot_p{s}_{j}_{l}")
-                totals.append(f"{dialect.compensated}(p{s}_{j}_{l} - s{s}_{j} * s{s}_{l} / n{s}) FILTER (WHERE n{s} > 1) AS tot_w{s}_{j}_{l}")
+                totals.append(f"{total}(p{s}_{j}_{l}) AS tot_p{s}_{j}_{l}")
+                totals.append(f"{total}(p{s}_{j}_{l} - s{s}_{j} * s{s}_{l} / n{s}) FILTER (WHERE n{s} > 1) AS tot_w{s}_{j}_{l}")
     for s, c in nesting:
         unit_sums.append(f"count(DISTINCT k_c{int(c)}) FILTER (WHERE f{s}) AS d{s}_{c}")
         totals.append(f"count(*) FILTER (WHERE d{s}_{c} > 1) AS mixed{s}_{c}")
@@ -673,7 +674,8 @@ def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced:
 
 
 def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
-                      models: Sequence[dict], keys: Sequence[str], sets: Sequence[Sequence[str]], dialect: Dialect = DUCKDB) -> str:
+                      models: Sequence[dict], keys: Sequence[str], sets: Sequence[Sequence[str]],
+                      total: str = DUCKDB.compensated) -> str:
     """Meats of many models in one scan. Each model is a dict: ``sample`` (index),
     ``x`` (union indices of its regressors), ``y`` (its outcome), ``constant``,
     ``demean`` and ``hc1`` (bools). ``sets`` are the grouping sets over ``keys`` (some of
@@ -689,16 +691,16 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
         residuals.append(f"CASE WHEN f{s} THEN {u} END AS u{m}")
         residuals += [f"CASE WHEN f{s} THEN {x} END AS x{m}_{i}" for i, x in enumerate(xs)]
         tri = [(i, l) for i in range(k) for l in range(i, k)]
-        cell_sums += [f"count(*) FILTER (WHERE f{s}) AS n{m}", f"{dialect.compensated}(u{m}) AS su{m}"]
-        cell_sums += [f"{dialect.compensated}(x{m}_{i}) AS sx{m}_{i}, {dialect.compensated}(x{m}_{i} * u{m}) AS sxu{m}_{i}" for i in range(k)]
+        cell_sums += [f"count(*) FILTER (WHERE f{s}) AS n{m}", f"{total}(u{m}) AS su{m}"]
+        cell_sums += [f"{total}(x{m}_{i}) AS sx{m}_{i}, {total}(x{m}_{i} * u{m}) AS sxu{m}_{i}" for i in range(k)]
         if spec["hc1"]:
-            cell_sums.append(f"{dialect.compensated}(u{m} * u{m}) AS suu{m}")
-            cell_sums += [f"{dialect.compensated}(x{m}_{i} * u{m} * u{m}) AS sxuu{m}_{i}" for i in range(k)]
-            cell_sums += [f"{dialect.compensated}(x{m}_{i} * x{m}_{l}{suffix}) AS {name}{m}_{i}_{l}" for i, l in tri
+            cell_sums.append(f"{total}(u{m} * u{m}) AS suu{m}")
+            cell_sums += [f"{total}(x{m}_{i} * u{m} * u{m}) AS sxuu{m}_{i}" for i in range(k)]
+            cell_sums += [f"{total}(x{m}_{i} * x{m}_{l}{suffix}) AS {name}{m}_{i}_{l}" for i, l in tri
                           for suffix, name in (("", "sxx"), (f" * u{m}", "sxxu"), (f" * u{m} * u{m}", "sxxuu"))]
         if spec["demean"]:
-            unit_sums += [f", sum(n{m}) AS nn{m}", f", {dialect.compensated}(su{m}) / sum(n{m}) AS uu{m}"]
-            unit_sums += [f", {dialect.compensated}(sx{m}_{i}) / sum(n{m}) AS xx{m}_{i}" for i in range(k)]
+            unit_sums += [f", sum(n{m}) AS nn{m}", f", {total}(su{m}) / sum(n{m}) AS uu{m}"]
+            unit_sums += [f", {total}(sx{m}_{i}) / sum(n{m}) AS xx{m}_{i}" for i in range(k)]
             member = f"nn{m} > 1 AND n{m} > 0"
             # sum over the cell of (x - xbar)(u - ubar), unit means xbar, ubar
             scores += [f"CASE WHEN {member} THEN sxu{m}_{i} - uu{m} * sx{m}_{i} - xx{m}_{i} * su{m} "
@@ -717,12 +719,12 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
             if spec["hc1"]:
                 scores += [f"sxxuu{m}_{i}_{l} AS h{m}_{i}_{l}" for i, l in tri]
         scores.append(f"{member} AS k{m}")
-        group_sums += [f"{dialect.compensated}(g{m}_{i}) AS g{m}_{i}" for i in range(k)] + [f"count(*) FILTER (WHERE k{m}) AS n{m}"]
+        group_sums += [f"{total}(g{m}_{i}) AS g{m}_{i}" for i in range(k)] + [f"count(*) FILTER (WHERE k{m}) AS n{m}"]
         outer += [f"count(*) FILTER (WHERE n{m} > 0) AS ng{m}"]
-        outer += [f"{dialect.compensated}(g{m}_{i} * g{m}_{l}) AS o{m}_{i}_{l}" for i, l in tri]
+        outer += [f"{total}(g{m}_{i} * g{m}_{l}) AS o{m}_{i}_{l}" for i, l in tri]
         if spec["hc1"]:
-            group_sums += [f"{dialect.compensated}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
-            outer += [f"{dialect.compensated}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+            group_sums += [f"{total}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+            outer += [f"{total}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
     cell_keys = ["k_unit"] + [k for k in keys if k != "k_unit"]
     grouping_sets = "GROUPING SETS (" + ", ".join("(" + ", ".join(s) + ")" for s in sets) + ")"
     return render("shared_scores", rows=rows, flags=", ".join(sample_flags(samples, differenced, step)),
