@@ -50,6 +50,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 import statsmodels.api as sm
+from statsmodels.stats import sandwich_covariance as sw
 from hypothesis import HealthCheck, event, example, given, seed, settings
 from hypothesis import strategies as st
 
@@ -397,15 +398,15 @@ def _design(used: pd.DataFrame, m: dict, kept: list[str]) -> np.ndarray:
 
 def _reference_variance(x: np.ndarray, y: np.ndarray, used: pd.DataFrame, m: dict) -> np.ndarray:
     """statsmodels' covariance of the dummy-variable fit, with its own small-sample factor."""
-    model = sm.OLS(y, x)
+    ols = sm.OLS(y, x).fit()
     if m["se"] == "iid":
-        return model.fit().cov_params()
+        return ols.cov_params()
     if m["se"] == "hc1":
-        return model.fit(cov_type="HC1").cov_params()
+        return sw.cov_hc1(ols)
     # CR1 (ESTIMATION.md): statsmodels' raw sandwich (use_correction=False) times
     # G/(G-1) * (N-1)/(N-K'), K' leaving out the unit effects when they nest in the clusters
     groups = pd.factorize(used[m["cluster"]])[0]
-    raw = model.fit(cov_type="cluster", cov_kwds={"groups": groups, "use_correction": False}).cov_params()
+    raw = sw.cov_cluster(ols, groups, use_correction=False)
     n, g = len(y), groups.max() + 1
     nested = "unit" in m["effects"] and used.groupby("unit")[m["cluster"]].nunique().max() == 1
     k_prime = np.linalg.matrix_rank(x) - (used["unit"].nunique() if nested else 0)
