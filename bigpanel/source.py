@@ -151,22 +151,17 @@ class Engine:
                 raise InputError(f"Option --temp-directory names '{echo(self.temp_directory)}', {problem}. "
                                  "Give a folder you can write to, or leave the option out to use the system's temporary folder.")
 
-    def settings(self, spill_folder: str | None, threads: int | None = None) -> list[str]:
-        """SET statements for a connection; ``spill_folder`` None turns spilling off,
-        ``threads`` overrides the worker count (1 for the chunk instance)."""
-        out = [
-            "SET enable_progress_bar = false",
-            "SET enable_progress_bar_print = false",
-            "SET preserve_insertion_order = true",
-            "SET parquet_metadata_cache = true",
-        ]
+    def settings(self, spill_folder: str | None, threads: int | None = None) -> list[tuple[str, str]]:
+        """(setting, SET statement) pairs for a connection, built by sqlbuild; ``spill_folder``
+        None turns spilling off, ``threads`` overrides the worker count (1 for the chunk instance)."""
+        pairs = list(sqlbuild.BASE_SETTINGS)
         threads = threads or self.threads
         if threads is not None:
-            out.append(f"SET threads = {int(threads)}")
+            pairs.append(("threads", int(threads)))
         if self.memory_limit is not None:
-            out.append(f"SET memory_limit = {sqlbuild.quote_literal(self.memory_limit)}")
-        out.append(f"SET temp_directory = {sqlbuild.quote_literal(spill_folder or '')}")
-        return out
+            pairs.append(("memory_limit", str(self.memory_limit)))
+        pairs.append(("temp_directory", str(spill_folder or "")))
+        return [(name, sqlbuild.setting_sql(name, value)) for name, value in pairs]
 
 
 def _unwritable_folder(path: str) -> str | None:
@@ -236,12 +231,7 @@ class Source:
         column) only units in [``$unit_low``, ``$unit_high``) are kept, a NULL bound being
         open: the bounds travel as parameters, so every chunk of a scan runs the same SQL
         text, and DuckDB still skips row groups by them (both checked with EXPLAIN ANALYZE)."""
-        conditions = [f"({self.where_sql})"] if self.where_sql else []
-        if unit_range is not None:
-            column = sqlbuild.quote_ident(unit_range)
-            conditions.append(f"($unit_low IS NULL OR {column} >= $unit_low) AND ($unit_high IS NULL OR {column} < $unit_high)")
-        where = f" WHERE {' AND '.join(conditions)}" if conditions else ""
-        return f"(SELECT * FROM {self.relation(files)}{where})"
+        return sqlbuild.filtered_sql(self.relation(files), self.where_sql, unit_range)
 
     def connect(self, spill_folder: str | None = None, threads: int | None = None) -> duckdb.DuckDBPyConnection:
         """A fresh in-memory DuckDB instance with the engine settings and the source
@@ -256,11 +246,10 @@ class Source:
         return con
 
     def _set_up(self, con: duckdb.DuckDBPyConnection, spill_folder: str | None, threads: int | None) -> None:
-        for statement in self.engine.settings(spill_folder, threads):
+        for setting, statement in self.engine.settings(spill_folder, threads):
             try:
                 con.execute(statement)
             except duckdb.Error as exc:
-                setting = statement.split()[1]
                 option = {"memory_limit": "--memory-limit", "temp_directory": "--temp-directory"}.get(setting, setting)
                 raise InputError(
                     f"Option {option} was refused by DuckDB ({_first_line(exc)}). "
@@ -275,7 +264,7 @@ class Source:
                     "Check that it is a DuckDB database written by a compatible version."
                 ) from None
             if self.kind == "query":
-                con.execute(f"USE {sqlbuild.quote_ident(_ATTACHED)}")
+                con.execute(sqlbuild.use_sql(_ATTACHED))
         if self.frame is not None:
             con.register(_FRAME_VIEW, self.frame)
         files, folders = self._allowed()
