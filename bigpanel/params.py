@@ -13,7 +13,6 @@ from dataclasses import dataclass
 from typing import Any
 
 from .errors import InputError, echo
-from .expressions import split_top_level
 
 ESTIMATORS = ("pooled", "within", "first-difference")
 VARIANCES = ("iid", "hc1", "cluster")
@@ -72,6 +71,8 @@ def as_list(value: str | Sequence[str] | None) -> tuple[str, ...]:
     if value is None:
         return ()
     if isinstance(value, str):
+        from .expressions import split_top_level  # imported here: --help needs no engine
+
         return tuple(split_top_level(value))
     return tuple(str(v).strip() for v in value if str(v).strip())
 
