@@ -1,17 +1,23 @@
 PYTHON ?= python3.11
 VENV := .venv
-INSTALLED := $(VENV)/.installed
+BASE := $(VENV)/.installed-base
+TEST := $(VENV)/.installed-test
 
 .PHONY: demo test
 
-# The development environment: created on first use, refreshed when pyproject.toml changes.
-$(INSTALLED): pyproject.toml
+# The environment is created on first use and refreshed when pyproject.toml changes. The demo
+# installs the tool alone; the test tools (pytest, statsmodels, ...) come with `make test`.
+$(BASE): pyproject.toml
 	test -x $(VENV)/bin/python || $(PYTHON) -m venv $(VENV)
-	$(VENV)/bin/pip install -e '.[test]'
-	touch $(INSTALLED)
+	$(VENV)/bin/pip install -e .
+	touch $(BASE)
 
-demo: $(INSTALLED)
+$(TEST): $(BASE)
+	$(VENV)/bin/pip install -e '.[test]'
+	touch $(TEST)
+
+demo: $(BASE)
 	$(VENV)/bin/python -m bigpanel.demo
 
-test: $(INSTALLED)
+test: $(TEST)
 	$(VENV)/bin/python -m pytest
