@@ -146,7 +146,7 @@ def checkup_command(
 # The model options come from the one parameter table (bigpanel.params): names, help and
 # choices are declared there, so renaming an option is one line in that table.
 Estimator = Enum("Estimator", {v.replace("-", "_"): v for v in PARAMETERS["estimator"].choices}, type=str)
-VarianceKind = Enum("VarianceKind", {v: v for v in PARAMETERS["se"].choices}, type=str)
+VarianceKind = Enum("VarianceKind", {v: v for v in PARAMETERS["variance"].choices}, type=str)
 
 
 def _model_option(name: str):
@@ -163,7 +163,7 @@ def fit_command(
     period: Annotated[str, _model_option("period")] = ...,
     estimator: Annotated[Estimator, _model_option("estimator")] = Estimator(PARAMETERS["estimator"].default),
     effects: Annotated[Optional[str], _model_option("effects")] = None,
-    se: Annotated[Optional[VarianceKind], _model_option("se")] = None,
+    variance: Annotated[Optional[VarianceKind], _model_option("variance")] = None,
     cluster: Annotated[Optional[str], _model_option("cluster")] = None,
     no_intercept: Annotated[bool, _model_option("intercept")] = False,
     period_step: Annotated[int, _model_option("period_step")] = PARAMETERS["period_step"].default,
@@ -184,7 +184,7 @@ def fit_command(
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", BigpanelWarning)
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
-                     se=se.value if se else None, cluster=cluster, intercept=False if no_intercept else None,
+                     variance=variance.value if variance else None, cluster=cluster, intercept=False if no_intercept else None,
                      period_step=period_step)
     for w in caught:  # each note once, on stderr (the table below leaves them out)
         if issubclass(w.category, BigpanelWarning):

@@ -130,7 +130,7 @@ def build_design(executor, spec: FitSpec) -> Design:
             if base not in levels:
                 raise InputError(f"Term '{echo(term.text)}': base level '{echo(base)}' does not occur in column '{echo(term.expr)}'; "
                                  f"name one of its levels ({echo(', '.join(map(str, levels[:10])))}) as the base.")
-            columns += [Column(sqlbuild.indicator_sql(quoted, level), "indicator", f"{term.expr}[{level}]")
+            columns += [Column(sqlbuild.indicator_sql(quoted, level), "indicator", f"{term.expr}={level}")
                         for level in levels if level != base]
         else:
             text = term.text if term.kind == "expr" else term.expr
@@ -145,7 +145,7 @@ def period_indicators(executor, spec: FitSpec) -> list[Column]:
     """Indicator columns for every period but the first (period effects as columns)."""
     quoted = sqlbuild.quote_ident(spec.period)
     values = sorted(distinct_levels(executor, quoted), key=_period_key)[1:]
-    return [Column(sqlbuild.indicator_sql(quoted, v), "effect", f"{spec.period}[{v}]") for v in values]
+    return [Column(sqlbuild.indicator_sql(quoted, v), "effect", f"{spec.period}={v}") for v in values]
 
 
 def _period_key(value: str):

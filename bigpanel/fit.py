@@ -43,7 +43,7 @@ def fit(
     period: str,
     estimator: str = "within",
     effects=None,
-    se: str | None = None,
+    variance: str | None = None,
     cluster=None,
     where: str | None = None,
     intercept: bool | None = None,
@@ -70,8 +70,8 @@ def fit(
     effects : str or list of str, optional
         Fixed effects: within defaults to the unit and may add the period; for first
         differences, the period adds period intercepts to the differenced equation.
-    se : {"iid", "hc1", "cluster"}, optional
-        Default: cluster for within and first differences, iid for pooled.
+    variance : {"homoskedastic", "hc1", "cluster"}, optional
+        Default: cluster for within and first differences, homoskedastic for pooled.
     cluster : str or list of str, optional
         One or two cluster columns (default: the unit).
     where : str, optional
@@ -81,7 +81,7 @@ def fit(
     period_step : int
         Distance between consecutive periods (default 1).
     """
-    spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, se, cluster, intercept, period_step)
+    spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step)
     src = _source(source, where, table, query, csv_types, engine)
     notes = Notes([])
     try:
@@ -117,7 +117,7 @@ def fit_many(
     ----------
     models : list of dict
         Each with the model keys of :func:`fit` (``outcome``, ``regressors``, ``estimator``,
-        ``effects``, ``se``, ``cluster``, ``intercept``); ``unit``, ``period`` and
+        ``effects``, ``variance``, ``cluster``, ``intercept``); ``unit``, ``period`` and
         ``period_step`` are shared and may be repeated only with the same value.
     Other parameters as in :func:`fit`.
 
@@ -255,7 +255,7 @@ def pilot(est: estimators.Estimator, executor: Executor, design: Design, params:
     """Coefficients from the first rows, the centre of the one-pass unit-cluster meat
     expansion; None when the model is too large for it or clusters are not units."""
     spec = est.spec
-    if not (spec.se == "cluster" and spec.cluster == (spec.unit,) and est.expands):
+    if not (spec.variance == "cluster" and spec.cluster == (spec.unit,) and est.expands):
         return None
     k = design.q - 1 + (1 if est.constant else 0)
     if k > MAX_EXPANDED:

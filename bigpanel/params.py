@@ -16,7 +16,7 @@ from .errors import InputError, echo
 from .expressions import split_top_level
 
 ESTIMATORS = ("pooled", "within", "first-difference")
-VARIANCES = ("iid", "hc1", "cluster")
+VARIANCES = ("homoskedastic", "hc1", "cluster")
 
 
 @dataclass(frozen=True)
@@ -56,7 +56,7 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("estimator", "choice", "pooled, within or first-difference.", default="within", choices=ESTIMATORS),
     Param("effects", "columns", "Fixed effects: within defaults to the unit (add the period with --effects UNIT,PERIOD); "
           "first-difference takes the period for period intercepts."),
-    Param("se", "choice", "Variance: iid, hc1 or cluster (default: cluster for within and first-difference, iid for "
+    Param("variance", "choice", "Variance: homoskedastic, hc1 or cluster (default: cluster for within and first-difference, homoskedastic for "
           "pooled).", choices=VARIANCES),
     Param("cluster", "columns", "One or two cluster columns, comma-separated (default: the unit)."),
     Param("intercept", "flag", "Intercept of pooled and first-difference fits (kept by default; --no-intercept drops it).",
