@@ -93,6 +93,8 @@ def numeric_expression(engine, text: str, sql: str, what: str, notes: list[str])
         if not engine.is_numeric(cols[name]):
             advice = (f"Use levels({name}) for a categorical column, or convert it in an expression." if what == "Term"
                       else "Give a numeric outcome, or convert it in an expression.")
+            if cols[name].upper() == "VARCHAR":
+                advice += " If it holds numbers and tokens such as NA, read those as missing with --csv-null."
             raise InputError(f"Column '{echo(name)}' in {engine.label} has type {cols[name]}, not a number. {advice}")
         return sqlbuild.quote_ident(name)
     if _BASE_TEN_LOG.search(sql):

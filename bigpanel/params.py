@@ -49,7 +49,7 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("outcome", "expression", "Outcome column or SQL expression, e.g. \"ln(parcels)\".", required=True,
           empty="Name the outcome column or expression."),
     Param("regressors", "terms", "Terms separated by commas (not inside parentheses): columns, SQL expressions, "
-          "lag(EXPR[, K]), levels(COLUMN[, 'BASE']).", required=True,
+          "lag(EXPR[, K]), lead(EXPR[, K]), levels(COLUMN[, 'BASE']).", required=True,
           empty="Give at least one term, separated by commas."),
     Param("unit", "column", "Column identifying the unit (depot, store, worker, ...).", required=True),
     Param("period", "column", "Column identifying the period (whole numbers for differences and lags).", required=True),

@@ -5,6 +5,8 @@ as SQL scalar expressions over the source's columns (each parsed once by DuckDB 
 as SQL rendered from the checked tree, :mod:`bigpanel.expressions`), plus two forms of our
 own:
 
+- ``lead(EXPR)`` or ``lead(EXPR, K)``: EXPR in the same unit K periods later (a lag of
+  minus K, with the same rules);
 - ``lag(EXPR)`` or ``lag(EXPR, K)``: EXPR in the same unit K periods earlier; missing
   (and the row dropped) when that period is absent, so gaps are respected.
 - ``levels(COLUMN)`` or ``levels(COLUMN, 'BASE')``: one 0/1 indicator per level of a
