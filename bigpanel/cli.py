@@ -46,7 +46,7 @@ TableOpt = Annotated[Optional[str], typer.Option("--table", help="Table or view 
 QueryOpt = Annotated[Optional[str], typer.Option("--query", help="A SQL query giving the rows (inside the DuckDB file, or on its own).")]
 WhereOpt = Annotated[Optional[str], typer.Option("--where", help="SQL predicate keeping rows, e.g. \"region = 'north'\".")]
 CsvTypesOpt = Annotated[Optional[str], typer.Option("--csv-types", help="Override detected CSV column types: \"col=TYPE,col2=TYPE\".")]
-CsvNullOpt = Annotated[Optional[list[str]], typer.Option("--csv-null", help="Extra CSV token read as a missing value, e.g. NA or \".\" "
+CsvNullOpt = Annotated[Optional[list[str]], typer.Option("--csv-null", metavar="TOKEN", help="Extra CSV token read as a missing value, e.g. NA or \".\" "
                                                           "(repeat the option, or separate tokens by commas: --csv-null NA,.); "
                                                           "empty fields are always missing.")]
 ThreadsOpt = Annotated[Optional[int], typer.Option("--threads", help="DuckDB worker threads (default: all cores).")]
