@@ -46,6 +46,9 @@ TableOpt = Annotated[Optional[str], typer.Option("--table", help="Table or view 
 QueryOpt = Annotated[Optional[str], typer.Option("--query", help="A SQL query giving the rows (inside the DuckDB file, or on its own).")]
 WhereOpt = Annotated[Optional[str], typer.Option("--where", help="SQL predicate keeping rows, e.g. \"region = 'north'\".")]
 CsvTypesOpt = Annotated[Optional[str], typer.Option("--csv-types", help="Override detected CSV column types: \"col=TYPE,col2=TYPE\".")]
+CsvNullOpt = Annotated[Optional[list[str]], typer.Option("--csv-null", metavar="TOKEN", help="Extra CSV token read as a missing value, e.g. NA or \".\" "
+                                                          "(repeat the option, or separate tokens by commas: --csv-null NA,.); "
+                                                          "empty fields are always missing.")]
 ThreadsOpt = Annotated[Optional[int], typer.Option("--threads", help="DuckDB worker threads (default: all cores).")]
 MemoryLimitOpt = Annotated[Optional[str], typer.Option("--memory-limit", help="DuckDB memory limit, e.g. 2GB; past it DuckDB spills to disk.")]
 TempDirectoryOpt = Annotated[Optional[str], typer.Option("--temp-directory", help="Folder for DuckDB's spill files.")]
@@ -59,6 +62,7 @@ def _source_from_options(
     query: str | None = None,
     where: str | None = None,
     csv_types: str | None = None,
+    csv_nulls: list[str] | None = None,
     threads: int | None = None,
     memory_limit: str | None = None,
     temp_directory: str | None = None,
@@ -67,7 +71,9 @@ def _source_from_options(
     from .source import Engine, open_source
 
     engine = Engine(threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
-    return open_source(source, table=table, query=query, where=where, csv_types=_parse_csv_types(csv_types), engine=engine)
+    nulls = [token for item in csv_nulls or () for token in item.split(",")] or None
+    return open_source(source, table=table, query=query, where=where, csv_types=_parse_csv_types(csv_types), engine=engine,
+                       csv_nulls=nulls)
 
 
 _TYPE_SEPARATOR = re.compile(r",(?![^()]*\))")  # commas outside parentheses: DECIMAL(10,2) stays whole
@@ -121,6 +127,7 @@ def checkup_command(
     query: QueryOpt = None,
     where: WhereOpt = None,
     csv_types: CsvTypesOpt = None,
+    csv_null: CsvNullOpt = None,
     threads: ThreadsOpt = None,
     memory_limit: MemoryLimitOpt = None,
     temp_directory: TempDirectoryOpt = None,
@@ -130,7 +137,7 @@ def checkup_command(
     how much each numeric column varies within units. Exits 1 when keys are duplicated."""
     from .panel import inspect_panel
 
-    src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types,
+    src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types, csv_nulls=csv_null,
                                threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
     report = inspect_panel(src, unit, period, _split_names(columns))
     if as_json:
@@ -146,7 +153,7 @@ def checkup_command(
 # The model options come from the one parameter table (bigpanel.params): names, help and
 # choices are declared there, so renaming an option is one line in that table.
 Estimator = Enum("Estimator", {v.replace("-", "_"): v for v in PARAMETERS["estimator"].choices}, type=str)
-VarianceKind = Enum("VarianceKind", {v: v for v in PARAMETERS["se"].choices}, type=str)
+VarianceKind = Enum("VarianceKind", {v: v for v in PARAMETERS["variance"].choices}, type=str)
 
 
 def _model_option(name: str):
@@ -163,7 +170,7 @@ def fit_command(
     period: Annotated[str, _model_option("period")] = ...,
     estimator: Annotated[Estimator, _model_option("estimator")] = Estimator(PARAMETERS["estimator"].default),
     effects: Annotated[Optional[str], _model_option("effects")] = None,
-    se: Annotated[Optional[VarianceKind], _model_option("se")] = None,
+    variance: Annotated[Optional[VarianceKind], _model_option("variance")] = None,
     cluster: Annotated[Optional[str], _model_option("cluster")] = None,
     no_intercept: Annotated[bool, _model_option("intercept")] = False,
     period_step: Annotated[int, _model_option("period_step")] = PARAMETERS["period_step"].default,
@@ -171,6 +178,7 @@ def fit_command(
     query: QueryOpt = None,
     where: WhereOpt = None,
     csv_types: CsvTypesOpt = None,
+    csv_null: CsvNullOpt = None,
     threads: ThreadsOpt = None,
     memory_limit: MemoryLimitOpt = None,
     temp_directory: TempDirectoryOpt = None,
@@ -179,12 +187,12 @@ def fit_command(
     """Estimate a pooled, within or first-difference regression with cluster-robust inference."""
     from .fit import fit
 
-    src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types,
+    src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types, csv_nulls=csv_null,
                                threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", BigpanelWarning)
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
-                     se=se.value if se else None, cluster=cluster, intercept=False if no_intercept else None,
+                     variance=variance.value if variance else None, cluster=cluster, intercept=False if no_intercept else None,
                      period_step=period_step)
     for w in caught:  # each note once, on stderr (the table below leaves them out)
         if issubclass(w.category, BigpanelWarning):

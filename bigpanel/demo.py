@@ -69,7 +69,7 @@ def compare_estimators(folder: Path) -> str:
         started = time.perf_counter()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            results[name] = fit(folder, "parcels", regressors, unit="depot", period="month", se="cluster",
+            results[name] = fit(folder, "parcels", regressors, unit="depot", period="month", variance="cluster",
                                 cluster="region", **options)
         seconds[name] = time.perf_counter() - started
     n_regions = results["within"].variance.n_clusters[0]

@@ -93,6 +93,8 @@ def numeric_expression(engine, text: str, sql: str, what: str, notes: list[str])
         if not engine.is_numeric(cols[name]):
             advice = (f"Use levels({name}) for a categorical column, or convert it in an expression." if what == "Term"
                       else "Give a numeric outcome, or convert it in an expression.")
+            if cols[name].upper() == "VARCHAR":
+                advice += " If it holds numbers and tokens such as NA, read those as missing with --csv-null."
             raise InputError(f"Column '{echo(name)}' in {engine.label} has type {cols[name]}, not a number. {advice}")
         return sqlbuild.quote_ident(name)
     if _BASE_TEN_LOG.search(sql):
@@ -130,7 +132,7 @@ def build_design(executor, spec: FitSpec) -> Design:
             if base not in levels:
                 raise InputError(f"Term '{echo(term.text)}': base level '{echo(base)}' does not occur in column '{echo(term.expr)}'; "
                                  f"name one of its levels ({echo(', '.join(map(str, levels[:10])))}) as the base.")
-            columns += [Column(sqlbuild.indicator_sql(quoted, level), "indicator", f"{term.expr}[{level}]")
+            columns += [Column(sqlbuild.indicator_sql(quoted, level), "indicator", f"{term.expr}={level}")
                         for level in levels if level != base]
         else:
             text = term.text if term.kind == "expr" else term.expr
@@ -145,7 +147,7 @@ def period_indicators(executor, spec: FitSpec) -> list[Column]:
     """Indicator columns for every period but the first (period effects as columns)."""
     quoted = sqlbuild.quote_ident(spec.period)
     values = sorted(distinct_levels(executor, quoted), key=_period_key)[1:]
-    return [Column(sqlbuild.indicator_sql(quoted, v), "effect", f"{spec.period}[{v}]") for v in values]
+    return [Column(sqlbuild.indicator_sql(quoted, v), "effect", f"{spec.period}={v}") for v in values]
 
 
 def _period_key(value: str):

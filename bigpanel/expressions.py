@@ -10,6 +10,7 @@ again and must give back the same tree (locations aside), or the expression is r
 Two forms of our own are recognised on the tree, as whole terms only:
 
 - ``lag(EXPR)`` / ``lag(EXPR, K)``: EXPR in the same unit K periods earlier;
+- ``lead(EXPR)`` / ``lead(EXPR, K)``: EXPR in the same unit K periods later (a lag of -K);
 - ``levels(COLUMN)`` / ``levels(COLUMN, 'BASE')``: indicators for a categorical column.
 """
 
@@ -34,7 +35,7 @@ _REFUSED_CLASSES = {
     "PARAMETER": "it contains a query parameter",
     "DEFAULT": "it is not a scalar expression",
 }
-_OWN_FORMS = ("lag", "levels")
+_OWN_FORMS = ("lag", "lead", "levels")
 
 
 @dataclass(frozen=True)
@@ -42,7 +43,8 @@ class Term:
     """One regressor as the user wrote it, and how to compute it.
 
     ``kind`` is ``expr`` (``expr`` is SQL rendered from the checked parse tree), ``lag``
-    (that SQL ``lag`` periods earlier) or ``levels`` (indicators for the column named
+    (that SQL ``lag`` periods earlier; a negative ``lag`` is a ``lead()``, that many periods
+    later) or ``levels`` (indicators for the column named
     ``expr`` against the level ``base``).
     """
 
@@ -212,19 +214,19 @@ def parse_term(text: str) -> Term:
     if node.get("filter") or node.get("distinct") or (node.get("order_bys") or {}).get("orders") or node.get("schema"):
         raise InputError(f"Term {shown(text)} is not understood: write {name}(...) with plain arguments.")
     args = _arguments(node)
-    if name == "lag":
+    if name in ("lag", "lead"):
         if len(args) not in (1, 2):
-            raise InputError(f"Term {shown(text)} is not understood: write lag(EXPR) or lag(EXPR, K).")
+            raise InputError(f"Term {shown(text)} is not understood: write {name}(EXPR) or {name}(EXPR, K).")
         order = 1
         if len(args) == 2:
             literal = args[1].get("literal", {}) if args[1].get("class") == "CONSTANT" else {}
             raw = str(literal.get("text", ""))
             if literal.get("kind") not in ("INTEGER", "BIGINT", "HUGEINT") or not raw.isdigit() or int(raw) < 1:
-                raise InputError(f"Term {shown(text)} has a lag order that is not a whole number of 1 or more. Write lag(EXPR, K) with K = 1, 2, ...")
+                raise InputError(f"Term {shown(text)} has a {name} order that is not a whole number of 1 or more. Write {name}(EXPR, K) with K = 1, 2, ...")
             order = int(raw)
             if order > MAX_LAG_ORDER:
-                raise InputError(f"Term {shown(text)} has lag order {shown(raw, 24)}, more than {MAX_LAG_ORDER:,} periods. Give a smaller order.")
-        return Term(text=text, kind="lag", expr=_checked_node(args[0], text, what), lag=order)
+                raise InputError(f"Term {shown(text)} has {name} order {shown(raw, 24)}, more than {MAX_LAG_ORDER:,} periods. Give a smaller order.")
+        return Term(text=text, kind="lag", expr=_checked_node(args[0], text, what), lag=order if name == "lag" else -order)
     if len(args) not in (1, 2):
         raise InputError(f"Term {shown(text)} is not understood: write levels(COLUMN) or levels(COLUMN, 'BASE').")
     column = args[0]

@@ -29,7 +29,7 @@ from .inference import MAX_EXPANDED, Notes, finish
 from .params import check_keys
 from .plan import ScanPlan, member_params, prefill
 from .results import FitResult
-from .source import Engine, Session, Source, open_source
+from .source import Engine, Session, as_source
 from .spec import FitSpec
 
 CANCELLATION_LIMIT = 1e6  # raw/transformed sum of squares above which one pass loses > 6 digits
@@ -43,7 +43,7 @@ def fit(
     period: str,
     estimator: str = "within",
     effects=None,
-    se: str | None = None,
+    variance: str | None = None,
     cluster=None,
     where: str | None = None,
     intercept: bool | None = None,
@@ -52,26 +52,30 @@ def fit(
     query: str | None = None,
     csv_types: dict | None = None,
     engine: Engine | None = None,
+    csv_nulls=None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
     Parameters
     ----------
     source : str, path, Source, or in-memory frame
-        See :func:`bigpanel.open_source`. A :class:`Source` is used as it is.
+        See :func:`bigpanel.open_source`: files, a DuckDB table or query, a pyarrow Table,
+        a polars DataFrame or LazyFrame (streamed to a temporary Parquet file), a pandas
+        frame (named index levels become columns). A :class:`Source` is used as it is.
     outcome : str
         Outcome column or SQL expression.
     regressors : str or list of str
         Terms separated by commas (commas inside parentheses do not split): columns,
-        SQL scalar expressions, ``lag(EXPR[, K])`` and ``levels(COLUMN[, 'BASE'])``.
+        SQL scalar expressions, ``lag(EXPR[, K])``, ``lead(EXPR[, K])`` (K periods later,
+        missing across a gap) and ``levels(COLUMN[, 'BASE'])``.
     unit, period : str
         Unit and period columns. First differences and lags need whole-number periods.
     estimator : {"pooled", "within", "first-difference"}
     effects : str or list of str, optional
         Fixed effects: within defaults to the unit and may add the period; for first
         differences, the period adds period intercepts to the differenced equation.
-    se : {"iid", "hc1", "cluster"}, optional
-        Default: cluster for within and first differences, iid for pooled.
+    variance : {"homoskedastic", "hc1", "cluster"}, optional
+        Default: cluster for within and first differences, homoskedastic for pooled.
     cluster : str or list of str, optional
         One or two cluster columns (default: the unit).
     where : str, optional
@@ -80,9 +84,13 @@ def fit(
         Keep an intercept (pooled and first differences; default True).
     period_step : int
         Distance between consecutive periods (default 1).
+    table, query, csv_types, engine
+        As in :func:`bigpanel.open_source`.
+    csv_nulls : str or list of str, optional
+        Extra CSV tokens read as missing (``"NA,."``); empty fields always are.
     """
-    spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, se, cluster, intercept, period_step)
-    src = _source(source, where, table, query, csv_types, engine)
+    spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step)
+    src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     notes = Notes([])
     try:
         with Session(src) as session:
@@ -110,6 +118,7 @@ def fit_many(
     query: str | None = None,
     csv_types: dict | None = None,
     engine: Engine | None = None,
+    csv_nulls=None,
 ) -> FitList:
     """Estimate many models on one source, sharing scans.
 
@@ -117,7 +126,7 @@ def fit_many(
     ----------
     models : list of dict
         Each with the model keys of :func:`fit` (``outcome``, ``regressors``, ``estimator``,
-        ``effects``, ``se``, ``cluster``, ``intercept``); ``unit``, ``period`` and
+        ``effects``, ``variance``, ``cluster``, ``intercept``); ``unit``, ``period`` and
         ``period_step`` are shared and may be repeated only with the same value.
     Other parameters as in :func:`fit`.
 
@@ -130,7 +139,7 @@ def fit_many(
         row transform (levels, differences); each model keeps its own sample.
     """
     specs = [_model_spec(m, i, unit, period, period_step) for i, m in enumerate(models)]
-    src = _source(source, where, table, query, csv_types, engine)
+    src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     notes = [Notes([]) for _ in specs]
     try:
         with Session(src) as session:
@@ -203,14 +212,6 @@ def scaled_params(shifts: np.ndarray, scales: np.ndarray) -> dict:
     return {f"s{j}": float(v) for j, v in enumerate(shifts)} | {f"d{j}": float(v) for j, v in enumerate(scales)}
 
 
-def _source(source, where, table, query, csv_types, engine) -> Source:
-    if isinstance(source, Source):
-        if where is not None:
-            raise InputError("Option 'where' is given twice: set it on the Source or in fit(), not both.")
-        return source
-    return open_source(source, table=table, query=query, where=where, csv_types=csv_types, engine=engine)
-
-
 def emit(notes: Notes, stacklevel: int) -> None:
     """Warn each note once, pointing at the caller of the public function."""
     for category, message in notes.items:
@@ -255,7 +256,7 @@ def pilot(est: estimators.Estimator, executor: Executor, design: Design, params:
     """Coefficients from the first rows, the centre of the one-pass unit-cluster meat
     expansion; None when the model is too large for it or clusters are not units."""
     spec = est.spec
-    if not (spec.se == "cluster" and spec.cluster == (spec.unit,) and est.expands):
+    if not (spec.variance == "cluster" and spec.cluster == (spec.unit,) and est.expands):
         return None
     k = design.q - 1 + (1 if est.constant else 0)
     if k > MAX_EXPANDED:

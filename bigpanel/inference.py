@@ -2,7 +2,7 @@
 
 Common to every estimator: the solver drops dependent and (for estimators that remove
 the unit effect) time-invariant columns by name; the variance is chosen from the
-specification (iid, HC1, clusters of units, of whole units, cutting across units, two-way)
+specification (homoskedastic, HC1, clusters of units, of whole units, cutting across units, two-way)
 and its meat is requested from the executor when the first pass did not already give it.
 """
 
@@ -73,8 +73,8 @@ def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equa
     """The variance the specification asks for, with its meat from the first pass or a score pass."""
     spec = est.spec
     n_obs = eq.n_obs
-    if spec.se == "iid":
-        return variance.iid(sol.inverse, rss, n_obs, n_kept, absorbed)
+    if spec.variance == "homoskedastic":
+        return variance.homoskedastic(sol.inverse, rss, n_obs, n_kept, absorbed)
     constant = est.constant_in_scores()
     kx = rows.q - 1
     k = kx + (1 if constant else 0)  # score columns: regressors [, constant]
@@ -85,7 +85,7 @@ def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equa
         return Scores(rows, kind, constant, est.absorbs_units, len(eq.effect_values), tuple(values.items()))
 
     dim = len(sol.coef)
-    if spec.se == "hc1":
+    if spec.variance == "hc1":
         meats, _ = executor.meats(request("rows"), params, k, 0)
         return _embed(variance.hc1(inverse, meats[0], n_obs, n_kept, absorbed), dim)
     if spec.cluster == (spec.unit,) and eq.expansion is not None:

@@ -41,7 +41,7 @@ import dataclasses
 import datetime as dt
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -52,7 +52,7 @@ from . import moments, solve, sqlbuild
 from .convert import json_ready
 from .errors import ECHO_LIMIT, InputError, echo
 from .results import run_record
-from .source import Session, Source, is_integer, is_numeric
+from .source import Session, Source, as_source, is_integer, is_numeric
 
 MAX_PERIODS = 1_000_000
 """More distinct periods than this and the period column is taken to be the wrong one."""
@@ -86,6 +86,8 @@ class ColumnCheck:
     ``within_estimable`` is False when the column never changes inside a unit, so that its
     effect cannot be estimated by within or first-difference regressions. The numeric
     fields are None for other columns; the shares are None for a column with no spread.
+    ``number_tokens`` is set for a text column whose values are mostly numbers: the few
+    other values (such as ``NA`` or ``.`` in an exported CSV), which made it text.
     ``n_not_finite`` counts NaN and infinite values, which are left out of every figure
     like missing ones. ``too_large`` is True when the column's sums of squares overflow a
     double even after scaling (std, shares and ``within_estimable`` are then None).
@@ -105,6 +107,7 @@ class ColumnCheck:
     units_varying: int | None = None
     within_estimable: bool | None = None
     too_large: bool = False
+    number_tokens: tuple[str, ...] = ()  # a text column otherwise numbers: its other values
 
 
 @dataclass(frozen=True)
@@ -195,9 +198,9 @@ class PanelReport:
             "name": pl.String, "dtype": pl.String, "numeric": pl.Boolean, "n_missing": pl.Int64,
             "n_not_finite": pl.Int64, "mean": pl.Float64, "std": pl.Float64, "min": pl.Float64, "max": pl.Float64,
             "within_share": pl.Float64, "between_share": pl.Float64, "units_varying": pl.Int64,
-            "within_estimable": pl.Boolean, "too_large": pl.Boolean,
+            "within_estimable": pl.Boolean, "too_large": pl.Boolean, "number_tokens": pl.List(pl.String),
         }  # fmt: skip
-        data = {name: [getattr(c, name) for c in self.columns] for name in schema}
+        data = {name: [_plain(getattr(c, name)) for c in self.columns] for name in schema}
         return pl.DataFrame(data, schema=schema)
 
     def render(self, color: bool = False) -> str:
@@ -211,13 +214,16 @@ class PanelReport:
 # ---------------------------------------------------------------- the checkup
 
 
-def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str] | None = None) -> PanelReport:
+def inspect_panel(source, unit: str, period: str, columns: Sequence[str] | None = None, *, where: str | None = None,
+                  table: str | None = None, query: str | None = None, csv_types: dict | None = None,
+                  csv_nulls=None, engine=None) -> PanelReport:
     """Check a panel's structure and the within-unit variation of its columns.
 
     Parameters
     ----------
-    source : Source
-        From :func:`~bigpanel.source.open_source`; its row filter applies to every figure.
+    source : Source, str, path or in-memory frame
+        Any source :func:`bigpanel.fit` takes (see :func:`~bigpanel.source.open_source`);
+        its row filter applies to every figure.
     unit, period : str
         The key columns. The period must be an integer, DATE or TIMESTAMP column.
     columns : list of str, optional
@@ -233,6 +239,7 @@ def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str]
     InputError
         For an unknown or unsuitable column, a bad filter, or no rows after the filter.
     """
+    source = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     with Session(source) as session:
         kinds = _check_arguments(session, unit, period, columns)
         session.check_filter()
@@ -252,9 +259,11 @@ def inspect_panel(source: Source, unit: str, period: str, columns: Sequence[str]
         n_duplicate_keys = 0
         if units["duplicate_rows"]:
             duplicates, n_duplicate_keys = _scan_duplicates(session, chunks, unit, period_value)
+        tokens = _number_tokens(session, [c for c in checked if schema[c].upper() == "VARCHAR"])
 
     keyed = by_period["keyed"]
-    column_checks = tuple(_column_check(c, schema[c], j, by_period, units, shifts.get(j)) for j, c in enumerate(checked))
+    column_checks = tuple(replace(_column_check(c, schema[c], j, by_period, units, shifts.get(j)), number_tokens=tokens.get(c, ()))
+                          for j, c in enumerate(checked))
     quartiles = _quartiles(units["periods_per_unit"])
     return PanelReport(
         source=session.source.label,
@@ -677,6 +686,13 @@ def _render(r: PanelReport, color: bool) -> str:
         shown = ", ".join(f"{c.name} ({c.n_not_finite:,})" for c in not_finite)
         lines.append("")
         lines.append(bad(f"Not finite (NaN or infinite; left out like missing values, and so are their rows in a fit): {shown}."))
+    numbers = [c for c in r.columns if c.number_tokens]
+    if numbers:
+        lines.append("")
+        for c in numbers:
+            tokens = ", ".join(_token(t) for t in c.number_tokens)
+            lines.append(bad(f"Text column {c.name} looks numeric except for tokens: {tokens}. Read them as missing "
+                             f"with --csv-null (for example --csv-null {_csv_null_example(c.number_tokens)})."))
     too_large = [c.name for c in r.columns if c.too_large]
     if too_large:
         lines.append("")
@@ -689,3 +705,37 @@ def _render(r: PanelReport, color: bool) -> str:
     if not r.columns:
         lines.append("  (no columns to check)")
     return "\n".join(lines)
+
+
+MAX_NUMBER_TOKENS = 5  # a text column with more distinct non-numbers than this is text
+
+
+def _number_tokens(session: Session, text_columns: list[str]) -> dict[str, tuple[str, ...]]:
+    """Text columns whose non-missing values are mostly (over half) numbers, with their
+    few other values (at most MAX_NUMBER_TOKENS distinct ones): an exported CSV's ``NA``."""
+    if not text_columns:
+        return {}
+    source_sql = session.source.filtered()
+    counts = session.run(sqlbuild.text_number_counts_sql(source_sql, text_columns)).to_pylist()[0]
+    out = {}
+    for j, c in enumerate(text_columns):
+        n, num = int(counts[f"n{j}"] or 0), int(counts[f"num{j}"] or 0)
+        if num == 0 or num == n or 2 * num <= n:
+            continue
+        rows = session.run(sqlbuild.text_tokens_sql(source_sql, c, MAX_NUMBER_TOKENS + 1)).to_pylist()
+        if len(rows) <= MAX_NUMBER_TOKENS:
+            out[c] = tuple(str(r["token"]) for r in rows)
+    return out
+
+
+def _token(token: str) -> str:
+    return "(blank)" if not token.strip() else "'" + echo(token, 40) + "'"
+
+
+def _csv_null_example(tokens: tuple[str, ...]) -> str:
+    named = [t for t in tokens if t.strip() and "," not in t]
+    return ",".join(named) if named else "NA"
+
+
+def _plain(value: Any) -> Any:
+    return list(value) if isinstance(value, tuple) else value

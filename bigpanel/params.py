@@ -15,7 +15,7 @@ from typing import Any
 from .errors import InputError, echo
 
 ESTIMATORS = ("pooled", "within", "first-difference")
-VARIANCES = ("iid", "hc1", "cluster")
+VARIANCES = ("homoskedastic", "hc1", "cluster")
 
 
 @dataclass(frozen=True)
@@ -48,14 +48,14 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("outcome", "expression", "Outcome column or SQL expression, e.g. \"ln(parcels)\".", required=True,
           empty="Name the outcome column or expression."),
     Param("regressors", "terms", "Terms separated by commas (not inside parentheses): columns, SQL expressions, "
-          "lag(EXPR[, K]), levels(COLUMN[, 'BASE']).", required=True,
+          "lag(EXPR[, K]), lead(EXPR[, K]), levels(COLUMN[, 'BASE']).", required=True,
           empty="Give at least one term, separated by commas."),
     Param("unit", "column", "Column identifying the unit (depot, store, worker, ...).", required=True),
     Param("period", "column", "Column identifying the period (whole numbers for differences and lags).", required=True),
     Param("estimator", "choice", "pooled, within or first-difference.", default="within", choices=ESTIMATORS),
     Param("effects", "columns", "Fixed effects: within defaults to the unit (add the period with --effects UNIT,PERIOD); "
           "first-difference takes the period for period intercepts."),
-    Param("se", "choice", "Variance: iid, hc1 or cluster (default: cluster for within and first-difference, iid for "
+    Param("variance", "choice", "Variance: homoskedastic, hc1 or cluster (default: cluster for within and first-difference, homoskedastic for "
           "pooled).", choices=VARIANCES),
     Param("cluster", "columns", "One or two cluster columns, comma-separated (default: the unit)."),
     Param("intercept", "flag", "Intercept of pooled and first-difference fits (kept by default; --no-intercept drops it).",

@@ -73,7 +73,7 @@ class SharedScan:
         out = []
         for m in self.members:
             spec = m.est.spec
-            if spec.se == "cluster" and len(spec.cluster) == 1 and spec.cluster[0] != spec.unit:
+            if spec.variance == "cluster" and len(spec.cluster) == 1 and spec.cluster[0] != spec.unit:
                 pair = (m.sample, self.clusters.index(spec.cluster[0]))
                 if pair not in out:
                     out.append(pair)

@@ -16,14 +16,6 @@ CAUTIONS = (
 )
 
 
-CAUTION_SHORT = (
-    "strict exogeneity of the time-varying error",
-    "a unit effect constant over time",
-    "enough variation within units",
-    "independent clusters",
-)
-
-
 @dataclass(frozen=True)
 class Coefficient:
     term: str
@@ -101,41 +93,104 @@ class FitResult:
         raise KeyError(term)
 
     def table(self, notes: bool = True) -> str:
-        """A plain-text report of our own design; ``notes=False`` leaves out the notes (the
-        command line prints each on stderr, once)."""
-        v = self.variance
-        title = {"pooled": "Pooled least squares", "within": "Within (fixed effects)",
-                 "first-difference": "First differences"}[self.estimator]
-        lines = [f"{title}: {self.outcome}", f"  source {self.source}" + (f"  where {self.where}" if self.where else "")]
-        eff = f"  effects: {', '.join(self.effects)}" if self.effects else ""
-        lines.append(f"  {self.n_obs:,} rows used, {self.n_units:,} units" + (f", {self.n_periods} periods" if self.n_periods else "") + eff)
-        vline = f"  variance: {v.type}, t with {v.df:g} df"
-        if v.n_clusters:
-            vline += f", clusters {' / '.join(map(str, v.n_clusters))}"
-        lines.append(vline)
-        lines.append("")
-        width = max([len(c.term) for c in self.coefficients] + [4])
-        head = f"  {'term':<{width}}  {'estimate':>12}  {'std.err':>11}  {'t':>8}  {'p':>7}  {'95% interval':>27}"
-        lines += [head, "  " + "-" * (len(head) - 2)]
-        for c in self.coefficients:
-            lines.append(
-                f"  {c.term:<{width}}  {_num(c.estimate):>12}  {_num(c.std_error):>11}  {c.t_stat:>8.2f}  "
-                f"{_p(c.p_value):>7}  [{_num(c.ci_lower):>12}, {_num(c.ci_upper):>12}]"
-            )
-        lines.append("")
-        lines.append(f"  R^2 ({self.r_squared_kind}) {self.r_squared:.4f}   Wald F({self.f_df[0]:g}, {self.f_df[1]:g}) = {self.f_stat:.3f}, p {_p(self.f_p_value)}")
-        dropped = {k: n for k, n in self.rows_dropped.items() if n}
-        if dropped or self.singletons_dropped:
-            parts = [f"{n:,} {k.replace('_', ' ')}" for k, n in dropped.items()]
-            if self.singletons_dropped:
-                parts.append(f"{self.singletons_dropped:,} singleton units")
-            lines.append("  rows left out: " + "; ".join(parts))
-        for term, why in self.terms_dropped.items():
-            lines.append(f"  term left out: {term} ({why})")
-        for w in self.warnings if notes else ():
-            lines.append(f"  note: {w}")
-        lines.append("  Read causally only under: " + "; ".join(CAUTION_SHORT) + ".")
-        return "\n".join(lines)
+        """A plain-text report of our own design, at most :data:`WIDTH` columns wide: a
+        header block (model, data, sample, variance), one line per term (never wrapped: a
+        label too long for its column is shortened and written out in full below the
+        table), then the fit statistics in words and the cautions. ``notes=False`` leaves
+        out the notes (the command line prints each on stderr, once)."""
+        return "\n".join(_header(self) + _term_rows(self.coefficients) + _footer(self, notes))
+
+
+WIDTH = 100  # the widest line of FitResult.table()
+TITLES = {"pooled": "Pooled least squares", "within": "Within estimator (fixed effects)",
+          "first-difference": "First differences"}
+_NUMBERS = (("estimate", 12), ("std. error", 11), ("t", 8), ("p", 8), ("low", 12), ("high", 12))
+# a term's label may take what the number columns leave of WIDTH (indent 2, gaps of 2)
+TERM_WIDTH = WIDTH - 2 - sum(w + 2 for _, w in _NUMBERS)
+
+
+def _wrapped(label: str, text: str, hang: int = 0) -> list[str]:
+    """A named line of prose, wrapped at WIDTH under its value (``hang`` more spaces on
+    the continuation lines)."""
+    import textwrap
+
+    first = f"  {label:<9} " if label else "  "
+    return textwrap.wrap(text, WIDTH, initial_indent=first, subsequent_indent=" " * (len(first) + hang),
+                         break_on_hyphens=False) or [first.rstrip()]
+
+
+def _variance_words(v: VarianceSummary) -> str:
+    if v.type == "homoskedastic":
+        kind = "homoskedastic (one error variance for all rows)"
+    elif v.type == "hc1":
+        kind = "hc1 (robust to unequal error variances)"
+    elif len(v.cluster_columns) == 2:
+        (a, b), (na, nb) = v.cluster_columns, v.n_clusters[:2]
+        kind = f"cluster, two ways: by {a} ({na:,} clusters) and by {b} ({nb:,} clusters)"
+    else:
+        kind = f"cluster, by {', '.join(v.cluster_columns)} ({v.n_clusters[0]:,} clusters)"
+    return f"{kind}; t tests with {_count(v.df)} df"
+
+
+def _header(r: "FitResult") -> list[str]:
+    lines = [f"{TITLES[r.estimator]} of {r.outcome}"]
+    lines += _wrapped("data", r.source + (f", rows where {r.where}" if r.where else ""))
+    sample = f"{r.n_obs:,} rows, {r.n_units:,} units"
+    if r.n_periods:
+        sample += f", {r.n_periods:,} periods"
+        if r.period_first is not None and r.period_last is not None:
+            sample += f" ({r.period_first} to {r.period_last})"
+    if r.effects:
+        sample += f"; effects: {', '.join(r.effects)}"
+    lines += _wrapped("sample", sample)
+    lines += _wrapped("variance", _variance_words(r.variance))
+    return lines + [""]
+
+
+def _term_rows(coefficients) -> list[str]:
+    """One line per term. Labels longer than TERM_WIDTH are cut and tagged ~1, ~2, ...;
+    the full labels follow the table."""
+    width = min(TERM_WIDTH, max([len(c.term) for c in coefficients] + [4]))
+    head = f"  {'term':<{width}}" + "".join(f"  {name:>{w}}" for name, w in _NUMBERS)
+    lines, full = [head, "  " + "-" * (len(head) - 2)], []
+    for c in coefficients:
+        label = c.term
+        if len(label) > width:
+            full.append(label)
+            tag = f"~{len(full)}"
+            label = label[: width - len(tag)] + tag
+        cells = (_num(c.estimate), _num(c.std_error), _t(c.t_stat), _p(c.p_value), _num(c.ci_lower), _num(c.ci_upper))
+        lines.append(f"  {label:<{width}}" + "".join(f"  {cell:>{w}}" for cell, (_, w) in zip(cells, _NUMBERS)))
+    lines.append("  " + "-" * (len(head) - 2))
+    lines.append("  low and high: the 95% confidence interval of each estimate.")
+    for i, label in enumerate(full, 1):
+        lines += _wrapped(f"~{i}", label)
+    return lines
+
+
+def _footer(r: "FitResult", notes: bool) -> list[str]:
+    lines = [""]
+    slopes, df = _count(r.f_df[0]), _count(r.f_df[1])
+    if math.isfinite(r.f_stat) and r.f_stat >= 0:
+        joint = f"F = {_stat(r.f_stat)} on {slopes} and {df} df, p {_p_words(r.f_p_value)}"
+    else:
+        joint = "not available"
+    lines += _wrapped("", f"slopes jointly zero: {joint}")
+    lines += _wrapped("", f"share of variation explained ({r.r_squared_kind} R-squared): {r.r_squared:.4f}")
+    dropped = {k: n for k, n in r.rows_dropped.items() if n}
+    if dropped or r.singletons_dropped:
+        parts = [f"{n:,} {k.replace('_', ' ')}" for k, n in dropped.items()]
+        if r.singletons_dropped:
+            parts.append(f"{r.singletons_dropped:,} singleton units")
+        lines += _wrapped("", "rows left out: " + "; ".join(parts))
+    for term, why in r.terms_dropped.items():
+        lines += _wrapped("", f"term left out: {term} ({why})")
+    for w in r.warnings if notes else ():
+        lines += _wrapped("", f"note: {w}")
+    lines += ["", "  Read these estimates as causal effects only if:"]
+    for caution in CAUTIONS:
+        lines += _wrapped("", "- " + caution, hang=2)
+    return lines
 
 
 def run_record(threads: int) -> dict:
@@ -157,3 +212,22 @@ def _p(p: float) -> str:
     if not math.isfinite(p):
         return "nan"
     return "<0.0001" if p < 1e-4 else f"{p:.4f}"
+
+
+def _p_words(p: float) -> str:
+    if not math.isfinite(p):
+        return "not available"
+    return "< 0.0001" if p < 1e-4 else f"= {p:.4f}"
+
+
+def _t(t: float) -> str:
+    return f"{t:.2f}" if math.isfinite(t) and abs(t) < 1e6 else _num(t)
+
+
+def _stat(x: float) -> str:
+    return f"{x:,.2f}" if x < 1e9 else f"{x:.4g}"
+
+
+def _count(x: float) -> str:
+    """A degrees-of-freedom figure: whole numbers with thousands separators."""
+    return f"{int(x):,}" if float(x).is_integer() else f"{x:,.2f}"

@@ -13,7 +13,9 @@ import json
 import numbers
 import os
 import re
+import shutil
 import threading
+import weakref
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -198,6 +200,7 @@ class Source:
     query: str | None = None
     csv_types: tuple[tuple[str, str], ...] = ()
     csv_options: tuple[tuple[str, str], ...] = ()
+    csv_nulls: tuple[str, ...] = ()  # extra tokens read as missing (empty fields always are)
     where: str | None = None
     frame: Any = field(default=None, compare=False, repr=False)
     engine: Engine = Engine()
@@ -218,7 +221,7 @@ class Source:
         if self.kind == "parquet":
             return sqlbuild.parquet_relation(list(files or self.files), self.hive)
         if self.kind == "csv":
-            return sqlbuild.csv_relation(list(self.files), dict(self.csv_types), dict(self.csv_options))
+            return sqlbuild.csv_relation(list(self.files), dict(self.csv_types), dict(self.csv_options), self.csv_nulls)
         if self.kind == "duckdb" and self.table is not None:
             return sqlbuild.table_relation(_ATTACHED, self.table)
         if self.kind == "frame":
@@ -418,16 +421,19 @@ def open_source(
     csv_types: dict[str, str] | None = None,
     csv_options: dict[str, str] | None = None,
     engine: Engine | None = None,
+    csv_nulls: str | Sequence[str] | None = None,
 ) -> Source:
     """Describe a data source without reading its rows.
 
     Parameters
     ----------
-    source : str, path, pyarrow.Table, polars.DataFrame or pandas.DataFrame
+    source : str, path, pyarrow.Table, polars.DataFrame or LazyFrame, or pandas.DataFrame
         A Parquet file, a folder of Parquet files (searched recursively; ``key=value``
         folder names become columns), a glob, a CSV file or glob (``.csv``, ``.tsv``,
         ``.csv.gz``), a DuckDB database file (``.duckdb``/``.db``, with ``table`` or
-        ``query``), or an in-memory frame.
+        ``query``), or an in-memory frame. A polars LazyFrame is streamed into a temporary
+        Parquet file (removed with the Source), never collected whole; a pandas frame's
+        named index levels (unit and period in a MultiIndex) become columns.
     table : str, optional
         Table or view in a DuckDB file.
     query : str, optional
@@ -438,16 +444,26 @@ def open_source(
     csv_types, csv_options : dict, optional
         Column types that override CSV detection (``{"month": "DATE"}``) and reader
         options (``delim``, ``decimal_separator``, ``nullstr``, ``header``).
+    csv_nulls : str or list of str, optional
+        Extra CSV tokens read as missing values (``["NA", "."]``, or one text with commas);
+        empty fields are always missing.
     engine : Engine, optional
         DuckDB settings.
     """
     engine = engine or Engine()
     common = dict(where=where, engine=engine)
-    _check_source_options(source, table, query, csv_types)
+    _check_source_options(source, table, query, csv_types, csv_nulls)
+    nulls = csv_null_tokens(csv_nulls)
+    if nulls and "nullstr" in (csv_options or {}):
+        raise InputError("Options csv_nulls and csv_options['nullstr'] are both given. Give the tokens in csv_nulls only.")
     if source is None:
         if not query:
             raise InputError("No source given. Pass a file, folder, glob, DuckDB file or a query.")
         src = Source(kind="query", label="query", query=query, **common)
+    elif _is_lazy_frame(source):
+        folder, path = _sink_lazy(source, engine)
+        src = Source(kind="parquet", label="polars LazyFrame", files=(path,), **common)
+        weakref.finalize(src, shutil.rmtree, folder, True)  # the temporary file lives as long as the Source
     elif not isinstance(source, (str, os.PathLike)):
         src = Source(kind="frame", label=f"in-memory {type(source).__name__}", frame=_as_arrow(source), **common)
     else:
@@ -470,14 +486,28 @@ def open_source(
             if not files or not all(os.path.exists(f) for f in files):
                 raise InputError(f"Source '{echo(path)}' does not exist. Check the path.")
             src = Source(kind="csv", label=echo(Path(path).name), files=tuple(files),
-                         csv_types=tuple((csv_types or {}).items()), csv_options=tuple((csv_options or {}).items()), **common)
+                         csv_types=tuple((csv_types or {}).items()), csv_options=tuple((csv_options or {}).items()),
+                         csv_nulls=nulls, **common)
         else:
             files, hive = _parquet_files(path)
             src = Source(kind="parquet", label=echo(Path(path).name or path), files=tuple(files), hive=hive, **common)
     return src
 
 
-def _check_source_options(source: Any, table: str | None, query: str | None, csv_types: dict | None) -> None:
+def csv_null_tokens(value: str | Sequence[str] | None) -> tuple[str, ...]:
+    """The extra missing-value tokens as a tuple: a list of texts, or one text split at
+    commas (``"NA,."``); surrounding spaces are dropped, and an empty token needs no
+    naming (empty fields are always missing)."""
+    if value is None:
+        return ()
+    items = value.split(",") if isinstance(value, str) else list(value)
+    if not all(isinstance(v, str) for v in items):
+        raise InputError("Option csv_nulls must be text or a list of texts, like \"NA,.\".")
+    return tuple(dict.fromkeys(v.strip() for v in items if v.strip()))
+
+
+def _check_source_options(source: Any, table: str | None, query: str | None, csv_types: dict | None,
+                          csv_nulls: Any = None) -> None:
     """Refuse options that the kind of source would silently ignore."""
     path = str(source).lower() if isinstance(source, (str, os.PathLike)) else None
     database = path is not None and path.endswith((".duckdb", ".db", ".ddb"))
@@ -493,6 +523,8 @@ def _check_source_options(source: Any, table: str | None, query: str | None, csv
                          "Leave the source out and read the files in the query, or drop --query.")
     if csv_types and not csv:
         raise InputError(f"Option --csv-types applies to CSV sources, but the source is {given}. Leave it out.")
+    if csv_nulls and not csv:
+        raise InputError(f"Option --csv-null applies to CSV sources, but the source is {given}. Leave it out.")
 
 
 def _as_arrow(frame: Any):
@@ -504,8 +536,60 @@ def _as_arrow(frame: Any):
     if module == "polars":
         return frame.to_arrow()
     if module == "pandas":
-        return pa.Table.from_pandas(frame, preserve_index=False)
-    raise InputError(f"In-memory source of type {type(frame).__name__} is not supported. Pass a pyarrow Table, polars DataFrame or pandas DataFrame.")
+        return _pandas_arrow(frame)
+    raise InputError(f"In-memory source of type {type(frame).__name__} is not supported. Pass a pyarrow Table, "
+                     "a polars DataFrame or LazyFrame, or a pandas DataFrame.")
+
+
+def _pandas_arrow(frame: Any):
+    """A pandas frame as Arrow, its named index levels (a MultiIndex of unit and period,
+    say) kept as columns; unnamed levels (a plain row number) are left out."""
+    import pyarrow as pa
+
+    named = [n for n in frame.index.names if n is not None]
+    clash = sorted(set(map(str, named)) & set(map(str, frame.columns)))
+    if clash:
+        raise InputError(f"The pandas frame has '{echo(clash[0])}' both as an index level and as a column. "
+                         "Rename one, or drop the index with reset_index(drop=True).")
+    if named and len(named) < frame.index.nlevels:
+        frame = frame.reset_index(level=named)  # keep the named levels only
+        named = []
+    return pa.Table.from_pandas(frame, preserve_index=bool(named))
+
+
+def _is_lazy_frame(source: Any) -> bool:
+    return type(source).__module__.split(".")[0] == "polars" and type(source).__name__ == "LazyFrame"
+
+
+def _sink_lazy(frame: Any, engine: Engine) -> tuple[str, str]:
+    """Stream a polars LazyFrame into a temporary Parquet file (polars' streaming sink: the
+    frame is never collected whole in memory) and return (folder, file). The folder is in
+    the engine's temporary directory when one is set, else in the system's."""
+    import tempfile
+
+    folder = tempfile.mkdtemp(prefix="bigpanel-lazy-", dir=engine.temp_directory or None)
+    path = os.path.join(folder, "frame.parquet")
+    try:
+        frame.sink_parquet(path)
+    except Exception as exc:  # noqa: BLE001 - polars raises its own error types
+        shutil.rmtree(folder, ignore_errors=True)
+        raise InputError(f"The polars LazyFrame could not be evaluated ({echo(_first_line(exc))}). "
+                         "Check the frame's query, for example with .head().collect().") from None
+    return folder, path
+
+
+def as_source(source: Any, where: str | None = None, table: str | None = None, query: str | None = None,
+              csv_types: dict | None = None, engine: Engine | None = None, csv_nulls=None) -> Source:
+    """A :class:`Source` for any source kind the public functions take: a Source as it
+    is (``where`` may then not be given again), anything else through :func:`open_source`."""
+    if isinstance(source, Source):
+        given = [name for name, value in (("where", where), ("table", table), ("query", query),
+                                          ("csv_types", csv_types), ("csv_nulls", csv_nulls)) if value]
+        if given:
+            raise InputError(f"Option '{given[0]}' is given twice: set it on the Source or in the call, not both.")
+        return source
+    return open_source(source, table=table, query=query, where=where, csv_types=csv_types, engine=engine,
+                       csv_nulls=csv_nulls)
 
 
 class Session:

@@ -5,6 +5,8 @@ as SQL scalar expressions over the source's columns (each parsed once by DuckDB 
 as SQL rendered from the checked tree, :mod:`bigpanel.expressions`), plus two forms of our
 own:
 
+- ``lead(EXPR)`` or ``lead(EXPR, K)``: EXPR in the same unit K periods later (a lag of
+  minus K, with the same rules);
 - ``lag(EXPR)`` or ``lag(EXPR, K)``: EXPR in the same unit K periods earlier; missing
   (and the row dropped) when that period is absent, so gaps are respected.
 - ``levels(COLUMN)`` or ``levels(COLUMN, 'BASE')``: one 0/1 indicator per level of a
@@ -75,7 +77,7 @@ class FitSpec:
     period: str
     estimator: str
     effects: tuple[str, ...]
-    se: str
+    variance: str
     cluster: tuple[str, ...]
     intercept: bool
     period_step: int = 1
@@ -89,7 +91,7 @@ class FitSpec:
         period: str,
         estimator: str = "within",
         effects: str | list[str] | None = None,
-        se: str | None = None,
+        variance: str | None = None,
         cluster: str | list[str] | None = None,
         intercept: bool | None = None,
         period_step: int = 1,
@@ -119,14 +121,15 @@ class FitSpec:
                 raise InputError(f"Option 'effects' names '{echo(e)}': effects on columns other than the unit '{echo(unit)}' and the period '{echo(period)}' are not supported yet.")
         if estimator == "first-difference" and unit in eff:
             raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for first differences, which already remove it. Use --effects {echo(period)} for period intercepts.")
-        if se is None:
-            se = "iid" if estimator == "pooled" and not cluster else "cluster"
-        se = params.check("se", se)
+        if variance is None:
+            variance = "homoskedastic" if estimator == "pooled" and not cluster else "cluster"
+        variance = params.check("variance", variance)
         clus = params.check("cluster", cluster)
-        if se == "cluster" and not clus:
+        if variance == "cluster" and not clus:
             clus = (unit,)
-        if se != "cluster" and clus:
-            raise InputError(f"Option 'cluster' is given but 'se' is '{echo(se)}'. Use --se cluster, or drop --cluster.")
+        if variance != "cluster" and clus:
+            raise InputError(f"Option 'cluster' is given but 'variance' is '{echo(variance)}'. "
+                             "Use --variance cluster, or drop --cluster.")
         if len(clus) > 2:
             raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported, so give one or two.")
         if len(set(clus)) != len(clus):
@@ -139,7 +142,7 @@ class FitSpec:
         period_step = params.check("period_step", period_step)
         return cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
-            effects=eff, se=se, cluster=clus, intercept=bool(intercept), period_step=int(period_step),
+            effects=eff, variance=variance, cluster=clus, intercept=bool(intercept), period_step=int(period_step),
         )
 
     @property

@@ -117,9 +117,27 @@ CSV_OPTIONS = ("delim", "sep", "quote", "escape", "header", "decimal_separator",
                "timestampformat", "new_line", "comment")
 
 
-def csv_relation(paths: list[str], types: dict[str, str] | None, options: dict[str, str] | None) -> str:
+def text_number_counts_sql(source_sql: str, columns: Sequence[str]) -> str:
+    """Per text column j: its non-missing values (n{j}) and those that read as numbers (num{j})."""
+    items = []
+    for j, c in enumerate(columns):
+        q = quote_ident(c)
+        items += [f"count({q}) AS n{j}", f"count(TRY_CAST({q} AS DOUBLE)) AS num{j}"]
+    return f"SELECT {', '.join(items)} FROM {source_sql} AS src"
+
+
+def text_tokens_sql(source_sql: str, column: str, limit: int) -> str:
+    """The most frequent values of a text column that do not read as numbers."""
+    q = quote_ident(column)
+    return (f"SELECT {q} AS token, count(*) AS n FROM {source_sql} AS src "
+            f"WHERE {q} IS NOT NULL AND TRY_CAST({q} AS DOUBLE) IS NULL GROUP BY {q} ORDER BY n DESC, token LIMIT {int(limit)}")
+
+
+def csv_relation(paths: list[str], types: dict[str, str] | None, options: dict[str, str] | None,
+                 nulls: Sequence[str] = ()) -> str:
     """``read_csv`` with auto-detection; ``types`` pins column types, ``options`` passes
-    ``delim``, ``decimal_separator``, ``nullstr`` or ``header``."""
+    ``delim``, ``decimal_separator``, ``nullstr`` or ``header``; ``nulls`` are extra
+    missing-value tokens (the empty field stays one: DuckDB's list replaces its default)."""
     files = "[" + ", ".join(quote_literal(p) for p in paths) + "]"
     parts = [files, "auto_detect = true", "union_by_name = true"]
     if types:
@@ -129,6 +147,8 @@ def csv_relation(paths: list[str], types: dict[str, str] | None, options: dict[s
         if key not in CSV_OPTIONS:  # the option's name is SQL text: only names we know
             raise ValueError(f"unknown CSV reader option {key!r}")
         parts.append(f"{key} = {quote_literal(value)}")
+    if nulls:
+        parts.append("nullstr = [" + ", ".join(quote_literal(t) for t in ("", *nulls)) + "]")
     return f"read_csv({', '.join(parts)})"
 
 
@@ -230,17 +250,19 @@ def design_rows_sql(
     """Select the unit, period, clusters and shifted design columns of every row.
 
     ``columns`` holds ``(expression, lag)`` pairs; a lag K reads the expression at
-    period - K*step in the same unit (NULL when that period is absent).
+    period - K*step in the same unit (NULL when that period is absent); a negative K (a
+    lead) reads it |K|*step periods later.
     """
     items = [f"{quote_ident(unit)} AS k_unit", f"{quote_ident(period)} AS k_period"]
     items += [f"{quote_ident(c)} AS k_c{i}" for i, c in enumerate(clusters)]
     for j, (expr, lag) in enumerate(columns):
         value = f"CAST(({expr}) AS DOUBLE)"
         if lag:
-            span = int(lag) * int(step)
+            span = abs(int(lag)) * int(step)
+            side = "PRECEDING" if lag > 0 else "FOLLOWING"
             value = (
                 f"first_value({value}) OVER (PARTITION BY {quote_ident(unit)} ORDER BY {quote_ident(period)} "
-                f"RANGE BETWEEN {span} PRECEDING AND {span} PRECEDING)"
+                f"RANGE BETWEEN {span} {side} AND {span} {side})"
             )
         items.append(f"({value} - $s{j}) * $d{j} AS {_z(j)}")
     return render("design_rows", source=source, columns=", ".join(items))

@@ -2,7 +2,7 @@
 
 Conventions (../shared/ESTIMATION.md, and the sources named there):
 
-- iid: V = s^2 H^-1, s^2 = RSS / (N - K - absorbed); t with N - K - absorbed df.
+- homoskedastic: V = s^2 H^-1, s^2 = RSS / (N - K - absorbed); t with N - K - absorbed df.
 - HC1: V = H^-1 (sum u^2 x x') H^-1 * N / (N - K - absorbed); same df.
 - CR1 (Liang and Zeger): V = H^-1 (sum_g s_g s_g') H^-1 * G/(G-1) * (N-1)/(N-K'),
   K' = K plus absorbed levels not nested in the clusters (Cameron and Miller 2015);
@@ -33,10 +33,10 @@ def _sandwich(inverse: np.ndarray, meat: np.ndarray) -> np.ndarray:
     return (v + v.T) / 2
 
 
-def iid(inverse: np.ndarray, rss: float, n_obs: int, k: int, absorbed: int) -> Variance:
+def homoskedastic(inverse: np.ndarray, rss: float, n_obs: int, k: int, absorbed: int) -> Variance:
     df = n_obs - k - absorbed
     s2 = rss / df if df > 0 else float("nan")
-    return Variance(s2 * inverse, "iid", float(df), 1.0, None)
+    return Variance(s2 * inverse, "homoskedastic", float(df), 1.0, None)
 
 
 def hc1(inverse: np.ndarray, meat: np.ndarray, n_obs: int, k: int, absorbed: int) -> Variance:
@@ -71,4 +71,4 @@ def two_way(
     clipped = int(np.sum(eigval < 0))
     if clipped:
         v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
-    return Variance(v, "cluster-two-way", float(min(counts[0], counts[1]) - 1), factors, list(counts), clipped)
+    return Variance(v, "cluster", float(min(counts[0], counts[1]) - 1), factors, list(counts), clipped)

@@ -7,7 +7,7 @@ copy in a file was found to agree, the file is named too.
 # ---------------------------------------------------------------------------------
 # Baltagi, Econometric Analysis of Panel Data, Table 2.1: Grunfeld investment data,
 # 10 firms (American Steel left out), 1935-1954, within (fixed effects) estimator,
-# investment on market value and capital stock, iid standard errors. (from memory)
+# investment on market value and capital stock, homoskedastic standard errors. (from memory)
 GRUNFELD_WITHIN = {
     "value": (0.1101, 0.0119),  # (estimate, standard error), printed to 4 decimals
     "capital": (0.3101, 0.0174),
@@ -19,7 +19,7 @@ GRUNFELD_N_YEARS = 20  # 1935-1954
 # ---------------------------------------------------------------------------------
 # Wooldridge, Introductory Econometrics: A Modern Approach, Example 14.1 (effect of
 # job training grants on firm scrap rates), data set JTRAIN, 1987-1989, the firms with
-# scrap data; firm fixed effects; log(scrap) on d88, d89, grant, grant_1; iid
+# scrap data; firm fixed effects; log(scrap) on d88, d89, grant, grant_1; homoskedastic
 # standard errors. (from memory)
 JTRAIN_WITHIN = {
     "grant": (-0.252, 0.151),  # (estimate, standard error), printed to 3 decimals

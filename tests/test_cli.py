@@ -141,10 +141,10 @@ def test_fit_json_matches_the_python_api(data, capsys):
     import bigpanel
 
     code, out, err = run(capsys, "fit", data / "depots.parquet", "--outcome", "parcels", "--regressors",
-                         "staff_hours", *KEYS, "--se", "hc1", "--json")
+                         "staff_hours", *KEYS, "--variance", "hc1", "--json")
     assert code == 0, err
     payload = json.loads(out)
-    ref = bigpanel.fit(str(data / "depots.parquet"), "parcels", ["staff_hours"], "depot", "month", se="hc1")
+    ref = bigpanel.fit(str(data / "depots.parquet"), "parcels", ["staff_hours"], "depot", "month", variance="hc1")
     assert payload["estimator"] == "within" and payload["variance"]["type"] == "hc1"
     assert payload["n_obs"] == ref.n_obs
     (coef,) = payload["coefficients"]

@@ -32,7 +32,7 @@ from panel_cases import lsdv, unbalanced_panel
 pytestmark = pytest.mark.filterwarnings("ignore::bigpanel.errors.BigpanelWarning")
 
 SCALED_RTOL = 1e-9  # the scaled fit against the unscaled one: the same algebra, rounded differently
-LSDV_RTOL = 1e-9  # slopes and iid errors against statsmodels' dense solve (as in test_fit_lsdv.py)
+LSDV_RTOL = 1e-9  # slopes and homoskedastic errors against statsmodels' dense solve (as in test_fit_lsdv.py)
 
 
 # ------------------------------------------------------------------ checkup
@@ -112,9 +112,9 @@ def panel():
     return unbalanced_panel(11, 25, 6)
 
 
-def _fit(df, estimator, se="cluster"):
+def _fit(df, estimator, variance="cluster"):
     table = pa.Table.from_pandas(df, preserve_index=False)
-    return bigpanel.fit(table, "y", ["x1", "x2"], "unit", "period", estimator=estimator, se=se)
+    return bigpanel.fit(table, "y", ["x1", "x2"], "unit", "period", estimator=estimator, variance=variance)
 
 
 def _scaled(df, column, factor):
@@ -128,7 +128,7 @@ CASES = [("x1", 1e-300), ("x1", 1e200), ("y", 1e150), ("y", 1e-200), ("x2", 1e30
 
 @pytest.mark.parametrize("estimator", ["within", "first-difference", "pooled"])
 @pytest.mark.parametrize("column,factor", CASES, ids=[f"{c}x{f:g}" for c, f in CASES])
-@pytest.mark.parametrize("se", ["iid", "cluster", "hc1"])
+@pytest.mark.parametrize("se", ["homoskedastic", "cluster", "hc1"])
 def test_scaled_columns_fit_like_the_unscaled_ones(panel, estimator, column, factor, se):
     # Source: the unscaled fit (itself checked against statsmodels below and in
     # test_fit_lsdv.py). A regressor times c: its slope / c; the outcome times c: every
@@ -151,10 +151,10 @@ def test_scaled_columns_fit_like_the_unscaled_ones(panel, estimator, column, fac
 @pytest.mark.parametrize("column,factor", CASES, ids=[f"{c}x{f:g}" for c, f in CASES])
 def test_scaled_within_fit_matches_statsmodels(panel, column, factor):
     # Source: statsmodels OLS with unit indicators (LSDV) on the unscaled panel, its slopes
-    # and iid errors scaled by hand (statsmodels' own dense solve cannot take 1e-300 columns).
+    # and homoskedastic errors scaled by hand (statsmodels' own dense solve cannot take 1e-300 columns).
     model, _ = lsdv(panel, ["x1", "x2"])
     ref = model.fit()
-    got = _fit(_scaled(panel, column, factor), "within", "iid")
+    got = _fit(_scaled(panel, column, factor), "within", "homoskedastic")
     for i, term in enumerate(["x1", "x2"]):
         ratio = factor if column == "y" else (1 / factor if term == column else 1.0)
         assert got.coef(term).estimate == pytest.approx(ref.params[i] * ratio, rel=LSDV_RTOL)
@@ -182,7 +182,7 @@ def test_sums_that_overflow_are_refused_by_name(panel, monkeypatch):
 
 DESIGNS = [
     dict(estimator="within", effects="unit,period"),
-    dict(estimator="within", effects="unit,period", se="hc1"),
+    dict(estimator="within", effects="unit,period", variance="hc1"),
     dict(estimator="within", cluster="unit,period"),
     dict(estimator="within", cluster="region"),
     dict(estimator="first-difference", effects="period"),

@@ -93,7 +93,7 @@ def test_lag_under_within_matches_lsdv(gappy, gappy_file):
     used = used[used.groupby("unit")["unit"].transform("size") > 1]
     x = np.column_stack([used[["x1", "x1_lag"]], pd.get_dummies(used["unit"], dtype=float)])
     ref = sm.OLS(used["y"].to_numpy(), x).fit()
-    res = bigpanel.fit(gappy_file, "y", ["x1", "lag(x1)"], "unit", "period", se="iid")
+    res = bigpanel.fit(gappy_file, "y", ["x1", "lag(x1)"], "unit", "period", variance="homoskedastic")
     np.testing.assert_allclose(estimates(res, ["x1", "lag(x1)"]), ref.params[:2], rtol=SLOPE_RTOL)
     np.testing.assert_allclose(std_errors(res, ["x1", "lag(x1)"]), ref.bse[:2], rtol=SE_RTOL)
     assert res.n_obs == len(used)
@@ -114,8 +114,8 @@ def test_levels_expand_like_get_dummies_with_named_base(gappy, tmp_path):
     ind = pd.get_dummies(df["kind"], dtype=float).drop(columns="kiosk")
     x = pd.concat([df[["x1"]], ind, pd.Series(1.0, index=df.index, name="const")], axis=1)
     ref = sm.OLS(df["y"], x).fit()
-    res = bigpanel.fit(path, "y", ["x1", "levels(kind, 'kiosk')"], "unit", "period", estimator="pooled", se="hc1")
-    labels = ["x1"] + [f"kind[{level}]" for level in ind.columns] + ["(intercept)"]
+    res = bigpanel.fit(path, "y", ["x1", "levels(kind, 'kiosk')"], "unit", "period", estimator="pooled", variance="hc1")
+    labels = ["x1"] + [f"kind={level}" for level in ind.columns] + ["(intercept)"]
     assert sorted(c.term for c in res.coefficients) == sorted(labels)
     np.testing.assert_allclose(estimates(res, labels), ref.params, rtol=SLOPE_RTOL)
     # cov_hc1 indexes the residuals as an array, so the same design goes in as numpy.
@@ -132,9 +132,9 @@ def test_levels_default_base_is_first_in_sort_order(gappy, tmp_path):
     path = write_parquet(df, tmp_path / "kinds.parquet")
     ind = pd.get_dummies(df["kind"], drop_first=True, dtype=float)
     res = bigpanel.fit(path, "y", ["x1", "levels(kind)"], "unit", "period", estimator="pooled")
-    assert [c.term for c in res.coefficients] == ["x1", "kind[kiosk]", "kind[van]", "(intercept)"]
+    assert [c.term for c in res.coefficients] == ["x1", "kind=kiosk", "kind=van", "(intercept)"]
     ref = sm.OLS(df["y"], pd.concat([df[["x1"]], ind], axis=1).assign(const=1.0)).fit()
-    np.testing.assert_allclose(estimates(res, ["x1", "kind[kiosk]", "kind[van]", "(intercept)"]), ref.params,
+    np.testing.assert_allclose(estimates(res, ["x1", "kind=kiosk", "kind=van", "(intercept)"]), ref.params,
                                rtol=SLOPE_RTOL)
 
 
@@ -198,7 +198,7 @@ def test_few_clusters_warn(gappy_file):
     # Source: ESTIMATION.md / Cameron and Miller (2015): under ~40 clusters CR1 is
     # unreliable; 20 units here.
     with pytest.warns(FewClustersWarning):
-        res = bigpanel.fit(gappy_file, "y", REGRESSORS, "unit", "period", se="cluster")
+        res = bigpanel.fit(gappy_file, "y", REGRESSORS, "unit", "period", variance="cluster")
     assert res.variance.n_clusters == (20,)
     assert any("clusters" in w for w in res.warnings)
 
@@ -208,7 +208,7 @@ def test_one_cluster_warns_and_gives_no_standard_error(gappy, tmp_path):
     # number would be noise.
     path = write_parquet(gappy.assign(country=1), tmp_path / "one.parquet")
     with pytest.warns(FewClustersWarning):
-        res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster="country")
+        res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", variance="cluster", cluster="country")
     assert res.variance.n_clusters == (1,)
     assert all(np.isnan(c.std_error) for c in res.coefficients)
 

@@ -56,10 +56,10 @@ def test_within_iid_matches_lsdv(panel):
     df, path = panel
     model, k_dense = lsdv(df, REGRESSORS)
     ref = model.fit()
-    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="iid")
+    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", variance="homoskedastic")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
-    # iid: s^2 = RSS/(N - K - absorbed) here, RSS/(N - K_dense) in statsmodels: the same
+    # homoskedastic: s^2 = RSS/(N - K - absorbed) here, RSS/(N - K_dense) in statsmodels: the same
     # number because K_dense = K + units; computed explicitly all the same.
     n, g = len(df), df["unit"].nunique()
     ratio = (n - k_dense) / (n - len(REGRESSORS) - g)
@@ -76,7 +76,7 @@ def test_within_hc1_matches_lsdv(panel):
     model, k_dense = lsdv(df, REGRESSORS)
     ref = model.fit()
     ref_se = std_errors(sw.cov_hc1(ref))
-    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="hc1")
+    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", variance="hc1")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, g = len(df), df["unit"].nunique()
@@ -94,7 +94,7 @@ def test_within_cr1_unit_clusters_matches_lsdv(panel):
     model, k_dense = lsdv(df, REGRESSORS)
     ref = model.fit()
     ref_se = std_errors(sw.cov_cluster(ref, codes(df["unit"]), use_correction=True))
-    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster="unit")
+    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", variance="cluster", cluster="unit")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, g = len(df), df["unit"].nunique()
@@ -115,7 +115,7 @@ def test_within_cr1_clusters_across_units_matches_lsdv(panel):
     model, k_dense = lsdv(df, REGRESSORS)
     ref = model.fit()
     ref_se = std_errors(sw.cov_cluster(ref, codes(df["shift"]), use_correction=True))
-    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster="shift")
+    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", variance="cluster", cluster="shift")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, g_units, g = len(df), df["unit"].nunique(), df["shift"].nunique()
@@ -134,7 +134,7 @@ def test_within_cr1_clusters_nesting_units_matches_lsdv(panel):
     model, k_dense = lsdv(df, REGRESSORS)
     ref = model.fit()
     ref_se = std_errors(sw.cov_cluster(ref, codes(df["region"]), use_correction=True))
-    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster="region")
+    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", variance="cluster", cluster="region")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, g = len(df), df["region"].nunique()
@@ -157,7 +157,7 @@ def test_within_two_way_clusters_matches_statsmodels(panel):
     unit_codes, period_codes = codes(df["unit"]), codes(df["period"])
     ref = model.fit()
     two_way, unit_part, _ = sw.cov_cluster_2groups(ref, unit_codes, group2=period_codes, use_correction=True)
-    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", se="cluster", cluster=["unit", "period"])
+    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", variance="cluster", cluster=["unit", "period"])
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, k = len(df), len(REGRESSORS)
@@ -187,10 +187,10 @@ def test_within_unit_and_period_effects_matches_lsdv(panel):
     df, path = panel
     model, k_dense = lsdv(df, REGRESSORS, period_dummies=True)
     ref = model.fit()
-    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", effects="unit,period", se="iid")
+    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", effects="unit,period", variance="homoskedastic")
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=TWO_EFFECTS_RTOL)
-    # iid with every effect level counted on both sides: the factors agree.
+    # homoskedastic with every effect level counted on both sides: the factors agree.
     np.testing.assert_allclose(se, ref.bse[:2], rtol=SE_RTOL)
     assert [c.term for c in res.coefficients] == REGRESSORS  # period effects are not reported
 
@@ -215,9 +215,9 @@ def test_within_unit_and_period_effects_cr1_matches_lsdv(panel):
 # ------------------------------------------------------------------ pooled
 
 
-@pytest.mark.parametrize("se", ["iid", "hc1", "cluster"])
+@pytest.mark.parametrize("se", ["homoskedastic", "hc1", "cluster"])
 def test_pooled_matches_ols_with_constant(panel, se):
-    # Source: statsmodels OLS with a constant (plain pooled least squares): iid errors
+    # Source: statsmodels OLS with a constant (plain pooled least squares): homoskedastic errors
     # from its bse, hc1 and cluster from sandwich_covariance.cov_hc1 and cov_cluster
     # (use_correction=True); no effects are absorbed, so K is the same on both sides and
     # the factors agree.
@@ -225,11 +225,11 @@ def test_pooled_matches_ols_with_constant(panel, se):
     model, _ = lsdv(df, REGRESSORS, unit_dummies=False, constant=True)
     ref = model.fit()
     ref_se = {
-        "iid": ref.bse,
+        "homoskedastic": ref.bse,
         "hc1": std_errors(sw.cov_hc1(ref)),
         "cluster": std_errors(sw.cov_cluster(ref, codes(df["unit"]), use_correction=True)),
     }[se]
-    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", estimator="pooled", se=se)
+    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", estimator="pooled", variance=se)
     terms = REGRESSORS + ["(intercept)"]
     est, errs = ours(res, terms)
     np.testing.assert_allclose(est, ref.params, rtol=SLOPE_RTOL)
@@ -262,11 +262,11 @@ def test_first_difference_matches_ols_on_differences(panel):
 
 
 def test_first_difference_iid_matches_ols_on_differences(panel):
-    # Source: statsmodels OLS with a constant on hand-made differences, iid errors.
+    # Source: statsmodels OLS with a constant on hand-made differences, homoskedastic errors.
     df, path = panel
     d = differences(df, ["y", *REGRESSORS])
     ref = sm.OLS(d["y"].to_numpy(), sm.add_constant(d[REGRESSORS].to_numpy(), prepend=False)).fit()
-    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", estimator="first-difference", se="iid")
+    res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", estimator="first-difference", variance="homoskedastic")
     est, se = ours(res, REGRESSORS + ["(intercept)"])
     np.testing.assert_allclose(est, ref.params, rtol=SLOPE_RTOL)
     np.testing.assert_allclose(se, ref.bse, rtol=SE_RTOL)

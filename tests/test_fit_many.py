@@ -34,15 +34,15 @@ def gappy(tmp_path_factory):
 
 TEN = [
     dict(outcome="y", regressors=["x1", "x2"]),
-    dict(outcome="y", regressors=["x1"], se="hc1"),
+    dict(outcome="y", regressors=["x1"], variance="hc1"),
     dict(outcome="y", regressors=["x2", "x3"], cluster="region"),
     dict(outcome="y", regressors=["x1", "x2", "x3"], cluster=["unit", "period"]),
     dict(outcome="y", regressors=["x3", "x1"], cluster="shift"),
-    dict(outcome="y", regressors="x1, x2", se="iid"),
+    dict(outcome="y", regressors="x1, x2", variance="homoskedastic"),
     dict(outcome="y", regressors=["x1", "x2"], estimator="pooled"),
-    dict(outcome="y", regressors=["x3"], estimator="pooled", se="cluster"),
-    dict(outcome="y", regressors=["x1", "x2", "x3"], estimator="pooled", se="hc1", cluster=None),
-    dict(outcome="y", regressors=["x1", "x2"], estimator="pooled", intercept=False, se="cluster", cluster="region"),
+    dict(outcome="y", regressors=["x3"], estimator="pooled", variance="cluster"),
+    dict(outcome="y", regressors=["x1", "x2", "x3"], estimator="pooled", variance="hc1", cluster=None),
+    dict(outcome="y", regressors=["x1", "x2"], estimator="pooled", intercept=False, variance="cluster", cluster="region"),
 ]
 
 
@@ -82,8 +82,8 @@ def test_each_model_keeps_its_own_sample(gappy):
 def test_differences_share_one_differenced_scan(gappy):
     df, path = gappy
     models = [dict(outcome="y", regressors=["x1", "x2"], estimator="first-difference"),
-              dict(outcome="y", regressors=["x3"], estimator="first-difference", se="hc1"),
-              dict(outcome="y", regressors=["x1", "x3"], estimator="first-difference", intercept=False, se="iid")]
+              dict(outcome="y", regressors=["x3"], estimator="first-difference", variance="hc1"),
+              dict(outcome="y", regressors=["x1", "x3"], estimator="first-difference", intercept=False, variance="homoskedastic")]
     results = bigpanel.fit_many(path, models, unit="unit", period="period")
     assert results.scans <= 2  # one differenced scan for the sums, one for the scores
     for model, res in zip(models, results):
@@ -159,7 +159,7 @@ def test_chunked_shared_scores_equal_one_query(gappy, tmp_path, monkeypatch):
     from panel_cases import write_parquet_parts
 
     df, path = gappy
-    models = [m for m in TEN if m.get("se") in ("hc1", "iid") or m.get("cluster") in (None, "unit")]
+    models = [m for m in TEN if m.get("se") in ("hc1", "homoskedastic") or m.get("cluster") in (None, "unit")]
     one = bigpanel.fit_many(path, models, unit="unit", period="period")
     parts = write_parquet_parts(df, tmp_path / "parts", 3)
     monkeypatch.setattr(bigpanel.moments, "CHUNK_ROWS", 1)

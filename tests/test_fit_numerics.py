@@ -68,7 +68,7 @@ def test_near_collinear_terms_match_lsdv_within_condition_bound(base_panel, tmp_
     df["x3"] = df["x1"] + 1e-4 * rng.normal(size=len(df))
     path = write_parquet(df, tmp_path / "near.parquet")
     terms = ["x1", "x2", "x3"]
-    res = bigpanel.fit(path, "y", terms, "unit", "period", se="iid")
+    res = bigpanel.fit(path, "y", terms, "unit", "period", variance="homoskedastic")
     assert not res.terms_dropped
     model, _ = lsdv(df, terms)
     ref = model.fit()
@@ -105,7 +105,7 @@ def test_exactly_collinear_term_is_dropped_and_recorded(base_panel, tmp_path):
     path = write_parquet(df, tmp_path / "exact.parquet")
     terms = ["x1", "x2", "x3"]
     with pytest.warns(DroppedTermsWarning, match="collinear"):
-        res = bigpanel.fit(path, "y", terms, "unit", "period", se="iid")
+        res = bigpanel.fit(path, "y", terms, "unit", "period", variance="homoskedastic")
     assert len(res.terms_dropped) == 1
     (gone, why), = res.terms_dropped.items()
     assert gone in terms and why == "collinear with other terms"
@@ -170,11 +170,11 @@ def two_periods(tmp_path):
 def test_first_differences_equal_within_at_two_periods(two_periods):
     # Source: standard identity, common practice (ESTIMATION.md): with T = 2 and no
     # gaps, first differences without an intercept and within give the same slopes;
-    # iid standard errors agree too (the differenced RSS and cross-product are both
+    # homoskedastic standard errors agree too (the differenced RSS and cross-product are both
     # twice the within ones, and both have N/2 - K degrees of freedom).
     fd = bigpanel.fit(two_periods, "y", REGRESSORS, "unit", "period", estimator="first-difference",
-                      intercept=False, se="iid")
-    within = bigpanel.fit(two_periods, "y", REGRESSORS, "unit", "period", se="iid")
+                      intercept=False, variance="homoskedastic")
+    within = bigpanel.fit(two_periods, "y", REGRESSORS, "unit", "period", variance="homoskedastic")
     np.testing.assert_allclose(slopes(fd), slopes(within), rtol=1e-12)
     np.testing.assert_allclose(errors(fd), errors(within), rtol=1e-12)
     assert fd.n_obs == 40 and within.n_obs == 80
@@ -183,8 +183,8 @@ def test_first_differences_equal_within_at_two_periods(two_periods):
 def test_first_differences_with_intercept_equal_two_way_within_at_two_periods(two_periods):
     # Source: the same identity with a period effect (common practice): at T = 2 the
     # differenced equation's intercept is the second period's effect.
-    fd = bigpanel.fit(two_periods, "y", REGRESSORS, "unit", "period", estimator="first-difference", se="iid")
-    within = bigpanel.fit(two_periods, "y", REGRESSORS, "unit", "period", effects="unit,period", se="iid")
+    fd = bigpanel.fit(two_periods, "y", REGRESSORS, "unit", "period", estimator="first-difference", variance="homoskedastic")
+    within = bigpanel.fit(two_periods, "y", REGRESSORS, "unit", "period", effects="unit,period", variance="homoskedastic")
     np.testing.assert_allclose(slopes(fd), slopes(within), rtol=1e-12)
     np.testing.assert_allclose(errors(fd), errors(within), rtol=1e-12)
 
@@ -200,8 +200,8 @@ def repro_sources(tmp_path_factory):
             "folder of 4 files": write_parquet_parts(df, root / "parts", 4)}
 
 
-VARIANCES = {"unit clusters": dict(se="cluster"), "hc1": dict(se="hc1"),
-             "two-way clusters": dict(se="cluster", cluster=["unit", "period"])}
+VARIANCES = {"unit clusters": dict(variance="cluster"), "hc1": dict(variance="hc1"),
+             "two-way clusters": dict(variance="cluster", cluster=["unit", "period"])}
 
 
 @pytest.mark.parametrize("variance", VARIANCES.keys())

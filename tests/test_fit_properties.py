@@ -85,8 +85,8 @@ def test_unit_constants_leave_slopes_unchanged(seed, shape, estimator, target, s
     moved = df.copy()
     moved[target] = moved[target] + moved["unit"].map(constants)
     with tempfile.TemporaryDirectory() as folder:
-        a = fit(write_parquet(df, Path(folder) / "a.parquet"), estimator, se="iid")
-        b = fit(write_parquet(moved, Path(folder) / "b.parquet"), estimator, se="iid")
+        a = fit(write_parquet(df, Path(folder) / "a.parquet"), estimator, variance="homoskedastic")
+        b = fit(write_parquet(moved, Path(folder) / "b.parquet"), estimator, variance="homoskedastic")
     ratio = scale / df[target].std()
     tol = 2**5 * EPS * (1 + ratio**2) * a.condition_number
     ta, tb = table(a), table(b)
@@ -110,8 +110,8 @@ def test_row_order_changes_nothing(seed, shape, estimator):
 
 @SETTINGS
 @given(seed=seeds, shape=shapes, estimator=estimators, n_files=st.integers(min_value=2, max_value=4),
-       se=st.sampled_from(["cluster", "hc1", "iid"]))
-def test_number_of_files_changes_nothing(seed, shape, estimator, n_files, se):
+       variance=st.sampled_from(["cluster", "hc1", "homoskedastic"]))
+def test_number_of_files_changes_nothing(seed, shape, estimator, n_files, variance):
     # Source: common practice (a panel split into files is the same panel). One file
     # takes the one-query path; unit-sorted files with CHUNK_ROWS = 1 take the chunked
     # path (one query per file, summed in Python). The issue asks ~1e-12 relative;
@@ -126,10 +126,10 @@ def test_number_of_files_changes_nothing(seed, shape, estimator, n_files, se):
         return chunks
 
     with tempfile.TemporaryDirectory() as folder, mock.patch.object(bigpanel.moments, "plan_chunks", recording_plan):
-        one = fit(write_parquet(df, Path(folder) / "one.parquet"), estimator, se=se)
+        one = fit(write_parquet(df, Path(folder) / "one.parquet"), estimator, variance=variance)
         parts = write_parquet_parts(df, Path(folder) / "parts", n_files)
         with mock.patch.object(bigpanel.moments, "CHUNK_ROWS", 1):
-            many = fit(parts, estimator, se=se)
+            many = fit(parts, estimator, variance=variance)
     assert planned == [1, n_files]  # the two paths the property compares were taken
     assert_same_coefficients(one, many)
     assert (one.n_obs, one.n_units, one.variance.n_clusters) == (many.n_obs, many.n_units, many.variance.n_clusters)
@@ -146,8 +146,8 @@ def test_rescaling_a_regressor_rescales_its_coefficient(seed, shape, estimator, 
     scaled = df.copy()
     scaled["x1"] = scaled["x1"] * factor
     with tempfile.TemporaryDirectory() as folder:
-        a = fit(write_parquet(df, Path(folder) / "a.parquet"), estimator, se="hc1")
-        b = fit(write_parquet(scaled, Path(folder) / "b.parquet"), estimator, se="hc1")
+        a = fit(write_parquet(df, Path(folder) / "a.parquet"), estimator, variance="hc1")
+        b = fit(write_parquet(scaled, Path(folder) / "b.parquet"), estimator, variance="hc1")
     tol = order_tolerance(a)
     ta, tb = table(a), table(b)
     np.testing.assert_allclose(np.array(tb["x1"]) * factor, ta["x1"], rtol=tol)

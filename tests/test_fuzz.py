@@ -16,7 +16,7 @@ DuckDB source's tables hold the same rows, and the exit code is 0 or 2 with no t
 
 Strategy two (random panels): small panels with gaps, duplicate keys, missing values,
 constant columns and unbalanced units, and random models (pooled, within, first
-differences; unit and period effects; iid, HC1, clusters). Every returned fit must match
+differences; unit and period effects; homoskedastic, HC1, clusters). Every returned fit must match
 dummy-variable least squares (statsmodels OLS, and numpy lstsq for the slopes) on exactly
 the rows it used, rebuilt here in pandas: complete cases of the model's columns; within:
 units with one such row left out (singletons); first differences: a row minus the unit's
@@ -350,7 +350,7 @@ def _model(draw) -> dict:
         effects = ["unit", "period"] if period_effects else ["unit"]
     else:
         effects = ["period"] if period_effects else []
-    se = draw(st.sampled_from(["iid", "hc1", "cluster"]))
+    se = draw(st.sampled_from(["homoskedastic", "hc1", "cluster"]))
     cluster = draw(st.sampled_from(["unit", "region"])) if se == "cluster" else None
     terms = draw(st.lists(st.sampled_from(REGRESSORS), min_size=1, max_size=4, unique=True))
     return {"estimator": estimator, "effects": effects, "se": se, "cluster": cluster, "terms": terms}
@@ -399,7 +399,7 @@ def _design(used: pd.DataFrame, m: dict, kept: list[str]) -> np.ndarray:
 def _reference_variance(x: np.ndarray, y: np.ndarray, used: pd.DataFrame, m: dict) -> np.ndarray:
     """statsmodels' covariance of the dummy-variable fit, with its own small-sample factor."""
     ols = sm.OLS(y, x).fit()
-    if m["se"] == "iid":
+    if m["se"] == "homoskedastic":
         return ols.cov_params()
     if m["se"] == "hc1":
         return sw.cov_hc1(ols)
@@ -444,7 +444,7 @@ def test_random_panels_match_dummy_variable_least_squares(df, m):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             res = bigpanel.fit(pa.Table.from_pandas(df, preserve_index=False), "y", m["terms"], "unit", "period",
-                               estimator=m["estimator"], effects=m["effects"] or None, se=m["se"], cluster=cluster)
+                               estimator=m["estimator"], effects=m["effects"] or None, variance=m["se"], cluster=cluster)
     except (InputError, EstimationError) as exc:
         event("refused: " + " ".join(str(exc).split()[:4]))
         _one_sentence(exc)
@@ -489,6 +489,6 @@ def test_random_panels_match_dummy_variable_least_squares(df, m):
         return
     # Compared as variances: where the true variance is zero (two clusters whose scores
     # cancel) both sides hold rounding noise, which a square root would blow up. The
-    # floor is 1e-9 of the iid variance's scale, far above that noise (~1e-16 relative).
+    # floor is 1e-9 of the homoskedastic variance's scale, far above that noise (~1e-16 relative).
     floor = 1e-9 * max(np.abs(np.diag(sm.OLS(y, x).fit().cov_params())).max(), np.abs(var).max(), 1e-300)
     np.testing.assert_allclose(se**2, var, rtol=1e-6, atol=floor)

@@ -42,9 +42,9 @@ MODELS = {
     "within, unit clusters": [],
     "within, two-way clusters": ["--cluster", "unit,region"],
     "within, unit and period effects": ["--effects", "unit,period"],
-    "pooled, iid": ["--estimator", "pooled"],
+    "pooled, homoskedastic": ["--estimator", "pooled"],
     "first differences, unit clusters": ["--estimator", "first-difference"],
-    "first differences, period effects, HC1": ["--estimator", "first-difference", "--effects", "period", "--se", "hc1"],
+    "first differences, period effects, HC1": ["--estimator", "first-difference", "--effects", "period", "--variance", "hc1"],
 }
 
 
@@ -132,7 +132,7 @@ def test_fit_json_is_identical_for_any_threads_parquet(sources, small_chunks, mo
 # One query shape each (per-unit pass, the two-way pass, pooled sums, differences with
 # per-period sums and the HC1 meat); each CSV fit re-parses the file. The cross-unit cluster
 # scores run as one whole-source query for any source, so the Parquet case covers them.
-CSV_MODELS = ["within, unit clusters", "within, unit and period effects", "pooled, iid",
+CSV_MODELS = ["within, unit clusters", "within, unit and period effects", "pooled, homoskedastic",
               "first differences, period effects, HC1"]
 
 

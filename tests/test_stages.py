@@ -79,20 +79,21 @@ def test_solver_honours_zero_variation():
 
 
 def test_variance_formulas_match_statsmodels(regression):
-    # Reference: statsmodels OLS nonrobust, and its sandwich_covariance cov_hc1 and cov_cluster (G/(G-1) (N-1)/(N-K)).
+    # Reference: statsmodels OLS nonrobust; sandwich_covariance.cov_hc1 and cov_cluster
+    # (G/(G-1) (N-1)/(N-K)).
     x, y, groups = regression
     n, k = x.shape
     inv = np.linalg.inv(x.T @ x)
     b = inv @ x.T @ y
     u = y - x @ b
-    ols = sm.OLS(y, x).fit()
-    iid = variance.iid(inv, float(u @ u), n, k, 0)
-    np.testing.assert_allclose(np.sqrt(np.diag(iid.vcov)), ols.bse, rtol=1e-10)
+    ols = sm.OLS(y, x)
+    homoskedastic = variance.homoskedastic(inv, float(u @ u), n, k, 0)
+    np.testing.assert_allclose(np.sqrt(np.diag(homoskedastic.vcov)), ols.fit().bse, rtol=1e-10)
     hc1 = variance.hc1(inv, (x * u[:, None] ** 2).T @ x, n, k, 0)
-    np.testing.assert_allclose(np.sqrt(np.diag(hc1.vcov)), np.sqrt(np.diag(sw.cov_hc1(ols))), rtol=1e-10)
+    np.testing.assert_allclose(np.sqrt(np.diag(hc1.vcov)), np.sqrt(np.diag(sw.cov_hc1(ols.fit()))), rtol=1e-10)
     scores = np.array([(x[groups == g] * u[groups == g, None]).sum(axis=0) for g in np.unique(groups)])
     cl = variance.cluster(inv, scores.T @ scores, len(scores), n, k)
-    ref = sw.cov_cluster(ols, groups)  # CR1: G/(G-1) (N-1)/(N-K)
+    ref = sw.cov_cluster(ols.fit(), groups)
     np.testing.assert_allclose(np.sqrt(np.diag(cl.vcov)), np.sqrt(np.diag(ref)), rtol=1e-10)
     assert (cl.df, cl.n_clusters) == (len(scores) - 1, len(scores))
 
@@ -219,7 +220,7 @@ def test_valid_predicate_text(differenced, expected):
 
 @pytest.mark.parametrize(("name", "value", "message"), [
     ("estimator", "fe", "Option 'estimator' must be one of pooled, within, first-difference; got 'fe'."),
-    ("se", "robust", "Option 'se' must be one of iid, hc1, cluster; got 'robust'."),
+    ("variance", "robust", "Option 'variance' must be one of homoskedastic, hc1, cluster; got 'robust'."),
     ("period_step", 0, "Option 'period_step' must be a whole number from 1 to 2**53 (9,007,199,254,740,992), got 0."),
     ("regressors", "", "Option 'regressors' is empty."),
 ])
@@ -232,7 +233,7 @@ def test_parameter_errors_come_from_the_table(name, value, message):
 def test_parameter_table_normalises_lists():
     assert params.check("regressors", "x, lag(x, 2), levels(k, 'a,b')") == ("x", "lag(x, 2)", "levels(k, 'a,b')")
     assert params.check("cluster", ["unit", " period "]) == ("unit", "period")
-    assert params.PARAMETERS["se"].option == "--se" and params.PARAMETERS["intercept"].option == "--no-intercept"
+    assert params.PARAMETERS["variance"].option == "--variance" and params.PARAMETERS["intercept"].option == "--no-intercept"
 
 
 # ------------------------------------------------------------------ the numpy unit fold
@@ -279,9 +280,9 @@ def test_the_result_names_the_fold_that_ran(tmp_path, monkeypatch):
 
     monkeypatch.setattr(bigpanel.moments, "CHUNK_ROWS", 1)
     parts = write_parquet_parts(unbalanced_panel(9, 40, 6), tmp_path / "parts", 3)
-    numpy_fold = bigpanel.fit(parts, "y", ["x1", "x2"], "unit", "period", estimator="pooled", se="cluster")
+    numpy_fold = bigpanel.fit(parts, "y", ["x1", "x2"], "unit", "period", estimator="pooled", variance="cluster")
     monkeypatch.setattr(bigpanel.execute, "NUMPY_FOLD_LAYOUTS", frozenset())
-    sql_fold = bigpanel.fit(parts, "y", ["x1", "x2"], "unit", "period", estimator="pooled", se="cluster")
+    sql_fold = bigpanel.fit(parts, "y", ["x1", "x2"], "unit", "period", estimator="pooled", variance="cluster")
     assert "numpy" in numpy_fold.accumulation and "numpy" not in sql_fold.accumulation
     for a, b in zip(numpy_fold.coefficients, sql_fold.coefficients):
         np.testing.assert_allclose([a.estimate, a.std_error], [b.estimate, b.std_error], rtol=1e-12)

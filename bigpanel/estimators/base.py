@@ -152,7 +152,7 @@ def unit_fold(request: CrossProducts, chunks: list[list[dict]], q: int) -> Equat
 def set_effects(eq: Equations, period: str, values: list, effects: list, with_constant: bool) -> None:
     """Label the period-effect columns (then the constant when there is one) and record
     each period's indicator row over them."""
-    eq.extra_labels = [f"{period}[{v}]" for v in effects] + (["(intercept)"] if with_constant else [])
+    eq.extra_labels = [f"{period}={v}" for v in effects] + (["(intercept)"] if with_constant else [])
     eq.extra_effect = [True] * len(eq.extra_labels)
     rows = np.zeros((len(values), len(eq.extra_labels)))
     for i, v in enumerate(values):

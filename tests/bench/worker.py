@@ -72,20 +72,20 @@ def _bigpanel(estimator, effects=None, fold="as shipped"):
         engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
                                  temp_directory=settings.temp_directory)
         result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS, UNIT, PERIOD, estimator=estimator,
-                              effects=effects, se="cluster", cluster=UNIT, engine=engine)
+                              effects=effects, variance="cluster", cluster=UNIT, engine=engine)
         return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
                 "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
     return run
 
 
 def pooled_iid(files, settings):
-    """The fixed cost of a fit: pooled least squares with iid errors (one pass, no grouping)."""
+    """The fixed cost of a fit: pooled least squares with homoskedastic errors (one pass, no grouping)."""
     import bigpanel
 
     engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
                              temp_directory=settings.temp_directory)
     result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS, UNIT, PERIOD, estimator="pooled",
-                          se="iid", engine=engine)
+                          variance="homoskedastic", engine=engine)
     return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
             "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
 
@@ -97,11 +97,11 @@ def fit_many_ten(files, settings):
 
     engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
                              temp_directory=settings.temp_directory)
-    models = [dict(outcome=OUTCOME, regressors=REGRESSORS, se="cluster", cluster=UNIT)]
+    models = [dict(outcome=OUTCOME, regressors=REGRESSORS, variance="cluster", cluster=UNIT)]
     for i in range(1, 5):
-        models.append(dict(outcome=OUTCOME, regressors=REGRESSORS[:i], se="cluster", cluster=UNIT))
-    models += [dict(outcome=OUTCOME, regressors=REGRESSORS[:i], estimator="pooled", se=se)
-               for i, se in ((5, "iid"), (4, "hc1"), (3, "cluster"), (2, "iid"), (1, "hc1"))]
+        models.append(dict(outcome=OUTCOME, regressors=REGRESSORS[:i], variance="cluster", cluster=UNIT))
+    models += [dict(outcome=OUTCOME, regressors=REGRESSORS[:i], estimator="pooled", variance=se)
+               for i, se in ((5, "homoskedastic"), (4, "hc1"), (3, "cluster"), (2, "homoskedastic"), (1, "hc1"))]
     results = bigpanel.fit_many(str(Path(files[0]).parent), models, unit=UNIT, period=PERIOD, engine=engine)
     first = results[0]
     return {"coefficients": [first.coef(term).estimate for term in REGRESSORS],
@@ -192,7 +192,7 @@ CASES = {case.name: case for case in [
          "bigpanel within (unit and period effects), unit clusters"),
     Case("first-difference", "bigpanel", _bigpanel("first-difference"), _BP,
          "bigpanel first differences, unit clusters"),
-    Case("pooled-iid", "bigpanel", pooled_iid, _BP, "bigpanel pooled, iid errors (the fixed cost of a fit)"),
+    Case("pooled-homoskedastic", "bigpanel", pooled_iid, _BP, "bigpanel pooled, homoskedastic errors (the fixed cost of a fit)"),
     Case("fit-many-10", "bigpanel", fit_many_ten, _BP,
          "bigpanel fit_many: 5 within (unit clusters) and 5 pooled models, shared scans"),
     Case("pooled-sql-fold", "bigpanel", _bigpanel("pooled", fold="sql"), _BP,
