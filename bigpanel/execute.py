@@ -51,6 +51,7 @@ class Executor:
         self._counted: dict = {}
         self._levels: dict = {}
         self._keys_unique: bool | None = None
+        self._duplicates: list[dict] | None = None
         self._nested: dict = {}
         self._meats: dict = {}
         self.collecting: list | None = None  # score requests seen while planning (fit_many)
@@ -160,27 +161,46 @@ class Executor:
             self._levels[expression] = [r["v"] for r in self.run_once(sql)]
         return self._levels[expression]
 
+    def duplicate_keys(self) -> list[dict]:
+        """A few (unit, period) keys held by more than one row, each with ``n_rows`` and
+        the number of such keys ``n_keys`` (a GROUP BY of the two key columns; once)."""
+        if self._duplicates is None:
+            k = self.keys
+            sql = sqlbuild.checkup_duplicate_scan_sql(self.engine.filtered(), k.unit, sqlbuild.quote_ident(k.period))
+            self._duplicates = self.run_once(sql, {"n_examples": 5}, scan=False)
+            self._keys_unique = not self._duplicates
+        return self._duplicates
+
+    def _duplicate_text(self, rows: list[dict], count: bool = False) -> str:
+        k = self.keys
+        shown = ", ".join(f"({r['unit_key']}, {r['period_key']})" for r in rows)
+        what = f"{int(rows[0]['n_keys']):,} duplicate (unit, period) keys" if count else "duplicate keys"
+        return f"Columns '{k.unit}' and '{k.period}' in {self.label} have {what}, for example {shown}"
+
     def duplicates(self, reason: str = "First differences and lags", only_if_any: bool = False) -> None:
         """Raise the error naming a few duplicate (unit, period) keys; with ``only_if_any``
         first look for them and return quietly when there are none."""
         if only_if_any and self._keys_unique:
             return
-        k = self.keys
-        sql = sqlbuild.checkup_duplicate_scan_sql(self.engine.filtered(), k.unit, sqlbuild.quote_ident(k.period))
-        rows = self.run_once(sql, {"n_examples": 5})
-        self._keys_unique = not rows
+        rows = self.duplicate_keys()
         if only_if_any and not rows:
             return
-        shown = ", ".join(f"({r['unit_key']}, {r['period_key']})" for r in rows)
-        raise InputError(
-            f"Columns '{k.unit}' and '{k.period}' in {self.label} have duplicate keys, for example {shown}. "
-            f"{reason[0].upper() + reason[1:]} need one row per unit and period: filter or aggregate the duplicates."
-        )
+        raise InputError(f"{self._duplicate_text(rows)}. "
+                         f"{reason[0].upper() + reason[1:]} need one row per unit and period: filter or aggregate the duplicates.")
+
+    def duplicate_note(self) -> str | None:
+        """The warning for within and pooled fits, which keep every row: the count of
+        duplicate (unit, period) keys and a few of them; None when the keys are unique."""
+        rows = self.duplicate_keys()
+        if not rows:
+            return None
+        return (f"{self._duplicate_text(rows, count=True)}; the rows are kept (within and pooled fits use every row, first "
+                "differences and lags refuse them). Filter or aggregate them if each unit should have one row per period.")
 
     def nested(self, request: Nesting, params: dict) -> bool:
         if request not in self._nested:
             used = self.used_sql(request.rows)
-            self._nested[request] = int(self.run_once(sqlbuild.nesting_sql(used, 0), params)[0]["mixed"]) == 0
+            self._nested[request] = int(self.run_once(sqlbuild.nesting_sql(used, request.column), params)[0]["mixed"]) == 0
         return self._nested[request]
 
     # ------------------------------------------------------------------ moments

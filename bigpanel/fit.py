@@ -52,6 +52,7 @@ def fit(
     query: str | None = None,
     csv_types: dict | None = None,
     engine: Engine | None = None,
+    absorbed_levels: str | None = None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
@@ -80,8 +81,13 @@ def fit(
         Keep an intercept (pooled and first differences; default True).
     period_step : int
         Distance between consecutive periods (default 1).
+    absorbed_levels : {"not-nested", "all"}, optional
+        How absorbed effect levels count in K' of the cluster small-sample factor, one K'
+        for every component of a two-way variance: "not-nested" (default) leaves out the
+        effects nested in a cluster dimension; "all" counts every level (dummy variables).
     """
-    spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, se, cluster, intercept, period_step)
+    spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, se, cluster, intercept, period_step,
+                         absorbed_levels)
     src = _source(source, where, table, query, csv_types, engine)
     notes = Notes([])
     try:
@@ -117,7 +123,7 @@ def fit_many(
     ----------
     models : list of dict
         Each with the model keys of :func:`fit` (``outcome``, ``regressors``, ``estimator``,
-        ``effects``, ``se``, ``cluster``, ``intercept``); ``unit``, ``period`` and
+        ``effects``, ``se``, ``cluster``, ``intercept``, ``absorbed_levels``); ``unit``, ``period`` and
         ``period_step`` are shared and may be repeated only with the same value.
     Other parameters as in :func:`fit`.
 
@@ -225,8 +231,13 @@ def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators
         notes.add(BigpanelWarning, msg)
     est = estimators.select(spec, executor.engine)
     design = est.extend_design(executor, design)
-    if any(t.kind == "lag" for t in spec.terms):
-        executor.duplicates(only_if_any=True)
+    if spec.needs_order:
+        if any(t.kind == "lag" for t in spec.terms):
+            executor.duplicates(only_if_any=True)
+    else:  # within and pooled keep duplicate keys' rows: say so
+        note = executor.duplicate_note()
+        if note:
+            notes.add(BigpanelWarning, note)
     return est, design
 
 

@@ -17,6 +17,10 @@ from .expressions import split_top_level
 
 ESTIMATORS = ("pooled", "within", "first-difference")
 VARIANCES = ("iid", "hc1", "cluster")
+# How absorbed effect levels enter K' of the cluster small-sample factor (ESTIMATION.md):
+# "not-nested" leaves out the effects nested in at least one cluster dimension, "all"
+# counts every level (the dummy-variable convention). One K' for every component.
+LEVEL_COUNTS = ("not-nested", "all")
 
 
 @dataclass(frozen=True)
@@ -61,6 +65,10 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("cluster", "columns", "One or two cluster columns, comma-separated (default: the unit)."),
     Param("intercept", "flag", "Intercept of pooled and first-difference fits (kept by default; --no-intercept drops it).",
           flag="--no-intercept"),
+    Param("absorbed_levels", "choice", "Absorbed effect levels counted in the cluster small-sample factor K' (one K' "
+          "for every component of a two-way variance): not-nested (default; effects nested in a cluster dimension are "
+          "left out) or all (every level, as a dummy-variable fit counts them).", default="not-nested",
+          choices=LEVEL_COUNTS),
     Param("period_step", "count", "Distance between consecutive periods.", default=1, minimum=1, maximum=2**53,
           empty="Give the distance between consecutive periods."),
 )}

@@ -47,6 +47,21 @@ class VarianceSummary:
     n_clusters: tuple[int, ...]
     cluster_columns: tuple[str, ...]
     clipped_eigenvalues: int = 0
+    absorbed_levels: str = ""  # K' rule of the cluster factor: "not-nested" or "all" (empty without clusters)
+    k_prime: int | None = None  # K' of the cluster factor, one for every component
+
+    @property
+    def factor_rule(self) -> str:
+        """The cluster small-sample factor's rule in words (empty without clusters)."""
+        return LEVEL_RULES.get(self.absorbed_levels, "")
+
+
+# The K' rules of the cluster small-sample factor G/(G-1) (N-1)/(N-K'), by parameter value.
+LEVEL_RULES = {
+    "not-nested": "K' = slopes + absorbed levels not nested in a cluster dimension, one K' for every component",
+    "all": "K' = slopes + every absorbed level (dummy-variable convention), one K' for every component",
+}
+LEVEL_SHORT = {"not-nested": "effects nested in clusters left out", "all": "every absorbed level"}
 
 
 @dataclass(frozen=True)
@@ -78,10 +93,12 @@ class FitResult:
     source: str
     where: str | None
     warnings: tuple[str, ...] = field(default=())
+    f_unavailable: str = ""  # why there is no joint test (f_stat and f_p_value are then NaN)
     run: dict = field(default_factory=dict)  # how it ran: {"threads": N, "version": "x.y.z"}
 
     def to_dict(self) -> dict:
         out = json_ready(self)
+        out["variance"]["factor_rule"] = self.variance.factor_rule
         out["cautions"] = list(CAUTIONS)
         return out
 
@@ -112,6 +129,8 @@ class FitResult:
         vline = f"  variance: {v.type}, t with {v.df:g} df"
         if v.n_clusters:
             vline += f", clusters {' / '.join(map(str, v.n_clusters))}"
+        if v.k_prime is not None:
+            vline += f", K' {v.k_prime:,} ({LEVEL_SHORT[v.absorbed_levels]})"
         lines.append(vline)
         lines.append("")
         width = max([len(c.term) for c in self.coefficients] + [4])
@@ -123,7 +142,12 @@ class FitResult:
                 f"{_p(c.p_value):>7}  [{_num(c.ci_lower):>12}, {_num(c.ci_upper):>12}]"
             )
         lines.append("")
-        lines.append(f"  R^2 ({self.r_squared_kind}) {self.r_squared:.4f}   Wald F({self.f_df[0]:g}, {self.f_df[1]:g}) = {self.f_stat:.3f}, p {_p(self.f_p_value)}")
+        if self.f_unavailable:
+            lines.append(f"  R^2 ({self.r_squared_kind}) {self.r_squared:.4f}")
+            lines.append(f"  Wald F not available: {self.f_unavailable}")
+        else:
+            lines.append(f"  R^2 ({self.r_squared_kind}) {self.r_squared:.4f}   Wald F({self.f_df[0]:g}, {self.f_df[1]:g}) = "
+                         f"{self.f_stat:.3f}, p {_p(self.f_p_value)}")
         dropped = {k: n for k, n in self.rows_dropped.items() if n}
         if dropped or self.singletons_dropped:
             parts = [f"{n:,} {k.replace('_', ' ')}" for k, n in dropped.items()]

@@ -79,6 +79,7 @@ class FitSpec:
     cluster: tuple[str, ...]
     intercept: bool
     period_step: int = 1
+    absorbed_levels: str = "not-nested"
 
     @classmethod
     def build(
@@ -93,6 +94,7 @@ class FitSpec:
         cluster: str | list[str] | None = None,
         intercept: bool | None = None,
         period_step: int = 1,
+        absorbed_levels: str | None = None,
     ) -> "FitSpec":
         estimator = params.check("estimator", estimator)
         outcome = params.check("outcome", outcome)
@@ -137,9 +139,11 @@ class FitSpec:
         if estimator == "within" and intercept:
             raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects already remove it.")
         period_step = params.check("period_step", period_step)
+        absorbed_levels = params.check("absorbed_levels", absorbed_levels)
         return cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, se=se, cluster=clus, intercept=bool(intercept), period_step=int(period_step),
+            absorbed_levels=absorbed_levels,
         )
 
     @property
