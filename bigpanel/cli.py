@@ -167,7 +167,7 @@ def fit_command(
     se: Annotated[Optional[VarianceKind], _model_option("se")] = None,
     cluster: Annotated[Optional[str], _model_option("cluster")] = None,
     no_intercept: Annotated[bool, _model_option("intercept")] = False,
-    period_step: Annotated[int, _model_option("period_step")] = PARAMETERS["period_step"].default,
+    period_step: Annotated[Optional[int], _model_option("period_step")] = None,
     absorbed_levels: Annotated[LevelCount, _model_option("absorbed_levels")] = LevelCount(
         PARAMETERS["absorbed_levels"].default),
     table: TableOpt = None,

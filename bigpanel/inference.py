@@ -247,14 +247,13 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     if lost:
         notes.add(DroppedRowsWarning, "Rows left out: " + ", ".join(f"{v:,} {k2.replace('_', ' ')}" for k2, v in lost.items()))
     t_min, t_max = (eq.t_min, eq.t_max) if eq.t_min is not None else executor.period_bounds()
-    n_periods = None
-    if isinstance(t_min, (int, np.integer)) and isinstance(t_max, (int, np.integer)):
-        n_periods = int((t_max - t_min) // spec.period_step) + 1
+    t_min, t_max = executor.period_value(t_min), executor.period_value(t_max)
+    n_periods = executor.n_periods()  # distinct periods, not the span
     for msg in executor.notes:
         notes.add(None, msg)
     return FitResult(
         estimator=spec.estimator, outcome=spec.outcome, coefficients=tuple(coefs), n_obs=n_obs, n_units=eq.n_units,
-        n_periods=n_periods, period_first=t_min, period_last=t_max, effects=spec.effects,
+        n_periods=n_periods, period_first=t_min, period_last=t_max, period_step=executor.step_text, effects=spec.effects,
         variance=VarianceSummary(var.kind, var.df, tuple(np.atleast_1d(var.small_sample_factor).tolist()),
                                  tuple(np.atleast_1d(var.n_clusters).tolist()) if var.n_clusters is not None else (),
                                  tuple(spec.cluster), var.clipped_eigenvalues,

@@ -69,7 +69,8 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
           "for every component of a two-way variance): not-nested (default; effects nested in a cluster dimension are "
           "left out) or all (every level, as a dummy-variable fit counts them).", default="not-nested",
           choices=LEVEL_COUNTS),
-    Param("period_step", "count", "Distance between consecutive periods.", default=1, minimum=1, maximum=2**53,
+    Param("period_step", "count", "Distance between consecutive whole-number periods (default: the panel's detected "
+          "step: the gcd of the gaps, or for dates a day, week, month, quarter or year).", minimum=1, maximum=2**53,
           empty="Give the distance between consecutive periods."),
 )}
 

@@ -77,6 +77,7 @@ class FitResult:
     n_periods: int | None
     period_first: object
     period_last: object
+    period_step: str  # the step between consecutive periods and where it came from: "10 (detected)", "3 (given)"
     effects: tuple[str, ...]
     variance: VarianceSummary
     r_squared: float
@@ -125,7 +126,8 @@ class FitResult:
                  "first-difference": "First differences"}[self.estimator]
         lines = [f"{title}: {self.outcome}", f"  source {self.source}" + (f"  where {self.where}" if self.where else "")]
         eff = f"  effects: {', '.join(self.effects)}" if self.effects else ""
-        lines.append(f"  {self.n_obs:,} rows used, {self.n_units:,} units" + (f", {self.n_periods} periods" if self.n_periods else "") + eff)
+        step = f", step {self.period_step}" if self.period_step else ""
+        lines.append(f"  {self.n_obs:,} rows used, {self.n_units:,} units" + (f", {self.n_periods} periods{step}" if self.n_periods else "") + eff)
         vline = f"  variance: {v.type}, t with {v.df:g} df"
         if v.n_clusters:
             vline += f", clusters {' / '.join(map(str, v.n_clusters))}"

@@ -78,7 +78,7 @@ class FitSpec:
     se: str
     cluster: tuple[str, ...]
     intercept: bool
-    period_step: int = 1
+    period_step: int | None = None  # None: the panel's detected step
     absorbed_levels: str = "not-nested"
 
     @classmethod
@@ -93,7 +93,7 @@ class FitSpec:
         se: str | None = None,
         cluster: str | list[str] | None = None,
         intercept: bool | None = None,
-        period_step: int = 1,
+        period_step: int | None = None,
         absorbed_levels: str | None = None,
     ) -> "FitSpec":
         estimator = params.check("estimator", estimator)
@@ -142,7 +142,7 @@ class FitSpec:
         absorbed_levels = params.check("absorbed_levels", absorbed_levels)
         return cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
-            effects=eff, se=se, cluster=clus, intercept=bool(intercept), period_step=int(period_step),
+            effects=eff, se=se, cluster=clus, intercept=bool(intercept), period_step=None if period_step is None else int(period_step),
             absorbed_levels=absorbed_levels,
         )
 
