@@ -59,8 +59,9 @@ def test_first_differences_on_periods_ten_apart(tmp_path):
 
 
 def test_lag_with_unit_and_period_effects_on_periods_three_apart(tmp_path):
-    # Failed before the fix (ValueError: shapes (0,) and (0,4) in the unit and period
-    # effects' algebra; the header said 7 periods). Reference: statsmodels OLS with unit
+    # Failed before the fix: the lag looked one period back, so "no usable rows" on this
+    # balanced panel (the issue's run ended in a ValueError, shapes (0,) and (0,4)); the
+    # header of a plain fit said 7 periods. Reference: statsmodels OLS with unit
     # and period dummy variables on the rows whose lag (the unit's period 3 earlier) exists.
     df = panel([87, 90, 93])
     path = write_parquet(df, tmp_path / "every3.parquet")
