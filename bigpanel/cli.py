@@ -154,6 +154,7 @@ def checkup_command(
 # choices are declared there, so renaming an option is one line in that table.
 Estimator = Enum("Estimator", {v.replace("-", "_"): v for v in PARAMETERS["estimator"].choices}, type=str)
 VarianceKind = Enum("VarianceKind", {v: v for v in PARAMETERS["variance"].choices}, type=str)
+LevelCount = Enum("LevelCount", {v.replace("-", "_"): v for v in PARAMETERS["absorbed_levels"].choices}, type=str)
 
 
 def _model_option(name: str):
@@ -173,7 +174,9 @@ def fit_command(
     variance: Annotated[Optional[VarianceKind], _model_option("variance")] = None,
     cluster: Annotated[Optional[str], _model_option("cluster")] = None,
     no_intercept: Annotated[bool, _model_option("intercept")] = False,
-    period_step: Annotated[int, _model_option("period_step")] = PARAMETERS["period_step"].default,
+    period_step: Annotated[Optional[int], _model_option("period_step")] = None,
+    absorbed_levels: Annotated[LevelCount, _model_option("absorbed_levels")] = LevelCount(
+        PARAMETERS["absorbed_levels"].default),
     table: TableOpt = None,
     query: QueryOpt = None,
     where: WhereOpt = None,
@@ -193,7 +196,7 @@ def fit_command(
         warnings.simplefilter("always", BigpanelWarning)
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
                      variance=variance.value if variance else None, cluster=cluster, intercept=False if no_intercept else None,
-                     period_step=period_step)
+                     period_step=period_step, absorbed_levels=absorbed_levels.value)
     for w in caught:  # each note once, on stderr (the table below leaves them out)
         if issubclass(w.category, BigpanelWarning):
             typer.echo(f"note: {w.message}", err=True)

@@ -71,11 +71,13 @@ def check_keys(engine, spec: FitSpec) -> None:
     engine.require_columns([spec.unit, spec.period, *spec.cluster])
     engine.check_filter()
     if spec.needs_order:
+        from .panel import _period_kind
+
         ptype = engine.columns()[spec.period]
-        if not engine.is_integer(ptype):
+        if _period_kind(ptype) is None:
             raise InputError(
                 f"Column '{spec.period}' in {engine.label} has type {ptype}; first differences and lags need "
-                "whole-number periods. Use a period index column (for example months since a start date)."
+                "whole-number, DATE or TIMESTAMP periods. Use a period index column (for example months since a start date)."
             )
 
 

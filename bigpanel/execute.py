@@ -29,11 +29,13 @@ MAX_PERIOD_SPAN = 10_000  # widest period range for unit + period effects (bits 
 
 @dataclass(frozen=True)
 class Keys:
-    """The panel's keys, shared by every model on a source."""
+    """The panel's keys, shared by every model on a source. ``period_sql``: the period as
+    its slot on the panel's regular grid (then ``step`` is 1), or None for the column."""
 
     unit: str
     period: str
     step: int = 1
+    period_sql: str | None = None
 
 
 class Executor:
@@ -51,10 +53,17 @@ class Executor:
         self._counted: dict = {}
         self._levels: dict = {}
         self._keys_unique: bool | None = None
+        self._duplicates: list[dict] | None = None
         self._nested: dict = {}
         self._meats: dict = {}
         self.collecting: list | None = None  # score requests seen while planning (fit_many)
         self.fold_path = "sql"  # where the last unit fold was summed: "sql" or "numpy"
+        self._grid: tuple | None = None  # (kind, panel grid) of the periods after the filter
+        self.given_step = keys.step  # None: the step is the panel's detected one
+        self.slot_values: dict | None = None  # slot -> period value, when periods are slots
+        self.step_text = "" if keys.step is None else f"{keys.step:,} (given)"
+        if keys.step is None:
+            self.keys = Keys(keys.unit, keys.period, 1)
 
     # ------------------------------------------------------------------ plumbing
     @property
@@ -82,17 +91,76 @@ class Executor:
         where = f" after the filter '{echo(self.engine.where)}'" if self.engine.where else ""
         pairs, check = "", "the filter and the columns"
         if ordered:
-            pairs = f", or (differences and lags) lacks the unit's period {self.keys.step:,} before it"
+            step = f"{self.given_step:,}" if self.given_step is not None else f"one step ({self.step_text or 1})"
+            pairs = f", or (differences and lags) lacks the unit's period {step} before it"
             check = "the filter, the columns and the period step"
         return (f"No usable rows in {self.label}{where}: every row was filtered out or lacks a value of the unit "
                 f"'{echo(self.keys.unit)}' or of a term{pairs}. Check {check}.")
+
+    # ------------------------------------------------------------------ periods
+    def period_grid(self):
+        """(kind, grid) of the distinct periods after the filter, found as the checkup finds
+        them (``panel._period_grid``); (kind, None) when there are none or too many."""
+        if self._grid is None:
+            from .panel import MAX_PERIODS, _period_grid, _period_kind
+
+            kind = _period_kind(self.engine.columns()[self.keys.period])
+            grid = None
+            if kind is not None:
+                sql = sqlbuild.distinct_periods_sql(self.engine.filtered(), self.keys.period, kind, MAX_PERIODS + 1)
+                values = self.engine.run(sql).column("period_value")
+                grid = _period_grid(values, kind) if len(values) <= MAX_PERIODS else None
+            self._grid = (kind, grid)
+        return self._grid
+
+    def use_periods(self, ordered: bool) -> None:
+        """Settle the period step. Without a given step it is the panel's detected one
+        (integers: the gcd of the gaps; dates: day, week, month, quarter or year), and a
+        model that needs consecutive periods (``ordered``: differences, lags, unit and
+        period effects) reads the period as its slot on that grid. Irregular spacing (no
+        two periods one step apart) is refused for such a model, naming the gaps found."""
+        kind, grid = self.period_grid()
+        if self.given_step is not None:
+            if ordered and kind not in (None, "integer"):
+                raise InputError(f"Option 'period_step' applies to whole-number periods; column '{echo(self.keys.period)}' "
+                                 f"in {self.label} holds {kind}s, whose step is detected. Leave out --period-step.")
+            return
+        if grid is None:
+            return
+        step = "-" if grid.step is None else f"{grid.step:,}" + (f" {grid.step_unit}" if grid.step_unit else "")
+        self.step_text = step + " (detected)"
+        if not ordered or self.slot_values is not None:
+            return
+        gaps = sorted({b - a for a, b in zip(grid.ordinals, grid.ordinals[1:])})
+        if gaps and gaps[0] > grid.slot_step:
+            unit = {"integer": "", "month": " months", "day": " days", "microsecond": " microseconds"}[grid.mode]
+            shown = ", ".join(f"{g:,}" for g in gaps[:6]) + (", ..." if len(gaps) > 6 else "")
+            raise InputError(f"Column '{echo(self.keys.period)}' in {self.label} is spaced irregularly: consecutive periods "
+                             f"are {shown}{unit} apart, so no step separates them and differences and lags are undefined. "
+                             "Give --period-step, or a period index column with a regular step.")
+        slot = sqlbuild.period_slot_sql(self.keys.period, kind, grid.mode, grid.first_ordinal, grid.slot_step)
+        self.keys = Keys(self.keys.unit, self.keys.period, 1, slot)
+        self.slot_values = {(o - grid.first_ordinal) // grid.slot_step: v for o, v in zip(grid.ordinals, grid.periods)}
+        self._bounds = None
+
+    def period_value(self, value):
+        """A period as the user has it (periods read as slots are mapped back)."""
+        if self.slot_values is None or value is None:
+            return value
+        return self.slot_values.get(int(value), value)
+
+    def n_periods(self) -> int | None:
+        """Distinct periods after the filter (not the span)."""
+        grid = self.period_grid()[1]
+        return grid.n_periods if grid is not None else None
 
     # ------------------------------------------------------------------ rows
     def rows_sql(self, rows: Rows, chunk=None, head: bool = False, streaming: bool = False) -> str:
         k = self.keys
         chunk = chunk or moments.Chunk()
         source = self.engine.filtered(chunk, k.unit, PROBE_ROWS if head else None)
-        sql = sqlbuild.design_rows_sql(source, k.unit, k.period, list(rows.clusters), list(rows.columns), k.step)
+        sql = sqlbuild.design_rows_sql(source, k.unit, k.period, list(rows.clusters), list(rows.columns), k.step,
+                                       k.period_sql)
         if rows.differenced:
             sql = sqlbuild.differenced_rows_sql(sql, len(rows.clusters), rows.q, streaming and chunk.files is not None and not head)
         return sql
@@ -109,7 +177,7 @@ class Executor:
         q = len(columns)
         k = self.keys
         head = self.engine.filtered(head=PROBE_ROWS)
-        rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step)
+        rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step, k.period_sql)
         zero = {f"s{j}": 0.0 for j in range(q)} | {f"d{j}": 1.0 for j in range(q)}
         row = self.run_once(sqlbuild.probe_sql(rows, q), zero, scan=False)[0]
         scales = np.array([power_of_two_scale(row[f"m{j}"]) for j in range(q)])
@@ -119,7 +187,7 @@ class Executor:
     def period_bounds(self) -> tuple[object, object]:
         """First and last period in the filtered source (reads the period column only)."""
         if self._bounds is None:
-            sql = sqlbuild.period_bounds_sql(self.engine.filtered(), self.keys.period)
+            sql = sqlbuild.period_bounds_sql(self.engine.filtered(), self.keys.period, self.keys.period_sql)
             row = self.run_once(sql)[0]
             self._bounds = (row["lo"], row["hi"])
         return self._bounds
@@ -160,27 +228,46 @@ class Executor:
             self._levels[expression] = [r["v"] for r in self.run_once(sql)]
         return self._levels[expression]
 
+    def duplicate_keys(self) -> list[dict]:
+        """A few (unit, period) keys held by more than one row, each with ``n_rows`` and
+        the number of such keys ``n_keys`` (a GROUP BY of the two key columns; once)."""
+        if self._duplicates is None:
+            k = self.keys
+            sql = sqlbuild.checkup_duplicate_scan_sql(self.engine.filtered(), k.unit, sqlbuild.quote_ident(k.period))
+            self._duplicates = self.run_once(sql, {"n_examples": 5}, scan=False)
+            self._keys_unique = not self._duplicates
+        return self._duplicates
+
+    def _duplicate_text(self, rows: list[dict], count: bool = False) -> str:
+        k = self.keys
+        shown = ", ".join(f"({r['unit_key']}, {r['period_key']})" for r in rows)
+        what = f"{int(rows[0]['n_keys']):,} duplicate (unit, period) keys" if count else "duplicate keys"
+        return f"Columns '{k.unit}' and '{k.period}' in {self.label} have {what}, for example {shown}"
+
     def duplicates(self, reason: str = "First differences and lags", only_if_any: bool = False) -> None:
         """Raise the error naming a few duplicate (unit, period) keys; with ``only_if_any``
         first look for them and return quietly when there are none."""
         if only_if_any and self._keys_unique:
             return
-        k = self.keys
-        sql = sqlbuild.checkup_duplicate_scan_sql(self.engine.filtered(), k.unit, sqlbuild.quote_ident(k.period))
-        rows = self.run_once(sql, {"n_examples": 5})
-        self._keys_unique = not rows
+        rows = self.duplicate_keys()
         if only_if_any and not rows:
             return
-        shown = ", ".join(f"({r['unit_key']}, {r['period_key']})" for r in rows)
-        raise InputError(
-            f"Columns '{k.unit}' and '{k.period}' in {self.label} have duplicate keys, for example {shown}. "
-            f"{reason[0].upper() + reason[1:]} need one row per unit and period: filter or aggregate the duplicates."
-        )
+        raise InputError(f"{self._duplicate_text(rows)}. "
+                         f"{reason[0].upper() + reason[1:]} need one row per unit and period: filter or aggregate the duplicates.")
+
+    def duplicate_note(self) -> str | None:
+        """The warning for within and pooled fits, which keep every row: the count of
+        duplicate (unit, period) keys and a few of them; None when the keys are unique."""
+        rows = self.duplicate_keys()
+        if not rows:
+            return None
+        return (f"{self._duplicate_text(rows, count=True)}; the rows are kept (within and pooled fits use every row, first "
+                "differences and lags refuse them). Filter or aggregate them if each unit should have one row per period.")
 
     def nested(self, request: Nesting, params: dict) -> bool:
         if request not in self._nested:
             used = self.used_sql(request.rows)
-            self._nested[request] = int(self.run_once(sqlbuild.nesting_sql(used, 0), params)[0]["mixed"]) == 0
+            self._nested[request] = int(self.run_once(sqlbuild.nesting_sql(used, request.column), params)[0]["mixed"]) == 0
         return self._nested[request]
 
     # ------------------------------------------------------------------ moments

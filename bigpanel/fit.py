@@ -47,12 +47,13 @@ def fit(
     cluster=None,
     where: str | None = None,
     intercept: bool | None = None,
-    period_step: int = 1,
+    period_step: int | None = None,
     table: str | None = None,
     query: str | None = None,
     csv_types: dict | None = None,
     engine: Engine | None = None,
     csv_nulls=None,
+    absorbed_levels: str | None = None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
@@ -82,14 +83,21 @@ def fit(
         SQL predicate applied before anything else.
     intercept : bool, optional
         Keep an intercept (pooled and first differences; default True).
-    period_step : int
-        Distance between consecutive periods (default 1).
+    period_step : int, optional
+        Distance between consecutive whole-number periods. Default: the panel's detected
+        step (integers: the gcd of the gaps; DATE/TIMESTAMP: day, week, month, quarter or
+        year), named in the result's ``period_step``.
+    absorbed_levels : {"not-nested", "all"}, optional
+        How absorbed effect levels count in K' of the cluster small-sample factor, one K'
+        for every component of a two-way variance: "not-nested" (default) leaves out the
+        effects nested in a cluster dimension; "all" counts every level (dummy variables).
     table, query, csv_types, engine
         As in :func:`bigpanel.open_source`.
     csv_nulls : str or list of str, optional
         Extra CSV tokens read as missing (``"NA,."``); empty fields always are.
     """
-    spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step)
+    spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step,
+                         absorbed_levels)
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     notes = Notes([])
     try:
@@ -113,7 +121,7 @@ def fit_many(
     unit: str,
     period: str,
     where: str | None = None,
-    period_step: int = 1,
+    period_step: int | None = None,
     table: str | None = None,
     query: str | None = None,
     csv_types: dict | None = None,
@@ -126,7 +134,7 @@ def fit_many(
     ----------
     models : list of dict
         Each with the model keys of :func:`fit` (``outcome``, ``regressors``, ``estimator``,
-        ``effects``, ``variance``, ``cluster``, ``intercept``); ``unit``, ``period`` and
+        ``effects``, ``variance``, ``cluster``, ``intercept``, ``absorbed_levels``); ``unit``, ``period`` and
         ``period_step`` are shared and may be repeated only with the same value.
     Other parameters as in :func:`fit`.
 
@@ -143,7 +151,7 @@ def fit_many(
     notes = [Notes([]) for _ in specs]
     try:
         with Session(src) as session:
-            executor = Executor(DuckDBEngine(session), Keys(unit, period, period_step))
+            executor = Executor(DuckDBEngine(session), Keys(unit, period, specs[0].period_step if specs else None))
             prepared = [prepare(executor, spec, n) for spec, n in zip(specs, notes)]
             plan = ScanPlan.build(prepared)
             results: list = [None] * len(specs)
@@ -160,7 +168,7 @@ def fit_many(
             emit(n, stacklevel=3)
 
 
-def _model_spec(model: dict, i: int, unit: str, period: str, period_step: int) -> FitSpec:
+def _model_spec(model: dict, i: int, unit: str, period: str, period_step: int | None) -> FitSpec:
     if not isinstance(model, dict):
         raise InputError(f"Model {i + 1} of fit_many is a {type(model).__name__}; give a dict of fit's model keys.")
     check_keys(model, f"Model {i + 1} of fit_many")
@@ -225,9 +233,15 @@ def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators
     for msg in design.notes:
         notes.add(BigpanelWarning, msg)
     est = estimators.select(spec, executor.engine)
+    executor.use_periods(spec.needs_order or isinstance(est, estimators.UnitPeriod))
     design = est.extend_design(executor, design)
-    if any(t.kind == "lag" for t in spec.terms):
-        executor.duplicates(only_if_any=True)
+    if spec.needs_order:
+        if any(t.kind == "lag" for t in spec.terms):
+            executor.duplicates(only_if_any=True)
+    else:  # within and pooled keep duplicate keys' rows: say so
+        note = executor.duplicate_note()
+        if note:
+            notes.add(BigpanelWarning, note)
     return est, design
 
 

@@ -8,7 +8,7 @@ and its meat is requested from the executor when the first pass did not already 
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import scipy.special  # t and F tails; scipy.stats alone takes ~0.8 s to import
@@ -69,8 +69,12 @@ def score_values(eq: Equations, sol, kx: int, constant: bool) -> dict:
 
 
 def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equations, sol, rss: float,
-                    n_kept: int, absorbed: int, notes: Notes) -> variance.Variance:
-    """The variance the specification asks for, with its meat from the first pass or a score pass."""
+                    n_kept: int, absorbed: int, notes: Notes, period_levels: int = 0) -> variance.Variance:
+    """The variance the specification asks for, with its meat from the first pass or a score pass.
+
+    ``period_levels``: the kept period-effect columns among the ``n_kept`` (the rest are
+    slope terms and the intercept). Cluster variances use one K' for every component
+    (:func:`k_prime`)."""
     spec = est.spec
     n_obs = eq.n_obs
     if spec.variance == "homoskedastic":
@@ -88,26 +92,60 @@ def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equa
     if spec.variance == "hc1":
         meats, _ = executor.meats(request("rows"), params, k, 0)
         return _embed(variance.hc1(inverse, meats[0], n_obs, n_kept, absorbed), dim)
+    kp = k_prime(spec, lambda i: executor.nested(Nesting(rows, i), params), n_kept - period_levels, absorbed,
+                 period_levels)
     if spec.cluster == (spec.unit,) and eq.expansion is not None:
         meat, worst = np.zeros((k, k)), 0.0
         for row in eq.expansion:
             part, ratio = moments.expanded_meat(row, k, eq.pilot, sol.coef)
             meat, worst = meat + part, max(worst, ratio)
         if worst < EXPANSION_LIMIT:
-            # unit effects are nested in unit clusters: not counted in K'
-            return _embed(variance.cluster(inverse, meat, eq.n_units, n_obs, n_kept), dim)
+            return _embed(variance.cluster(inverse, meat, eq.n_units, n_obs, kp), dim)
         notes.add(None, "the one-pass cluster meat cancelled too many digits; scores were recomputed in a second pass")
-    nested = [c == spec.unit for c in spec.cluster]
-    if len(spec.cluster) == 1 and not nested[0]:
-        nested[0] = executor.nested(Nesting(rows), params)
     if len(spec.cluster) == 1:
-        kind = "units" if spec.cluster[0] == spec.unit else ("nested" if nested[0] else "groups")
+        by_unit = spec.cluster[0] == spec.unit
+        kind = "units" if by_unit else ("nested" if executor.nested(Nesting(rows), params) else "groups")
         meats, counts = executor.meats(request(kind), params, k, 1)
-        v = variance.cluster(inverse, meats[0], counts[0], n_obs, n_kept + (0 if nested[0] else absorbed))
-        return _embed(v, dim)
+        return _embed(variance.cluster(inverse, meats[0], counts[0], n_obs, kp), dim)
     meats, counts = executor.meats(request("groups"), params, k, 2)
-    kp = (n_kept + (0 if nested[0] else absorbed), n_kept + (0 if nested[1] else absorbed), n_kept + absorbed)
-    return _embed(variance.two_way(inverse, tuple(meats), tuple(counts), n_obs, kp), dim)
+    return _embed(variance.two_way(inverse, tuple(meats), tuple(counts), n_obs, (kp, kp, kp)), dim)
+
+
+def k_prime(spec, nested_in_units, slopes: int, unit_levels: int, period_levels: int) -> int:
+    """K' of the CR1 factor, one for every component of a multi-way variance
+    (ESTIMATION.md): the slope terms (and intercept) plus the absorbed levels, leaving out
+    (``absorbed_levels="not-nested"``) the effects nested in at least one cluster
+    dimension: unit effects in a cluster of whole units (``nested_in_units(i)`` asks
+    whether cluster column i is constant within units), period effects in a cluster on
+    the period column. ``"all"`` counts every level (the dummy-variable convention)."""
+    if spec.absorbed_levels == "all":
+        return slopes + unit_levels + period_levels
+    units_nested = unit_levels > 0 and any(c == spec.unit or nested_in_units(i) for i, c in enumerate(spec.cluster))
+    periods_nested = spec.period in spec.cluster
+    return slopes + (0 if units_nested else unit_levels) + (0 if periods_nested else period_levels)
+
+
+def wald(var: variance.Variance, coef: np.ndarray, slopes: list[int]) -> tuple[float, float, str]:
+    """The joint test that all slopes are zero: (F, p, "") or (nan, nan, why it is not
+    available). A cluster-robust variance has rank at most G-1 (ESTIMATION.md), so with
+    fewer clusters than slopes, or a singular slope variance, there is no Wald F."""
+    nan = float("nan")
+    if not slopes:
+        return nan, nan, "no slope terms to test"
+    m = len(slopes)
+    if isinstance(var.n_clusters, (int, np.integer)) and var.n_clusters - 1 < m:  # one-way clusters
+        g = int(var.n_clusters)
+        return nan, nan, f"{g} clusters give a variance of rank at most {g - 1}, below the {m} slopes tested"
+    # the Wald statistic does not change when columns are rescaled: take the scaled ones
+    vs = var.vcov[np.ix_(slopes, slopes)]
+    bs = coef[slopes]
+    eig = np.linalg.eigvalsh(vs) if np.isfinite(vs).all() else np.array([nan])
+    if not np.isfinite(eig).all() or eig[0] <= 1e-12 * max(eig[-1], 0.0) or eig[-1] <= 0:
+        return nan, nan, "the variance of the slopes is singular"
+    f_stat = float(bs @ np.linalg.solve(vs, bs) / m)
+    if not (np.isfinite(f_stat) and f_stat >= 0):
+        return nan, nan, "the variance of the slopes is too close to singular"
+    return f_stat, float(scipy.special.fdtrc(m, var.df, f_stat)), ""
 
 
 def _embed(var: variance.Variance, dim: int) -> variance.Variance:
@@ -117,7 +155,7 @@ def _embed(var: variance.Variance, dim: int) -> variance.Variance:
     full = np.zeros((dim, dim))
     k = var.vcov.shape[0]
     full[:k, :k] = var.vcov
-    return variance.Variance(full, var.kind, var.df, var.small_sample_factor, var.n_clusters, var.clipped_eigenvalues)
+    return replace(var, vcov=full)
 
 
 def _too_large(names: list[str], why: str) -> InputError:
@@ -148,9 +186,9 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
             zero_var[k - 1] = False
         for j in np.flatnonzero(zero_var):
             terms_dropped[labels[j]] = "no variation within units"
-    sol = solve_normal(h, g, zero_variation=zero_var)
+    sol = solve_normal(h, g, zero_variation=zero_var, first=np.array(is_effect[:k], dtype=bool))
     for j in np.flatnonzero(~sol.kept & ~zero_var):
-        terms_dropped[labels[j]] = "collinear with other terms"
+        terms_dropped[labels[j]] = "collinear with the period effects" if sol.by_first[j] else "collinear with other terms"
     if terms_dropped:
         notes.add(DroppedTermsWarning, "Terms left out: " + ", ".join(f"{t} ({w})" for t, w in terms_dropped.items()))
     if not sol.kept.any():
@@ -159,11 +197,16 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     coef = sol.coef
     rss = max(float(yy - g @ coef), 0.0)
     tss = yy - eq.total[k - 1, k] ** 2 / eq.total[k - 1, k - 1] if est.constant else yy
+    if (est.constant or est.checks_variation) and not tss > NO_VARIATION * max(float(eq.raw_diag[-1]), 1e-300):
+        where = {"within": "within units", "first-difference": "between consecutive periods"}.get(est.name, "across rows")
+        raise InputError(f"Outcome {shown(spec.outcome)} has no variation {where} in the rows used, so nothing "
+                              "can be estimated; give an outcome that varies.")
     r2 = 1.0 - rss / tss if tss > 0 else float("nan")
     n_obs = eq.n_obs
     n_kept = int(sol.kept.sum())
     absorbed = est.absorbed(eq)
-    var = choose_variance(est, executor, rows, params, eq, sol, rss, n_kept, absorbed, notes)
+    period_levels = sum(1 for j in range(k) if sol.kept[j] and is_effect[j] and labels[j] != "(intercept)")
+    var = choose_variance(est, executor, rows, params, eq, sol, rss, n_kept, absorbed, notes, period_levels)
     # columns were scaled by powers of two in SQL (solve.py); back to the user's units, with
     # the intercept moved back from the shifted columns:
     # y - c_y = b0' + sum b_j (x_j - c_j), so the intercept is b0' + c_y - c'b
@@ -191,16 +234,7 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         coefs.append(Coefficient(labels[j], float(estimate[j]), se, float(tval), float(p),
                                  float(estimate[j] - crit * se), float(estimate[j] + crit * se)))
     slopes = [j for j in range(k) if sol.kept[j] and not is_effect[j] and labels[j] != "(intercept)"]
-    f_stat, f_p = float("nan"), float("nan")
-    if slopes:
-        # the Wald statistic does not change when columns are rescaled: take the scaled ones
-        vs = var.vcov[np.ix_(slopes, slopes)]
-        bs = coef[slopes]
-        try:
-            f_stat = float(bs @ np.linalg.solve(vs, bs) / len(slopes))
-            f_p = float(scipy.special.fdtrc(len(slopes), var.df, f_stat))
-        except np.linalg.LinAlgError:
-            pass
+    f_stat, f_p, f_missing = wald(var, coef, slopes)
     if var.n_clusters is not None:
         g_min = var.n_clusters if isinstance(var.n_clusters, int) else min(var.n_clusters)
         if g_min < FEW_CLUSTERS:
@@ -213,19 +247,19 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     if lost:
         notes.add(DroppedRowsWarning, "Rows left out: " + ", ".join(f"{v:,} {k2.replace('_', ' ')}" for k2, v in lost.items()))
     t_min, t_max = (eq.t_min, eq.t_max) if eq.t_min is not None else executor.period_bounds()
-    n_periods = None
-    if isinstance(t_min, (int, np.integer)) and isinstance(t_max, (int, np.integer)):
-        n_periods = int((t_max - t_min) // spec.period_step) + 1
+    t_min, t_max = executor.period_value(t_min), executor.period_value(t_max)
+    n_periods = executor.n_periods()  # distinct periods, not the span
     for msg in executor.notes:
         notes.add(None, msg)
     return FitResult(
         estimator=spec.estimator, outcome=spec.outcome, coefficients=tuple(coefs), n_obs=n_obs, n_units=eq.n_units,
-        n_periods=n_periods, period_first=t_min, period_last=t_max, effects=spec.effects,
+        n_periods=n_periods, period_first=t_min, period_last=t_max, period_step=executor.step_text, effects=spec.effects,
         variance=VarianceSummary(var.kind, var.df, tuple(np.atleast_1d(var.small_sample_factor).tolist()),
                                  tuple(np.atleast_1d(var.n_clusters).tolist()) if var.n_clusters is not None else (),
-                                 tuple(spec.cluster), var.clipped_eigenvalues),
+                                 tuple(spec.cluster), var.clipped_eigenvalues,
+                                 spec.absorbed_levels if var.k_prime is not None else "", var.k_prime),
         r_squared=float(r2), r_squared_kind=est.r2_kind, f_stat=f_stat, f_df=(float(len(slopes)), float(var.df)),
-        f_p_value=f_p, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=eq.singletons,
+        f_p_value=f_p, f_unavailable=f_missing, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=eq.singletons,
         absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=executor.label,
         where=executor.engine.where, warnings=notes.texts, run=run_record(executor.engine.thread_count()),
     )

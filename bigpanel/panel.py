@@ -405,6 +405,8 @@ class _Grid:
     first_ordinal: int
     slot_step: int
     n_slots: int
+    ordinals: tuple = ()  # each distinct period's ordinal, ascending
+    periods: tuple = ()  # the distinct periods as Python values, in the same order
 
 
 def _period_grid(values, kind: str) -> _Grid | None:
@@ -414,8 +416,10 @@ def _period_grid(values, kind: str) -> _Grid | None:
     if kind == "integer":
         ordinals = sorted(set(int(v) for v in values.to_pylist()))
         mode, first, last = "integer", ordinals[0], ordinals[-1]
+        periods = tuple(ordinals)
     else:
         stamps = np.unique(np.asarray(values.to_numpy(zero_copy_only=False)).astype("datetime64[us]"))
+        periods = tuple(_from_numpy(v, kind) for v in stamps)
         days = stamps.astype("datetime64[D]")
         first, last = _from_numpy(stamps[0], kind), _from_numpy(stamps[-1], kind)
         if np.any(stamps - days.astype("datetime64[us]") != stamps[0] - days[0].astype("datetime64[us]")):
@@ -434,7 +438,7 @@ def _period_grid(values, kind: str) -> _Grid | None:
     slot_step = math.gcd(*gaps) if gaps else 1
     n_slots = (ordinals[-1] - ordinals[0]) // slot_step + 1
     step, step_unit = _step_label(mode, slot_step) if gaps else (None, None)
-    return _Grid(n_periods, first, last, step, step_unit, mode, ordinals[0], slot_step, n_slots)
+    return _Grid(n_periods, first, last, step, step_unit, mode, ordinals[0], slot_step, n_slots, tuple(ordinals), periods)
 
 
 def _step_label(mode: str, slot_step: int) -> tuple[int, str | None]:

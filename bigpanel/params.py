@@ -16,6 +16,10 @@ from .errors import InputError, echo
 
 ESTIMATORS = ("pooled", "within", "first-difference")
 VARIANCES = ("homoskedastic", "hc1", "cluster")
+# How absorbed effect levels enter K' of the cluster small-sample factor (ESTIMATION.md):
+# "not-nested" leaves out the effects nested in at least one cluster dimension, "all"
+# counts every level (the dummy-variable convention). One K' for every component.
+LEVEL_COUNTS = ("not-nested", "all")
 
 
 @dataclass(frozen=True)
@@ -60,7 +64,12 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("cluster", "columns", "One or two cluster columns, comma-separated (default: the unit)."),
     Param("intercept", "flag", "Intercept of pooled and first-difference fits (kept by default; --no-intercept drops it).",
           flag="--no-intercept"),
-    Param("period_step", "count", "Distance between consecutive periods.", default=1, minimum=1, maximum=2**53,
+    Param("absorbed_levels", "choice", "Absorbed effect levels counted in the cluster small-sample factor K' (one K' "
+          "for every component of a two-way variance): not-nested (default; effects nested in a cluster dimension are "
+          "left out) or all (every level, as a dummy-variable fit counts them).", default="not-nested",
+          choices=LEVEL_COUNTS),
+    Param("period_step", "count", "Distance between consecutive whole-number periods (default: the panel's detected "
+          "step: the gcd of the gaps, or for dates a day, week, month, quarter or year).", minimum=1, maximum=2**53,
           empty="Give the distance between consecutive periods."),
 )}
 

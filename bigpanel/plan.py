@@ -73,9 +73,11 @@ class SharedScan:
         out = []
         for m in self.members:
             spec = m.est.spec
-            if spec.variance == "cluster" and len(spec.cluster) == 1 and spec.cluster[0] != spec.unit:
-                pair = (m.sample, self.clusters.index(spec.cluster[0]))
-                if pair not in out:
+            if spec.variance != "cluster":
+                continue
+            for c in spec.cluster:
+                pair = (m.sample, self.clusters.index(c))
+                if c != spec.unit and pair not in out:
                     out.append(pair)
         return out
 
@@ -115,8 +117,9 @@ def prefill(executor, scan: SharedScan, totals: dict) -> None:
     for s, c in scan.nesting_checks():
         for m in scan.members:
             spec = m.est.spec
-            if m.sample == s and len(spec.cluster) == 1 and scan.clusters.index(spec.cluster[0]) == c:
-                executor.set_nested(Nesting(m.rows), int(totals[f"mixed{s}_{c}"] or 0) == 0)
+            for i, name in enumerate(spec.cluster if m.sample == s else ()):
+                if scan.clusters.index(name) == c:
+                    executor.set_nested(Nesting(m.rows, i), int(totals[f"mixed{s}_{c}"] or 0) == 0)
 
 
 def score_models(scan: SharedScan, requests: list[tuple[int, Scores, int, int]]) -> tuple[list[dict], list, dict]:

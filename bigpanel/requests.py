@@ -75,6 +75,7 @@ class Scores:
 
 @dataclass(frozen=True)
 class Nesting:
-    """Is cluster column 0 of ``rows`` constant within every unit of the sample?"""
+    """Is cluster column ``column`` of ``rows`` constant within every unit of the sample?"""
 
     rows: Rows
+    column: int = 0

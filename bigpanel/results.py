@@ -39,6 +39,21 @@ class VarianceSummary:
     n_clusters: tuple[int, ...]
     cluster_columns: tuple[str, ...]
     clipped_eigenvalues: int = 0
+    absorbed_levels: str = ""  # K' rule of the cluster factor: "not-nested" or "all" (empty without clusters)
+    k_prime: int | None = None  # K' of the cluster factor, one for every component
+
+    @property
+    def factor_rule(self) -> str:
+        """The cluster small-sample factor's rule in words (empty without clusters)."""
+        return LEVEL_RULES.get(self.absorbed_levels, "")
+
+
+# The K' rules of the cluster small-sample factor G/(G-1) (N-1)/(N-K'), by parameter value.
+LEVEL_RULES = {
+    "not-nested": "K' = slopes + absorbed levels not nested in a cluster dimension, one K' for every component",
+    "all": "K' = slopes + every absorbed level (dummy-variable convention), one K' for every component",
+}
+LEVEL_SHORT = {"not-nested": "effects nested in clusters left out", "all": "every absorbed level"}
 
 
 @dataclass(frozen=True)
@@ -54,6 +69,7 @@ class FitResult:
     n_periods: int | None
     period_first: object
     period_last: object
+    period_step: str  # the step between consecutive periods and where it came from: "10 (detected)", "3 (given)"
     effects: tuple[str, ...]
     variance: VarianceSummary
     r_squared: float
@@ -70,10 +86,12 @@ class FitResult:
     source: str
     where: str | None
     warnings: tuple[str, ...] = field(default=())
+    f_unavailable: str = ""  # why there is no joint test (f_stat and f_p_value are then NaN)
     run: dict = field(default_factory=dict)  # how it ran: {"threads": N, "version": "x.y.z"}
 
     def to_dict(self) -> dict:
         out = json_ready(self)
+        out["variance"]["factor_rule"] = self.variance.factor_rule
         out["cautions"] = list(CAUTIONS)
         return out
 
@@ -129,7 +147,8 @@ def _variance_words(v: VarianceSummary) -> str:
         kind = f"cluster, two ways: by {a} ({na:,} clusters) and by {b} ({nb:,} clusters)"
     else:
         kind = f"cluster, by {', '.join(v.cluster_columns)} ({v.n_clusters[0]:,} clusters)"
-    return f"{kind}; t tests with {_count(v.df)} df"
+    factor = f"; K' {v.k_prime:,} ({LEVEL_SHORT[v.absorbed_levels]})" if v.k_prime is not None else ""
+    return f"{kind}; t tests with {_count(v.df)} df{factor}"
 
 
 def _header(r: "FitResult") -> list[str]:
@@ -140,6 +159,8 @@ def _header(r: "FitResult") -> list[str]:
         sample += f", {r.n_periods:,} periods"
         if r.period_first is not None and r.period_last is not None:
             sample += f" ({r.period_first} to {r.period_last})"
+        if r.period_step:
+            sample += f", step {r.period_step}"
     if r.effects:
         sample += f"; effects: {', '.join(r.effects)}"
     lines += _wrapped("sample", sample)
@@ -174,7 +195,7 @@ def _footer(r: "FitResult", notes: bool) -> list[str]:
     if math.isfinite(r.f_stat) and r.f_stat >= 0:
         joint = f"F = {_stat(r.f_stat)} on {slopes} and {df} df, p {_p_words(r.f_p_value)}"
     else:
-        joint = "not available"
+        joint = "not available" + (f" ({r.f_unavailable})" if r.f_unavailable else "")
     lines += _wrapped("", f"slopes jointly zero: {joint}")
     lines += _wrapped("", f"share of variation explained ({r.r_squared_kind} R-squared): {r.r_squared:.4f}")
     dropped = {k: n for k, n in r.rows_dropped.items() if n}

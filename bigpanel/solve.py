@@ -30,10 +30,17 @@ class Solution:
     kept: np.ndarray  # (k,) bool
     inverse: np.ndarray  # (k, k), (H_kept)^-1 embedded with zeros for dropped columns
     condition: float  # condition number of the scaled kept block
+    by_first: np.ndarray | None = None  # (k,) bool: dropped as collinear with the ``first`` columns
 
 
-def solve_normal(h: np.ndarray, g: np.ndarray, tol: float = RANK_TOL, zero_variation: np.ndarray | None = None) -> Solution:
+def solve_normal(h: np.ndarray, g: np.ndarray, tol: float = RANK_TOL, zero_variation: np.ndarray | None = None,
+                 first: np.ndarray | None = None) -> Solution:
     """Solve ``h b = g`` keeping a maximal set of well-determined columns.
+
+    Columns marked ``first`` (absorbed effects) are chosen before the others: a maximal
+    independent set of them is kept, and another column is dropped when it lies in their
+    span (``Solution.by_first``) or in the span of earlier kept columns, so an effect is
+    never dropped in place of a slope (ESTIMATION.md, "Absorbed effects take priority").
 
     Parameters
     ----------
@@ -56,10 +63,13 @@ def solve_normal(h: np.ndarray, g: np.ndarray, tol: float = RANK_TOL, zero_varia
         return Solution(coef, kept, inverse, float("nan"))
     d = 1.0 / np.sqrt(diag[idx])
     hs = h[np.ix_(idx, idx)] * d[:, None] * d[None, :]
-    _, r, piv = scipy.linalg.qr(hs, pivoting=True)
-    pivots = np.abs(np.diag(r))
-    rank = int(np.sum(pivots > tol * pivots[0]))
-    sel = np.sort(piv[:rank])
+    by_first = np.zeros(k, dtype=bool)
+    if first is None or not first[idx].any():
+        sel = _independent(hs, tol)
+    else:
+        sel, spanned = _effects_first(hs, first[idx], tol)
+        by_first[idx[spanned]] = True
+    rank = len(sel)
     chosen = idx[sel]
     kept[chosen] = True
     hk = hs[np.ix_(sel, sel)]
@@ -70,7 +80,36 @@ def solve_normal(h: np.ndarray, g: np.ndarray, tol: float = RANK_TOL, zero_varia
     inverse[np.ix_(chosen, chosen)] = inv_s * d[sel][:, None] * d[sel][None, :]
     eig = np.linalg.eigvalsh(hk)
     condition = float(eig[-1] / eig[0]) if eig[0] > 0 else float("inf")
-    return Solution(coef, kept, inverse, condition)
+    return Solution(coef, kept, inverse, condition, by_first)
+
+
+def _independent(hs: np.ndarray, tol: float) -> np.ndarray:
+    """Sorted positions of a maximal well-determined set of columns of a scaled
+    cross-product (column-pivoted QR; pivots below ``tol`` times the largest are dependent)."""
+    _, r, piv = scipy.linalg.qr(hs, pivoting=True)
+    pivots = np.abs(np.diag(r))
+    return np.sort(piv[: int(np.sum(pivots > tol * pivots[0]))])
+
+
+def _effects_first(hs: np.ndarray, first: np.ndarray, tol: float) -> tuple[np.ndarray, np.ndarray]:
+    """Positions kept (sorted) when the ``first`` columns are chosen before the others, and
+    the other columns that lie in the span of the kept ``first`` ones.
+
+    The ``first`` block is reduced on its own; the others are then taken in the
+    Schur complement C = H_oo - H_oe H_ee^-1 H_eo (their parts orthogonal to the kept
+    effects): a column whose remaining share C_jj of its unit (scaled) sum of squares is
+    at most ``tol`` is in the effects' span; among the rest, pivoted QR of C decides."""
+    eff, other = np.flatnonzero(first), np.flatnonzero(~first)
+    kept_e = eff[_independent(hs[np.ix_(eff, eff)], tol)]
+    if other.size == 0:
+        return kept_e, np.zeros(0, dtype=int)
+    cross = hs[np.ix_(kept_e, other)]
+    c = hs[np.ix_(other, other)] - cross.T @ scipy.linalg.solve(hs[np.ix_(kept_e, kept_e)], cross, assume_a="pos")
+    share = np.diag(c)
+    spanned = share <= tol
+    rest = np.flatnonzero(~spanned)
+    kept_o = rest[_independent(c[np.ix_(rest, rest)], tol)] if rest.size else rest
+    return np.sort(np.r_[kept_e, other[kept_o]]), other[spanned]
 
 
 def power_of_two_scale(magnitude: float | None) -> float:

@@ -80,7 +80,8 @@ class FitSpec:
     variance: str
     cluster: tuple[str, ...]
     intercept: bool
-    period_step: int = 1
+    period_step: int | None = None  # None: the panel's detected step
+    absorbed_levels: str = "not-nested"
 
     @classmethod
     def build(
@@ -94,7 +95,8 @@ class FitSpec:
         variance: str | None = None,
         cluster: str | list[str] | None = None,
         intercept: bool | None = None,
-        period_step: int = 1,
+        period_step: int | None = None,
+        absorbed_levels: str | None = None,
     ) -> "FitSpec":
         estimator = params.check("estimator", estimator)
         outcome = params.check("outcome", outcome)
@@ -140,9 +142,11 @@ class FitSpec:
         if estimator == "within" and intercept:
             raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects already remove it.")
         period_step = params.check("period_step", period_step)
+        absorbed_levels = params.check("absorbed_levels", absorbed_levels)
         return cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
-            effects=eff, variance=variance, cluster=clus, intercept=bool(intercept), period_step=int(period_step),
+            effects=eff, variance=variance, cluster=clus, intercept=bool(intercept), period_step=None if period_step is None else int(period_step),
+            absorbed_levels=absorbed_levels,
         )
 
     @property

@@ -245,15 +245,18 @@ def _z(j: int) -> str:
 
 
 def design_rows_sql(
-    source: str, unit: str, period: str, clusters: list[str], columns: list[tuple[str, int]], step: int
+    source: str, unit: str, period: str, clusters: list[str], columns: list[tuple[str, int]], step: int,
+    period_sql: str | None = None,
 ) -> str:
     """Select the unit, period, clusters and shifted design columns of every row.
 
     ``columns`` holds ``(expression, lag)`` pairs; a lag K reads the expression at
     period - K*step in the same unit (NULL when that period is absent); a negative K (a
-    lead) reads it |K|*step periods later.
+    lead) reads it |K|*step periods later. ``period_sql``: the period as a slot on its
+    regular grid (:func:`period_slot_sql`) instead of the column.
     """
-    items = [f"{quote_ident(unit)} AS k_unit", f"{quote_ident(period)} AS k_period"]
+    period_sql = period_sql or quote_ident(period)
+    items = [f"{quote_ident(unit)} AS k_unit", f"{period_sql} AS k_period"]
     items += [f"{quote_ident(c)} AS k_c{i}" for i, c in enumerate(clusters)]
     for j, (expr, lag) in enumerate(columns):
         value = f"CAST(({expr}) AS DOUBLE)"
@@ -261,7 +264,7 @@ def design_rows_sql(
             span = abs(int(lag)) * int(step)
             side = "PRECEDING" if lag > 0 else "FOLLOWING"
             value = (
-                f"first_value({value}) OVER (PARTITION BY {quote_ident(unit)} ORDER BY {quote_ident(period)} "
+                f"first_value({value}) OVER (PARTITION BY {quote_ident(unit)} ORDER BY {period_sql} "
                 f"RANGE BETWEEN {span} {side} AND {span} {side})"
             )
         items.append(f"({value} - $s{j}) * $d{j} AS {_z(j)}")
@@ -386,8 +389,8 @@ def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dia
     return render("row_counts", rows=f"({rows})", counts=", ".join(counts))
 
 
-def period_bounds_sql(source: str, period: str) -> str:
-    p = quote_ident(period)
+def period_bounds_sql(source: str, period: str, period_sql: str | None = None) -> str:
+    p = period_sql or quote_ident(period)
     return f"SELECT min({p}) AS lo, max({p}) AS hi FROM {source} AS src"
 
 
@@ -601,15 +604,30 @@ def checkup_period_scan_sql(source_sql: str, unit: str, period_value: str, check
     )
 
 
-def slot_expression(period_value: str, mode: str) -> str:
-    """The period's slot on the grid; ``$first`` is the first period's ordinal, ``$step`` the step."""
-    ordinal = {
+def _ordinal(period_value: str, mode: str) -> str:
+    return {
         "integer": f"CAST({period_value} AS HUGEINT)",
         "month": f"(year({period_value}) * 12 + month({period_value}) - 1)",
         "day": f"date_diff('day', DATE '1970-01-01', CAST({period_value} AS DATE))",
         "microsecond": f"epoch_us({period_value})",
     }[mode]
-    return f"CAST(({ordinal} - $first) // $step AS BIGINT)"
+
+
+def slot_expression(period_value: str, mode: str) -> str:
+    """The period's slot on the grid; ``$first`` is the first period's ordinal, ``$step`` the step."""
+    return f"CAST(({_ordinal(period_value, mode)} - $first) // $step AS BIGINT)"
+
+
+def period_slot_sql(period: str, kind: str, mode: str, first: int, step: int) -> str:
+    """The period column as its slot on a regular grid (0, 1, 2, ... one per step), with
+    the grid's first ordinal and step written as literals (whole numbers the fit found)."""
+    return f"CAST(({_ordinal(period_value(period, kind), mode)} - ({int(first)})) // {int(step)} AS BIGINT)"
+
+
+def distinct_periods_sql(source: str, period: str, kind: str, limit: int) -> str:
+    """The distinct non-null periods (timestamps as TIMESTAMP), at most ``limit``."""
+    value = period_value(period, kind)
+    return f"SELECT DISTINCT {value} AS period_value FROM {source} AS src WHERE {value} IS NOT NULL LIMIT {int(limit)}"
 
 
 def checkup_unit_scan_sql(source_sql: str, unit: str, period_value: str, checked: Sequence[str],

@@ -6,9 +6,11 @@ Conventions (../shared/ESTIMATION.md, and the sources named there):
 - HC1: V = H^-1 (sum u^2 x x') H^-1 * N / (N - K - absorbed); same df.
 - CR1 (Liang and Zeger): V = H^-1 (sum_g s_g s_g') H^-1 * G/(G-1) * (N-1)/(N-K'),
   K' = K plus absorbed levels not nested in the clusters (Cameron and Miller 2015);
-  t with G - 1 df.
-- Two-way (Cameron, Gelbach and Miller 2011): V_A + V_B - V_AB, each with its own CR1
-  factor; negative eigenvalues are set to zero (and reported); t with min(G_A, G_B) - 1 df.
+  t with G - 1 df. K' is chosen by the caller (inference.k_prime).
+- Two-way (Cameron, Gelbach and Miller 2011): V_A + V_B - V_AB, each with its own
+  G/(G-1) and one K' for all three (slopes plus the absorbed levels not nested in either
+  cluster dimension, or every level); negative eigenvalues are set to zero (and
+  reported); t with min(G_A, G_B) - 1 df.
 """
 
 from __future__ import annotations
@@ -26,6 +28,7 @@ class Variance:
     small_sample_factor: float | list[float]
     n_clusters: int | list[int] | None
     clipped_eigenvalues: int = 0
+    k_prime: int | None = None  # K' of the cluster factor (one for every component)
 
 
 def _sandwich(inverse: np.ndarray, meat: np.ndarray) -> np.ndarray:
@@ -53,7 +56,8 @@ def cr1_factor(n_clusters: int, n_obs: int, k_prime: int) -> float:
 
 def cluster(inverse: np.ndarray, meat: np.ndarray, n_clusters: int, n_obs: int, k_prime: int) -> Variance:
     factor = cr1_factor(n_clusters, n_obs, k_prime)
-    return Variance(factor * _sandwich(inverse, meat), "cluster", float(n_clusters - 1), factor, n_clusters)
+    return Variance(factor * _sandwich(inverse, meat), "cluster", float(n_clusters - 1), factor, n_clusters,
+                    k_prime=k_prime)
 
 
 def two_way(
@@ -71,4 +75,5 @@ def two_way(
     clipped = int(np.sum(eigval < 0))
     if clipped:
         v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
-    return Variance(v, "cluster", float(min(counts[0], counts[1]) - 1), factors, list(counts), clipped)
+    kp = k_primes[0] if len(set(k_primes)) == 1 else None
+    return Variance(v, "cluster", float(min(counts[0], counts[1]) - 1), factors, list(counts), clipped, kp)

@@ -196,7 +196,7 @@ CASES = [
     Case("bigpanel checkup text_month.parquet $KEYS",
          "Column 'month' in text_month.parquet has type VARCHAR, which cannot be a period. Use an integer, DATE or TIMESTAMP column, or convert it in a query (for example CAST(... AS DATE)).", 2),
     Case("bigpanel fit text_month.parquet $FIT --estimator first-difference",
-         "Column 'month' in text_month.parquet has type VARCHAR; first differences and lags need whole-number periods. Use a period index column (for example months since a start date).", 2),
+         "Column 'month' in text_month.parquet has type VARCHAR; first differences and lags need whole-number, DATE or TIMESTAMP periods. Use a period index column (for example months since a start date).", 2),
     Case("bigpanel checkup no_units.parquet $KEYS",
          "No row of no_units.parquet has both a unit ('depot') and a period ('month'). Check the key columns.", 2),
     Case("bigpanel fit no_units.parquet $FIT",

@@ -145,27 +145,25 @@ def test_within_cr1_clusters_nesting_units_matches_lsdv(panel):
 
 
 def test_within_two_way_clusters_matches_statsmodels(panel):
-    # Source: statsmodels OLS (LSDV) and sandwich_covariance.cov_cluster_2groups with
-    # use_correction=True (Cameron, Gelbach and Miller 2011: V_unit + V_period -
-    # V_intersection, each a cov_cluster with its own G and CR1 factor). It returns
-    # (V_both, V_unit, V_period); statsmodels uses K_dense in all three components;
-    # ESTIMATION.md leaves the unit effects out of K' for the unit component only (they
-    # are nested there, not in periods or in unit-period cells). So the unit component
-    # is rescaled, using the V_unit it returns (statsmodels' one-way unit-cluster variance).
+    # Source: statsmodels OLS (LSDV) and sandwich_covariance.cov_cluster with
+    # use_correction=False for each grouping (Cameron, Gelbach and Miller 2011:
+    # V_unit + V_period - V_intersection), each times its own G/(G-1) and one (N-1)/(N-K')
+    # for all three components (ESTIMATION.md): K' = the slope terms, since the unit
+    # effects are nested in the unit clusters (one of the two dimensions).
     df, path = panel
     model, k_dense = lsdv(df, REGRESSORS)
     unit_codes, period_codes = codes(df["unit"]), codes(df["period"])
     ref = model.fit()
-    two_way, unit_part, _ = sw.cov_cluster_2groups(ref, unit_codes, group2=period_codes, use_correction=True)
     res = bigpanel.fit(path, "y", REGRESSORS, "unit", "period", variance="cluster", cluster=["unit", "period"])
     est, se = ours(res)
     np.testing.assert_allclose(est, ref.params[:2], rtol=SLOPE_RTOL)
     n, k = len(df), len(REGRESSORS)
+    cell_codes = codes(df["unit"].astype(str) + "/" + df["period"].astype(str))
     g_unit, g_period = df["unit"].nunique(), df["period"].nunique()
     g_cell = len(df[["unit", "period"]].drop_duplicates())
-    factors = [cr1_factor(g_unit, n, k), cr1_factor(g_period, n, k + g_unit), cr1_factor(g_cell, n, k + g_unit)]
-    adjust = factors[0] / cr1_factor(g_unit, n, k_dense) - 1.0
-    expected = two_way[:2, :2] + adjust * unit_part[:2, :2]
+    factors = [cr1_factor(g_unit, n, k), cr1_factor(g_period, n, k), cr1_factor(g_cell, n, k)]
+    parts = [sw.cov_cluster(ref, c, use_correction=False)[:2, :2] for c in (unit_codes, period_codes, cell_codes)]
+    expected = factors[0] * parts[0] + factors[1] * parts[1] - factors[2] * parts[2]
     # ESTIMATION.md: a two-way variance that is not positive semi-definite has its
     # negative eigenvalues set to zero, and the result says so (the 4-period panel).
     eigval, eigvec = np.linalg.eigh(expected)

@@ -149,10 +149,12 @@ def unit_fold(request: CrossProducts, chunks: list[list[dict]], q: int) -> Equat
     return eq
 
 
-def set_effects(eq: Equations, period: str, values: list, effects: list, with_constant: bool) -> None:
+def set_effects(eq: Equations, period: str, values: list, effects: list, with_constant: bool, shown=None) -> None:
     """Label the period-effect columns (then the constant when there is one) and record
-    each period's indicator row over them."""
-    eq.extra_labels = [f"{period}={v}" for v in effects] + (["(intercept)"] if with_constant else [])
+    each period's indicator row over them; ``shown`` maps a period as summed (a slot on
+    the grid) to the user's value."""
+    shown = shown or (lambda v: v)
+    eq.extra_labels = [f"{period}={shown(v)}" for v in effects] + (["(intercept)"] if with_constant else [])
     eq.extra_effect = [True] * len(eq.extra_labels)
     rows = np.zeros((len(values), len(eq.extra_labels)))
     for i, v in enumerate(values):

@@ -44,7 +44,7 @@ class Pooled(Estimator):
         if request.fold == "unit":
             return unit_fold(request, chunks, q)
         if request.fold == "period":
-            return self._period_fold(chunks, q)
+            return self._period_fold(chunks, q, executor.period_value)
         rows = [c[0] for c in chunks]
         mat, raw, n = moments.pooled_matrix(rows, q, self.constant)
         lo = [r["t_min"] for r in rows if r["t_min"] is not None]
@@ -61,7 +61,7 @@ class Pooled(Estimator):
         mat, raw, n = moments.pooled_matrix([row], q, self.constant)
         return Equations(mat, raw, n, int(totals[f"units{s}"]), t_min=totals[f"tlo{s}"], t_max=totals[f"thi{s}"])
 
-    def _period_fold(self, chunks: list[list[dict]], q: int) -> Equations:
+    def _period_fold(self, chunks: list[list[dict]], q: int, shown=None) -> Equations:
         """The whole matrix over (regressors, indicators but the first, [constant],
         outcome) from per-period counts and sums."""
         by_period: dict = {}
@@ -97,5 +97,5 @@ class Pooled(Estimator):
         n_obs = sum(by_period[v]["n"] for v in values)
         raw = np.r_[np.diag(full)[:kx + e], full[ys, ys]]
         eq = Equations(full, raw, n_obs, units, t_min=min(values), t_max=max(values))
-        set_effects(eq, self.spec.period, values, effects, with_constant=constant)
+        set_effects(eq, self.spec.period, values, effects, with_constant=constant, shown=shown)
         return eq

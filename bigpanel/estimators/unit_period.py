@@ -70,5 +70,5 @@ class UnitPeriod(Within):
         full[kx:kx + e, -1] = full[-1, kx:kx + e] = dz[eff, -1]
         eq.total = full
         eq.raw_diag = np.r_[eq.raw_diag[:kx], n_t[eff], eq.raw_diag[-1]]
-        set_effects(eq, self.spec.period, values, values[1:], with_constant=False)
+        set_effects(eq, self.spec.period, values, values[1:], with_constant=False, shown=executor.period_value)
         return eq
