@@ -94,7 +94,7 @@ def test_table_layout_in_words(panel):
     lines = text.splitlines()
     assert lines[0] == "Pooled least squares of y"
     assert re.match(r"  data +panel\.parquet$", lines[1])
-    assert re.match(r"  sample +240 rows, 40 units, 6 periods \(1 to 6\)$", lines[2])
+    assert re.match(r"  sample +240 rows, 40 units, 6 periods \(1 to 6\), step 1 \(detected\)$", lines[2])
     assert re.match(r"  variance +homoskedastic .*; t tests with 237 df$", lines[3])
     head = next(line for line in lines if line.lstrip().startswith("term"))
     assert head.split() == ["term", "estimate", "std.", "error", "t", "p", "low", "high"]
@@ -146,6 +146,10 @@ def test_indicator_labels_are_column_equals_level(panel):
     assert res.coef("kind=van").estimate == pytest.approx(ref.params["van"], rel=1e-9)
     doc = json.loads(res.to_json())
     assert [c["term"] for c in doc["coefficients"]][1:3] == ["kind=kiosk", "kind=van"]
-    # period indicators (period effects as columns) use the same form
+    # period indicators use the same form; a slope collinear with them is the term left
+    # out, never an indicator (effects before slopes)
     collinear = bigpanel.fit(path, "y", ["x1", "period * 1.0"], "unit", "period", estimator="pooled", effects="period")
-    assert list(collinear.terms_dropped) == ["period=6"]
+    assert collinear.terms_dropped == {"period * 1.0": "collinear with the period effects"}
+    assert not any("[" in c["term"] for c in json.loads(collinear.to_json())["coefficients"])
+    periods = bigpanel.fit(path, "y", ["x1", "levels(period)"], "unit", "period", estimator="pooled")
+    assert [c.term for c in periods.coefficients][1:3] == ["period=2", "period=3"]
