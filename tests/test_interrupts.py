@@ -45,6 +45,9 @@ def sorted_panel(tmp_path_factory) -> Path:
     table = pa.table({
         "depot": np.repeat(np.arange(units), periods), "month": np.tile(np.arange(periods), units),
         "vans": x, "parcels": 2 * x + rng.normal(size=units * periods),
+        # more columns make each chunk query of the checkup longer, so the signal lands
+        # inside the parallel phase even on a quiet machine
+        **{f"extra_{j}": rng.normal(size=units * periods) for j in range(4)},
     })
     path = tmp_path_factory.mktemp("interrupts") / "depots.parquet"
     pq.write_table(table, path, row_group_size=100_000)
