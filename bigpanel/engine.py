@@ -9,7 +9,6 @@ another SQL engine is a new adapter (DEVELOPERS.md lists what it must provide).
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from concurrent.futures import ThreadPoolExecutor
 from typing import Protocol
 
 import duckdb
@@ -144,11 +143,7 @@ class DuckDBEngine:
             finally:
                 cur.close()
 
-        pool = ThreadPoolExecutor(max_workers=max(1, int(threads)))
-        try:
-            return list(pool.map(one, chunks))
-        finally:  # on an error or a stop signal, chunks not yet started are dropped
-            pool.shutdown(wait=True, cancel_futures=True)
+        return moments.in_parallel(one, chunks, threads)
 
     def row_count(self) -> int | None:
         if self.source.kind == "parquet" and not self.source.where:

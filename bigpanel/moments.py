@@ -147,6 +147,11 @@ def run_chunks(
         finally:
             cur.close()
 
+    return in_parallel(one, chunks, threads)
+
+
+def in_parallel(one: Callable, chunks: Sequence, threads: int) -> list:
+    """``one(chunk)`` for every chunk on up to ``threads`` workers, results in chunk order."""
     pool = ThreadPoolExecutor(max_workers=max(1, int(threads)))
     try:
         return list(pool.map(one, chunks))
