@@ -147,7 +147,7 @@ def _variance_words(v: VarianceSummary) -> str:
         kind = f"cluster, two ways: by {a} ({na:,} clusters) and by {b} ({nb:,} clusters)"
     else:
         kind = f"cluster, by {', '.join(v.cluster_columns)} ({v.n_clusters[0]:,} clusters)"
-    factor = f"; K' {v.k_prime:,} ({LEVEL_SHORT[v.absorbed_levels]})" if v.k_prime is not None else ""
+    factor = f"; K'={v.k_prime:,} ({LEVEL_SHORT[v.absorbed_levels]})" if v.k_prime is not None else ""
     return f"{kind}; t tests with {_count(v.df)} df{factor}"
 
 
