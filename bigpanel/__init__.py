@@ -15,6 +15,7 @@ _PUBLIC = {
     "Engine": "source", "Source": "source", "open_source": "source",
     "fit": "fit", "fit_many": "fit", "FitList": "fit", "FitResult": "results",
     "inspect_panel": "panel", "PanelReport": "panel", "ColumnCheck": "panel",
+    "run_spec": "batch", "RunReport": "batch", "RunPlan": "batch", "SpecError": "batch",
 }  # fmt: skip
 __all__ = list(_PUBLIC)
 
