@@ -387,6 +387,8 @@ class Executor:
     def shared_moments(self, scan, params: dict) -> dict:
         """One scan: the cross-products of every sample of a shared scan (plan.SharedScan),
         chunk by chunk (unit ranges: every total adds up across chunks, bounds take min/max)."""
+        from .plan import pattern_totals
+
         rows = scan.rows
 
         total = moments.sum_function(self.chunks())  # plain sums on one-thread chunks
@@ -395,19 +397,7 @@ class Executor:
             return sqlbuild.shared_moments_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
                                                self.keys.step, scan.nesting_checks(), total)
 
-        parts = [t[0] for t in self.run_chunked(make, params)]
-        out = {}
-        for key in parts[0]:
-            values = [p[key] for p in parts if p[key] is not None]
-            if not values:
-                out[key] = None
-            elif key.startswith(("lo", "tlo", "wtlo")):
-                out[key] = min(values)
-            elif key.startswith(("hi", "thi", "wthi")):
-                out[key] = max(values)
-            else:
-                out[key] = sum(values)
-        return out
+        return pattern_totals(scan, self.run_chunked(make, params))
 
     def shared_meats(self, scan, requests: list, params: dict) -> None:
         """One scan: the meats of every recorded score request (index, Scores, k,
