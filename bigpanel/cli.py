@@ -241,6 +241,21 @@ def run_command(
     raise typer.Exit(result.exit_code)
 
 
+@app.command("compare")
+def compare_command(
+    results: Annotated[list[str], typer.Argument(help="JSON files written by 'bigpanel fit --json' (one model each).",
+                                                 show_default=False)],
+    out: Annotated[Optional[str], typer.Option("--out", help="Folder for comparison.md, .tex, .html and .csv "
+                                                             "(default: print the Markdown table).")] = None,
+) -> None:
+    """Put fitted models side by side: terms as rows, models as columns (named after their files)."""
+    from .compare import compare_results
+
+    files = compare_results(results, out=out)
+    if out is None:
+        typer.echo(files["comparison.md"], nl=False)
+
+
 # ---------------------------------------------------------------- entry point
 
 

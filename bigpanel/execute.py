@@ -387,22 +387,12 @@ class Executor:
     def shared_moments(self, scan, params: dict) -> dict:
         """One scan: the cross-products of every sample of a shared scan (plan.SharedScan),
         chunk by chunk (unit ranges: every total adds up across chunks, bounds take min/max)."""
+        from .plan import pattern_totals
+
         def make(chunk):
             return self.shared_moments_sql(scan, chunk)
 
-        parts = [t[0] for t in self.run_chunked(make, params)]
-        out = {}
-        for key in parts[0]:
-            values = [p[key] for p in parts if p[key] is not None]
-            if not values:
-                out[key] = None
-            elif key.startswith(("lo", "tlo", "wtlo")):
-                out[key] = min(values)
-            elif key.startswith(("hi", "thi", "wthi")):
-                out[key] = max(values)
-            else:
-                out[key] = sum(values)
-        return out
+        return pattern_totals(scan, self.run_chunked(make, params))
 
     def shared_moments_sql(self, scan, chunk=None) -> str:
         """The SQL of a shared scan's first pass on one chunk (every chunk runs the same

@@ -114,6 +114,13 @@ class FitList(list):
 
     scans: int = 0
 
+    def compare(self, names=None, out=None) -> dict[str, str]:
+        """The models side by side (:func:`bigpanel.compare_results`): Markdown, LaTeX,
+        HTML and CSV texts by file name, also written to the folder ``out`` when given."""
+        from .compare import compare_results
+
+        return compare_results(list(self), names=names, out=out)
+
 
 def fit_many(
     source,

@@ -677,40 +677,74 @@ def sample_flags(samples: Sequence[Sequence[int]], differenced: bool, step: int)
     return out
 
 
+PATTERN_BITS = 60  # samples per pattern word (BIGINT)
+
+
+def pattern_words(n_samples: int) -> int:
+    return max(1, -(-n_samples // PATTERN_BITS))
+
+
+def pattern_keys(n_samples: int) -> list[str]:
+    """The columns of a row's pattern: why, pat0, pat1, ..."""
+    return ["why"] + [f"pat{t}" for t in range(pattern_words(n_samples))]
+
+
+def pattern_items(samples: Sequence[Sequence[int]], differenced: bool, step: int) -> list[str]:
+    """why (0 usable; differences: 1 first row of the unit, 2 after a gap, 3 duplicate key,
+    4 other) and pat{t}: bit s % PATTERN_BITS of word s // PATTERN_BITS set when sample s's
+    columns are all finite."""
+    if differenced:
+        why = (f"CASE WHEN {_pair(step)} THEN 0 WHEN k_prev IS NULL THEN 1 WHEN k_prev < k_period - {int(step)} THEN 2 "
+               "WHEN k_prev = k_period THEN 3 ELSE 4 END AS why")
+    else:
+        why = "0 AS why"
+    words = []
+    for t in range(pattern_words(len(samples))):
+        bits = [f"CASE WHEN {_finite(cols)} THEN CAST({1 << (s % PATTERN_BITS)} AS BIGINT) ELSE CAST(0 AS BIGINT) END"
+                for s, cols in enumerate(samples) if s // PATTERN_BITS == t]
+        words.append(f"({' + '.join(bits)}) AS pat{t}")
+    return [why] + words
+
+
+def sample_pairs(samples: Sequence[Sequence[int]]) -> list[tuple[int, int]]:
+    """The union's column pairs (j <= l) that some sample holds both of, in order."""
+    pairs = {(j, l) for cols in samples for a, j in enumerate(sorted(cols)) for l in sorted(cols)[a:]}
+    return sorted(pairs)
+
+
 def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
                        nesting: Sequence[tuple[int, int]] = (), total: str = DUCKDB.compensated) -> str:
-    """Cross-products of every sample in one scan; ``nesting`` lists (sample, cluster
-    position) pairs whose clusters are checked to hold whole units; ``total`` is the sum
-    function (compensated unless the query is one of several one-thread chunks)."""
-    unit_sums = ["count(*) AS n_all", "min(k_period) AS lo", "max(k_period) AS hi"]
-    totals = ["sum(n_all) AS n_rows", "min(lo) AS lo", "max(hi) AS hi"]
-    if differenced:
-        unit_sums += ["count(*) FILTER (WHERE k_prev IS NULL) AS first_of_unit",
-                      f"count(*) FILTER (WHERE k_prev < k_period - {int(step)}) AS after_gap",
-                      "count(*) FILTER (WHERE k_prev = k_period) AS duplicate_keys"]
-        totals += ["sum(first_of_unit) AS first_of_unit", "sum(after_gap) AS after_gap",
-                   "sum(duplicate_keys) AS duplicate_keys"]
-    usable = (_pair(step) + " AND ") if differenced else ""
-    for s, cols in enumerate(samples):
-        unit_sums += [f"count(*) FILTER (WHERE f{s}) AS n{s}", f"count(*) FILTER (WHERE {usable}NOT m{s}) AS miss{s}",
-                      f"min(k_period) FILTER (WHERE f{s}) AS tlo{s}", f"max(k_period) FILTER (WHERE f{s}) AS thi{s}"]
-        unit_sums += [f"{total}({_z(j)}) FILTER (WHERE f{s}) AS s{s}_{j}" for j in cols]
-        unit_sums += [f"{total}({_z(j)} * {_z(l)}) FILTER (WHERE f{s}) AS p{s}_{j}_{l}" for a, j in enumerate(cols) for l in cols[a:]]
-        totals += [f"count(k_unit) FILTER (WHERE n{s} > 0) AS units{s}", f"count(*) FILTER (WHERE n{s} > 1) AS wunits{s}",
-                   f"count(*) FILTER (WHERE n{s} = 1) AS single{s}", f"sum(n{s}) AS n{s}",
-                   f"sum(n{s}) FILTER (WHERE n{s} > 1) AS wn{s}", f"sum(n{s}) FILTER (WHERE n{s} = 1) AS single_rows{s}",
-                   f"sum(miss{s}) AS miss{s}", f"min(tlo{s}) AS tlo{s}", f"max(thi{s}) AS thi{s}",
-                   f"min(tlo{s}) FILTER (WHERE n{s} > 1) AS wtlo{s}", f"max(thi{s}) FILTER (WHERE n{s} > 1) AS wthi{s}"]
-        totals += [f"{total}(s{s}_{j}) AS tot_s{s}_{j}" for j in cols]
-        for a, j in enumerate(cols):
-            for l in cols[a:]:
-                totals.append(f"{total}(p{s}_{j}_{l}) AS tot_p{s}_{j}_{l}")
-                totals.append(f"{total}(p{s}_{j}_{l} - s{s}_{j} * s{s}_{l} / n{s}) FILTER (WHERE n{s} > 1) AS tot_w{s}_{j}_{l}")
-    for s, c in nesting:
-        unit_sums.append(f"count(DISTINCT k_c{int(c)}) FILTER (WHERE f{s}) AS d{s}_{c}")
-        totals.append(f"count(*) FILTER (WHERE d{s}_{c} > 1) AS mixed{s}_{c}")
-    return render("shared_moments", rows=rows, flags=", ".join(sample_flags(samples, differenced, step)),
-                  unit_sums=", ".join(unit_sums), totals=", ".join(totals))
+    """Cross-products of every sample in one scan, summed once per unit and row pattern
+    (``shared_moments.sql``); ``nesting`` lists (sample, cluster position) pairs whose
+    clusters are checked to hold whole units; ``total`` is the sum function (compensated
+    unless the query is one of several one-thread chunks). :func:`bigpanel.plan.pattern_totals`
+    reads the result."""
+    used = sorted({j for cols in samples for j in cols})
+    pairs = sample_pairs(samples)
+    clusters = sorted({int(c) for _, c in nesting})
+    keys = pattern_keys(len(samples))
+    cell = ["count(*) AS n", "min(k_period) AS lo", "max(k_period) AS hi"]
+    cell += [f"min(k_c{c}) AS cmin{c}, max(k_c{c}) AS cmax{c}" for c in clusters]
+    cell += [f"{total}({_z(j)}) AS s{j}" for j in used]
+    cell += [f"{total}({_z(j)} * {_z(l)}) AS p{j}_{l}" for j, l in pairs]
+    per_sample = ["sum(n) AS n", "min(lo) AS lo", "max(hi) AS hi"]
+    per_sample += [f"min(cmin{c}) AS cmin{c}, max(cmax{c}) AS cmax{c}" for c in clusters]
+    per_sample += [f"{total}(s{j}) AS s{j}" for j in used]
+    per_sample += [f"{total}(p{j}_{l}) AS p{j}_{l}" for j, l in pairs]
+    totals = ["count(k_unit) AS t_units", "count(*) AS t_groups", "sum(n) AS t_n", "min(lo) AS t_lo", "max(hi) AS t_hi"]
+    totals += [f"sum(CASE WHEN cmin{c} <> cmax{c} THEN 1 ELSE 0 END) AS t_mixed{c}" for c in clusters]
+    totals += [f"{total}(s{j}) AS t_s{j}" for j in used]
+    totals += [f"{total}(p{j}_{l}) AS t_p{j}_{l}" for j, l in pairs]
+    totals += [f"{total}(p{j}_{l} - s{j} * s{l} / n) AS t_w{j}_{l}" for j, l in pairs]
+    counts = ["NULL AS t_units", "NULL AS t_groups", "sum(n) AS t_n", "min(lo) AS t_lo", "max(hi) AS t_hi"]
+    counts += [f"NULL AS {item.rsplit(' AS ', 1)[1]}" for item in totals[5:]]
+    words = pattern_words(len(samples))
+    word = "c.pat0" if words == 1 else ("CASE samples.word " + " ".join(f"WHEN {t} THEN c.pat{t}" for t in range(words)) + " END")
+    return render("shared_moments", rows=rows, pattern=", ".join(pattern_items(samples, differenced, step)),
+                  pattern_keys=", ".join(keys), cell_sums=", ".join(cell),
+                  samples=", ".join(f"({s}, {s // PATTERN_BITS}, {s % PATTERN_BITS})" for s in range(len(samples))),
+                  covers=f"({word} >> samples.bit) & 1 = 1", sample_sums=", ".join(per_sample),
+                  totals=", ".join(totals), no_keys=", ".join(f"NULL AS {k}" for k in keys), counts=", ".join(counts))
 
 
 def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
