@@ -96,6 +96,10 @@ def test_example_spec_runs_and_each_model_equals_its_own_fit(depots, tmp_path):
     assert len(m["models"]) >= 6 and all(e["status"] == "done" for e in m["models"].values())
     estimators = {json.loads((tmp_path / "run" / e["file"]).read_text())["estimator"] for e in m["models"].values()}
     assert estimators == {"pooled", "within", "first-difference"}
+    tables = ["comparison.csv", "comparison.html", "comparison.md", "comparison.tex"]
+    assert m["comparison"] == tables and all((tmp_path / "run" / t).stat().st_size > 0 for t in tables)
+    header = (tmp_path / "run" / "comparison.md").read_text().splitlines()[2]
+    assert [c.strip() for c in header.strip("|").split("|")][1:] == list(m["models"])  # the spec's order
     import tomllib
 
     doc = tomllib.loads(spec.read_text())
@@ -236,6 +240,8 @@ def test_one_model_failing_exits_1_and_the_others_are_written(depots, tmp_path):
     assert failed["status"] == "failed" and failed["error"].startswith("No usable rows in demo-depots after the filter "
                                                                        "'depot < 0'")
     assert sorted(p.name for p in (tmp_path / "out" / "models").iterdir()) == ["also_good.json", "good.json"]
+    table = (tmp_path / "out" / "comparison.md").read_text()
+    assert "| good | also_good |" in table and "empty" not in table  # failed models are left out
     assert "model_failed: Model empty: failed: No usable rows" in err
 
 
