@@ -279,10 +279,12 @@ def open_entry(source: SourceEntry, model_where: str | None = None, engine_overr
     from ..source import Engine, open_source
 
     o = source.options
-    settings = {k: o[k] for k in params.SOURCE_PARAMETERS if params.SOURCE_PARAMETERS[k].scope == "setting" and k in o}
+    settings = {k: v for k, v in o.items() if not params.affects_result(k)}  # Engine's fields
     settings.update({k: v for k, v in (engine_overrides or {}).items() if v is not None})
-    return open_source(o.get("path"), table=o.get("table"), query=o.get("query"), where=combined_where(source, model_where),
-                       csv_types=o.get("csv_types"), csv_nulls=o.get("csv_nulls"), engine=Engine(**settings))
+    # every other source option is an argument of open_source by the same name
+    given = {k: v for k, v in o.items() if params.affects_result(k) and k != "path"}
+    given["where"] = combined_where(source, model_where)
+    return open_source(o.get("path"), **given, engine=Engine(**settings))
 
 
 @contextmanager

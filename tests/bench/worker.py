@@ -108,6 +108,40 @@ def fit_many_ten(files, settings):
             "std_errors": [first.coef(term).std_error for term in REGRESSORS], "scans": results.scans}
 
 
+def run_spec_ten(files, settings):
+    """fit_many_ten's ten models as a spec file run by bigpanel.run_spec into a fresh folder:
+    the batch run's own costs (spec and schema checks, lock, JSON, manifest and comparison
+    files) on top of the shared scans."""
+    import json
+    import tempfile
+
+    import bigpanel
+
+    def toml(value):
+        return json.dumps(value)  # a JSON string or list of strings is valid TOML
+
+    lines = [f"[source]\npath = {toml(str(Path(files[0]).parent))}\nunit = {toml(UNIT)}\nperiod = {toml(PERIOD)}\n"]
+    for key, value in (("threads", settings.threads), ("memory_limit", settings.memory_limit),
+                       ("temp_directory", settings.temp_directory)):
+        if value is not None:
+            lines.append(f"{key} = {toml(value)}\n")
+    specs = [("within", REGRESSORS[:i], "cluster") for i in (5, 1, 2, 3, 4)]
+    specs += [("pooled", REGRESSORS[:i], se) for i, se in ((5, "homoskedastic"), (4, "hc1"), (3, "cluster"),
+                                                           (2, "homoskedastic"), (1, "hc1"))]
+    for j, (estimator, terms, se) in enumerate(specs):
+        lines.append(f"\n[models.m{j}]\noutcome = {toml(OUTCOME)}\nregressors = {toml(terms)}\n"
+                     f"estimator = {toml(estimator)}\nvariance = {toml(se)}\n"
+                     + (f"cluster = {toml([UNIT])}\n" if se == "cluster" else ""))
+    with tempfile.TemporaryDirectory(prefix="bench-run-") as folder:
+        spec = Path(folder) / "family.toml"
+        spec.write_text("".join(lines))
+        report = bigpanel.run_spec(spec, out=Path(folder) / "out")
+        first = json.loads((Path(folder) / "out" / "models" / "m0.json").read_text())
+    by_term = {c["term"]: c for c in first["coefficients"]}
+    return {"coefficients": [by_term[t]["estimate"] for t in REGRESSORS],
+            "std_errors": [by_term[t]["std_error"] for t in REGRESSORS], "scans": report.scans["source"]}
+
+
 def _cluster_sandwich(xtx, meat, coef, n_obs, n_clusters):
     """Unit-cluster CR1 standard errors, the factor bigpanel uses for within with unit clusters:
     G/(G-1) * (N-1)/(N-K), unit effects nested in the clusters not counted (ESTIMATION.md)."""
@@ -195,6 +229,8 @@ CASES = {case.name: case for case in [
     Case("pooled-homoskedastic", "bigpanel", pooled_iid, _BP, "bigpanel pooled, homoskedastic errors (the fixed cost of a fit)"),
     Case("fit-many-10", "bigpanel", fit_many_ten, _BP,
          "bigpanel fit_many: 5 within (unit clusters) and 5 pooled models, shared scans"),
+    Case("run-spec-10", "bigpanel", run_spec_ten, _BP,
+         "bigpanel run_spec: fit-many-10's models from a spec file, with the run folder's files"),
     Case("pooled-sql-fold", "bigpanel", _bigpanel("pooled", fold="sql"), _BP,
          "bigpanel pooled, unit clusters, unit fold summed in SQL"),
     Case("within-sql-fold", "bigpanel", _bigpanel("within", fold="sql"), _BP,
