@@ -754,24 +754,75 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
     ``x`` (union indices of its regressors), ``y`` (its outcome), ``constant``,
     ``demean`` and ``hc1`` (bools). ``sets`` are the grouping sets over ``keys`` (some of
     ``k_unit``, ``k_c0``, ...); their GROUPING() id is :func:`grouping_id`."""
-    residuals, cell_sums, unit_sums, scores, group_sums, outer = [], [], [], [], [], []
+    keys_of = pattern_keys(len(samples))
+    used: dict[int, None] = {}
+    pairs: dict[tuple[int, int], None] = {}
+
+    def p(j: int, l: int) -> str:  # the cell's sum of z_j z_l
+        pair = (min(j, l), max(j, l))
+        pairs.setdefault(pair, None)
+        return f"p{pair[0]}_{pair[1]}"
+
+    def sz(j: int) -> str:
+        used.setdefault(j, None)
+        return f"s{j}"
+
+    raw_sums, cell_sums, unit_sums, scores, group_sums, outer = [], [], [], [], [], []
+    unit_totals, unit_means, unit_outer = [], [], []  # the per-unit path (sets of units or all rows only)
+    residuals = []  # per HC1 model: its residual and its square, per row
     for m, spec in enumerate(models):
         s = spec["sample"]
-        xs = [_z(j) for j in spec["x"]] + (["1.0"] if spec["constant"] else [])
+        covers = f"why = 0 AND (pat{s // PATTERN_BITS} >> {s % PATTERN_BITS}) & 1 = 1"
+        xs = list(spec["x"]) + ([None] if spec["constant"] else [])  # None: the constant column
         k = len(xs)
-        u = _z(spec["y"]) + "".join(f" - $b{m}_{i} * {_z(j)}" for i, j in enumerate(spec["x"]))
-        if spec["constant"]:
-            u += f" - $one{m}"
-        residuals.append(f"CASE WHEN f{s} THEN {u} END AS u{m}")
-        residuals += [f"CASE WHEN f{s} THEN {x} END AS x{m}_{i}" for i, x in enumerate(xs)]
         tri = [(i, l) for i in range(k) for l in range(i, k)]
-        cell_sums += [f"count(*) FILTER (WHERE f{s}) AS n{m}", f"{total}(u{m}) AS su{m}"]
-        cell_sums += [f"{total}(x{m}_{i}) AS sx{m}_{i}, {total}(x{m}_{i} * u{m}) AS sxu{m}_{i}" for i in range(k)]
+        one = f" - $one{m}" if spec["constant"] else ""
+
+        def s_of(x):  # the cell's sum of score column x
+            return "n_all" if x is None else sz(x)
+
+        def s_times(x, z: int) -> str:  # the cell's sum of x * z_z
+            return sz(z) if x is None else p(x, z)
+
+        def s_u(x) -> str:  # the cell's sum of x * u: u = z_y - sum b_i z_i - one, summed linearly
+            terms = s_times(x, spec["y"]) + "".join(f" - $b{m}_{i} * {s_times(x, j)}" for i, j in enumerate(spec["x"]))
+            return terms + (f" - $one{m} * {s_of(x)}" if spec["constant"] else "")
+
+        first_cell = len(cell_sums)
+
+        def case(expr: str) -> str:
+            return f"CASE WHEN {covers} THEN {expr} END"
+
+        def s_xx(a, b) -> str:  # the cell's sum of x_a x_b
+            if a is None or b is None:
+                other = b if a is None else a
+                return s_of(other)
+            return p(a, b)
+
+        cell_sums += [f"CASE WHEN {covers} THEN n_all ELSE 0 END AS n{m}", f"{case(s_u(None))} AS su{m}"]
+        cell_sums += [f"{case(s_of(x))} AS sx{m}_{i}, {case(s_u(x))} AS sxu{m}_{i}" for i, x in enumerate(xs)]
+        if spec["hc1"]:  # fourth moments: per row, with the model's residual (its sample's cells only are read)
+            u = _z(spec["y"]) + "".join(f" - $b{m}_{i} * {_z(j)}" for i, j in enumerate(spec["x"])) + one
+            residuals += [f"{u} AS ru{m}", f"({u}) * ({u}) AS ruu{m}"]  # once per row, read by every sum below
+            u, uu = f"ru{m}", f"ruu{m}"
+            col = [("1.0" if x is None else _z(x)) for x in xs]
+            want = (("sxxu", f" * {u}"), ("sxxuu", f" * {uu}")) if spec["demean"] else (("sxxuu", f" * {uu}"),)
+            raw_sums += [f"{total}({col[i]} * {col[l]}{factor}) AS r{name}{m}_{i}_{l}" for i, l in tri for name, factor in want]
+            cell_sums += [f"{case(f'r{name}{m}_{i}_{l}')} AS {name}{m}_{i}_{l}" for i, l in tri for name, _ in want]
+            if spec["demean"]:
+                raw_sums.append(f"{total}({uu}) AS rsuu{m}")
+                raw_sums += [f"{total}({col[i]} * {uu}) AS rsxuu{m}_{i}" for i in range(k)]
+                cell_sums.append(f"{case(f'rsuu{m}')} AS suu{m}")
+                cell_sums += [f"{case(f'rsxuu{m}_{i}')} AS sxuu{m}_{i}" for i in range(k)]
+                cell_sums += [f"{case(s_xx(xs[i], xs[l]))} AS sxx{m}_{i}_{l}" for i, l in tri]
+        names = re.findall(r" AS (\w+)(?=,|$)", ", ".join(cell_sums[first_cell:]))  # this model's cell columns, in order
+        unit_totals += [f"sum({c}) AS {c}" if c == f"n{m}" else f"{total}({c}) AS {c}" for c in names]
+        unit_outer += [f"count(*) FILTER (WHERE k{m}) AS ng{m}"]
+        unit_outer += [f"{total}(g{m}_{i} * g{m}_{l}) AS o{m}_{i}_{l}" for i, l in tri]
         if spec["hc1"]:
-            cell_sums.append(f"{total}(u{m} * u{m}) AS suu{m}")
-            cell_sums += [f"{total}(x{m}_{i} * u{m} * u{m}) AS sxuu{m}_{i}" for i in range(k)]
-            cell_sums += [f"{total}(x{m}_{i} * x{m}_{l}{suffix}) AS {name}{m}_{i}_{l}" for i, l in tri
-                          for suffix, name in (("", "sxx"), (f" * u{m}", "sxxu"), (f" * u{m} * u{m}", "sxxuu"))]
+            unit_outer += [f"{total}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+        if spec["demean"]:
+            unit_means += [f", n{m} AS nn{m}, su{m} / n{m} AS uu{m}"] + [f", sx{m}_{i} / n{m} AS xx{m}_{i}" for i in range(k)]
         if spec["demean"]:
             unit_sums += [f", sum(n{m}) AS nn{m}", f", {total}(su{m}) / sum(n{m}) AS uu{m}"]
             unit_sums += [f", {total}(sx{m}_{i}) / sum(n{m}) AS xx{m}_{i}" for i in range(k)]
@@ -799,11 +850,18 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
         if spec["hc1"]:
             group_sums += [f"{total}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
             outer += [f"{total}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+    union = ["count(*) AS n_all"] + [f"{total}({_z(j)}) AS s{j}" for j in used]
+    union += [f"{total}({_z(j)} * {_z(l)}) AS p{j}_{l}" for j, l in pairs]
+    common = dict(rows=rows, pattern=", ".join(pattern_items(samples, differenced, step) + residuals),
+                  pattern_keys=", ".join(keys_of), raw_sums=", ".join(union + raw_sums), cell_sums=", ".join(cell_sums),
+                  scores=", ".join(scores))
+    if all(tuple(s) in (("k_unit",), ()) for s in sets):  # every meat is a sum over units: no cells of clusters
+        gids = ", ".join(f"({grouping_id(keys, s)})" for s in sets)
+        return render("shared_unit_scores", **common, unit_totals=", ".join(unit_totals),
+                      unit_means="".join(unit_means), outer=", ".join(unit_outer), gids=gids)
     cell_keys = ["k_unit"] + [k for k in keys if k != "k_unit"]
     grouping_sets = "GROUPING SETS (" + ", ".join("(" + ", ".join(s) + ")" for s in sets) + ")"
-    return render("shared_scores", rows=rows, flags=", ".join(sample_flags(samples, differenced, step)),
-                  residuals=", ".join(residuals), cell_keys=", ".join(cell_keys), cell_sums=", ".join(cell_sums),
-                  unit_sums="".join(unit_sums), scores=", ".join(scores),
+    return render("shared_scores", **common, cell_keys=", ".join(cell_keys), unit_sums="".join(unit_sums),
                   grouping=f"GROUPING({', '.join(keys)})" if keys else "0", sets=grouping_sets,
                   group_sums=", ".join(group_sums), outer=", ".join(outer))
 
