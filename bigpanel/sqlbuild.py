@@ -668,15 +668,6 @@ def _pair(step: int) -> str:
     return f"coalesce(k_prev_unit = k_unit AND k_prev = k_period - {int(step)}, false)"
 
 
-def sample_flags(samples: Sequence[Sequence[int]], differenced: bool, step: int) -> list[str]:
-    """m_s (columns finite) and f_s (in the sample) per sample."""
-    out = []
-    for s, cols in enumerate(samples):
-        out.append(f"{_finite(cols)} AS m{s}")
-        out.append(f"{(_pair(step) + ' AND ') if differenced else ''}{_finite(cols)} AS f{s}")
-    return out
-
-
 PATTERN_BITS = 60  # samples per pattern word (BIGINT)
 
 
