@@ -389,15 +389,18 @@ class Executor:
         chunk by chunk (unit ranges: every total adds up across chunks, bounds take min/max)."""
         from .plan import pattern_totals
 
-        rows = scan.rows
-
-        total = moments.sum_function(self.chunks())  # plain sums on one-thread chunks
-
         def make(chunk):
-            return sqlbuild.shared_moments_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
-                                               self.keys.step, scan.nesting_checks(), total)
+            return self.shared_moments_sql(scan, chunk)
 
         return pattern_totals(scan, self.run_chunked(make, params))
+
+    def shared_moments_sql(self, scan, chunk=None) -> str:
+        """The SQL of a shared scan's first pass on one chunk (every chunk runs the same
+        text; the unit range is a parameter). Builds text only: a dry run shows it."""
+        rows = scan.rows
+        total = moments.sum_function(self.chunks())  # plain sums on one-thread chunks
+        return sqlbuild.shared_moments_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
+                                           self.keys.step, scan.nesting_checks(), total)
 
     def shared_meats(self, scan, requests: list, params: dict) -> None:
         """One scan: the meats of every recorded score request (index, Scores, k,

@@ -42,6 +42,7 @@ class Param:
     required: bool = False
     flag: str | None = None
     empty: str = ""  # what to do when the value is empty
+    scope: str = ""  # source options in spec files: "model" (a model may set it too), "setting" (engine only)
 
     @property
     def option(self) -> str:
@@ -74,6 +75,60 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
 )}
 
 MODEL_KEYS = tuple(PARAMETERS)
+# Model keys that the models of one source share (fit_many takes them once); a spec file
+# may give them in its source table.
+SHARED_KEYS = ("unit", "period", "period_step")
+
+# The source options of ``fit`` and ``open_source``, declared once for spec files
+# (bigpanel.batch): ``text`` is one text, ``columns`` a list or comma-separated text,
+# ``mapping`` a table of text values, ``count`` a whole number. ``scope``: "model" when a
+# model (or the defaults) may set it too, on top of the source's value; "setting" for engine
+# settings, which change how a fit runs, never its numbers (they enter no resume key).
+SOURCE_PARAMETERS: dict[str, Param] = {p.name: p for p in (
+    Param("path", "text", "Parquet file, folder or glob; CSV file or glob; or a DuckDB file (relative to the spec file)."),
+    Param("table", "text", "Table or view in the DuckDB file."),
+    Param("query", "text", "A SQL query giving the rows (inside the DuckDB file, or on its own)."),
+    Param("where", "text", "SQL predicate keeping rows, e.g. \"region = 'north'\".", scope="model"),
+    Param("csv_types", "mapping", "Override detected CSV column types: a table of column = \"TYPE\"."),
+    Param("csv_nulls", "columns", "Extra CSV tokens read as missing values, e.g. [\"NA\", \".\"]."),
+    Param("threads", "count", "DuckDB worker threads (default: all cores).", minimum=1, maximum=1024, scope="setting"),
+    Param("memory_limit", "text", "DuckDB memory limit, e.g. \"2GB\"; past it DuckDB spills to disk.", scope="setting"),
+    Param("temp_directory", "text", "Folder for DuckDB's spill files.", scope="setting"),
+)}
+
+
+def source_scope(name: str) -> str:
+    """Where a spec file may set source option ``name``: "model" or "source"."""
+    return "model" if SOURCE_PARAMETERS[name].scope == "model" else "source"
+
+
+def affects_result(name: str) -> bool:
+    """False for an engine setting (threads, memory, spill folder): results do not change."""
+    return SOURCE_PARAMETERS[name].scope != "setting"
+
+
+def check_source(name: str, value: Any) -> Any:
+    """The value of source option ``name`` normalised, or one InputError (kinds as in
+    :data:`SOURCE_PARAMETERS`)."""
+    p = SOURCE_PARAMETERS[name]
+    if p.kind == "text":
+        if not isinstance(value, str) or not value.strip():
+            raise InputError(f"Option '{name}' must be non-empty text; got {echo(repr(value), 40)}. {p.help}")
+        return value
+    if p.kind == "columns":
+        if not isinstance(value, (str, list)) or not all(isinstance(v, str) for v in (value if isinstance(value, list) else [value])):
+            raise InputError(f"Option '{name}' must be text or a list of text; got {echo(repr(value), 40)}. {p.help}")
+        return [v.strip() for v in (value.split(",") if isinstance(value, str) else value) if v.strip()]
+    if p.kind == "mapping":
+        if not isinstance(value, dict) or not all(isinstance(v, str) and v.strip() for v in value.values()):
+            raise InputError(f"Option '{name}' must be a table of column = \"TYPE\" pairs; got {echo(repr(value), 60)}.")
+        return {str(k): v.strip() for k, v in value.items()}
+    if p.kind == "count":
+        if isinstance(value, bool) or not isinstance(value, int) or not p.minimum <= value <= p.maximum:
+            raise InputError(f"Option '{name}' must be a whole number from {p.minimum} to {p.maximum}; "
+                             f"got {echo(repr(value), 40)}.")
+        return value
+    raise AssertionError(p.kind)
 
 
 def as_list(value: str | Sequence[str] | None) -> tuple[str, ...]:
@@ -127,10 +182,15 @@ def check(name: str, value: Any) -> Any:
 
 def check_keys(keys, where: str) -> None:
     """Refuse keys that are not model parameters, suggesting close names."""
-    import difflib
-
     for key in keys:
         if key not in PARAMETERS:
-            close = difflib.get_close_matches(key, MODEL_KEYS, n=2, cutoff=0.6)
-            hint = f" Did you mean {', '.join(repr(c) for c in close)}?" if close else ""
-            raise InputError(f"{where} has an unknown key '{key}'.{hint} Known keys: {', '.join(MODEL_KEYS)}.")
+            raise InputError(unknown_key(key, MODEL_KEYS, where))
+
+
+def unknown_key(key: str, known, where: str) -> str:
+    """The message for a key that is not one of ``known``, with close matches."""
+    import difflib
+
+    close = difflib.get_close_matches(key, list(known), n=2, cutoff=0.6)
+    hint = f" Did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+    return f"{where} has an unknown key '{echo(key, 60)}'.{hint} Known keys: {', '.join(known)}."
