@@ -424,8 +424,10 @@ class Redundancy:
     method: str
 
 
-def redundancies(copy: Copy, subset: Sequence[int] | None = None, exact_levels: int = EXACT_RANK_LEVELS) -> Redundancy:
-    """Linearly dependent level indicators among the effects in ``subset`` (all by default)."""
+def redundancies(copy: Copy, subset: Sequence[int] | None = None, exact_levels: int | None = None) -> Redundancy:
+    """Linearly dependent level indicators among the effects in ``subset`` (all by default);
+    ``exact_levels`` (default :data:`EXACT_RANK_LEVELS`): most levels for the exact rank."""
+    exact_levels = EXACT_RANK_LEVELS if exact_levels is None else exact_levels
     subset = list(range(len(copy.effects))) if subset is None else list(subset)
     active = [int((copy.counts[e] > 0).sum()) for e in subset]
     if len(subset) <= 1:
