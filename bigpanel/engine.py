@@ -71,6 +71,13 @@ class EngineAdapter(Protocol):
     def row_count(self) -> int | None:
         """Rows after the filter when known without a scan (storage metadata), else None."""
 
+    def stream(self, sql: str, params: dict | None = None):
+        """Optional: the rows of one query as Arrow record batches, in one fixed order
+        whatever the thread count (many effects: the rows copied to the scratch folder)."""
+
+    def scratch_folder(self) -> str:
+        """Optional: a new private folder for the run's scratch files, removed with the session."""
+
     def fold_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict, fold: Callable) -> list:
         """Optional: stream each chunk's rows as Arrow batches into ``fold(batches)`` (one
         thread per chunk, the rows in storage order); results in chunk order."""
@@ -150,3 +157,19 @@ class DuckDBEngine:
             return sum(pq.read_metadata(f).num_rows for f in self.source.files)
         return None
 
+    def stream(self, sql: str, params: dict | None = None):
+        session = self.session
+        check_select(sql)
+        cur = session.cursor(threads=1)  # one thread: the rows come in the same order on every run
+        try:
+            reader = cur.sql(sql, params=params) if params else cur.sql(sql)
+            yield from reader.to_arrow_reader(STREAM_BATCH_ROWS)
+        except duckdb.Error as exc:
+            raise session._explain(exc) from None
+        finally:
+            cur.close()
+
+    def scratch_folder(self) -> str:
+        import tempfile
+
+        return tempfile.mkdtemp(prefix="effects-", dir=self.session.spill_folder)
