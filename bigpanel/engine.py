@@ -145,6 +145,19 @@ class DuckDBEngine:
 
         return moments.in_parallel(one, chunks, threads)
 
+    def stream(self, sql: str, params: dict, batch_rows: int):
+        """A query's rows as a pyarrow RecordBatchReader (one SELECT on the locked main
+        connection; the write-back streams them into its writer instance)."""
+        check_select(sql)
+        try:
+            return self.session.con.sql(sql, params=params).to_arrow_reader(batch_rows)
+        except duckdb.Error as exc:
+            raise self.session._explain(exc) from None
+
+    def explain(self, exc: BaseException) -> BaseException:
+        """The error to raise for a DuckDB error met while streaming rows out."""
+        return self.session._explain(exc) if isinstance(exc, duckdb.Error) else exc
+
     def row_count(self) -> int | None:
         if self.source.kind == "parquet" and not self.source.where:
             return sum(pq.read_metadata(f).num_rows for f in self.source.files)

@@ -88,6 +88,9 @@ class FitResult:
     warnings: tuple[str, ...] = field(default=())
     f_unavailable: str = ""  # why there is no joint test (f_stat and f_p_value are then NaN)
     run: dict = field(default_factory=dict)  # how it ran: {"threads": N, "version": "x.y.z"}
+    # files written back (bigpanel.writeback): {"effects": {column: path}, "normalisation": text,
+    # "residuals": path}; empty when nothing was asked for
+    written: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         out = json_ready(self)
@@ -206,6 +209,10 @@ def _footer(r: "FitResult", notes: bool) -> list[str]:
         lines += _wrapped("", "rows left out: " + "; ".join(parts))
     for term, why in r.terms_dropped.items():
         lines += _wrapped("", f"term left out: {term} ({why})")
+    for column, path in r.written.get("effects", {}).items():
+        lines += _wrapped("", f"effects of {column} written to {path}")
+    if r.written.get("residuals"):
+        lines += _wrapped("", f"residuals written to {r.written['residuals']}")
     for w in r.warnings if notes else ():
         lines += _wrapped("", f"note: {w}")
     lines += ["", "  Read these estimates as causal effects only if:"]

@@ -82,6 +82,8 @@ class FitSpec:
     intercept: bool
     period_step: int | None = None  # None: the panel's detected step
     absorbed_levels: str = "not-nested"
+    write_effects: str | None = None  # folders the fit writes its effects / residuals into (bigpanel.writeback)
+    write_residuals: str | None = None
 
     @classmethod
     def build(
@@ -97,6 +99,8 @@ class FitSpec:
         intercept: bool | None = None,
         period_step: int | None = None,
         absorbed_levels: str | None = None,
+        write_effects: str | None = None,
+        write_residuals: str | None = None,
     ) -> "FitSpec":
         estimator = params.check("estimator", estimator)
         outcome = params.check("outcome", outcome)
@@ -143,10 +147,18 @@ class FitSpec:
             raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects already remove it.")
         period_step = params.check("period_step", period_step)
         absorbed_levels = params.check("absorbed_levels", absorbed_levels)
+        write_effects = params.check("write_effects", write_effects)
+        write_residuals = params.check("write_residuals", write_residuals)
+        if write_effects is not None and estimator != "within":
+            raise InputError(f"Option 'write_effects' needs the within estimator: {estimator} fits estimate no unit "
+                             "effects to write. Use --estimator within, or leave out --write-effects.")
+        if write_residuals is not None and estimator == "pooled":
+            raise InputError("Option 'write_residuals' applies to within and first-difference fits, not pooled ones. "
+                             "Use --estimator within or first-difference, or leave out --write-residuals.")
         return cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, variance=variance, cluster=clus, intercept=bool(intercept), period_step=None if period_step is None else int(period_step),
-            absorbed_levels=absorbed_levels,
+            absorbed_levels=absorbed_levels, write_effects=write_effects, write_residuals=write_residuals,
         )
 
     @property

@@ -781,3 +781,58 @@ def grouping_id(keys: Sequence[str], grouped: Sequence[str]) -> int:
     for key in keys:
         out = (out << 1) | (0 if key in grouped else 1)
     return out
+
+
+# ---------------------------------------------------------------- write-back (bigpanel.writeback)
+# The rows of the fit's sample (``used``, design columns unshifted: $s_j = 0, $d_j = 1, the
+# period column carried as k_c0) with the estimates as parameters: $b_j per design column,
+# $b_one the intercept, ($t_i, $g_i) the periods' effects.
+
+WRITE_VIEW = "bigpanel_rows"  # the name under which the writer instance sees the streamed rows
+
+
+def writeback_parts_sql(used: str, q: int, slopes: Sequence[int], effect_columns: Sequence[int], n_periods: int,
+                        intercept: bool) -> str:
+    """CTEs ``used`` and ``parts``: per used row k_unit, k_period, k_c0 (the period as the
+    source has it), the outcome y, xb = sum of $b_j z_j over ``slopes`` (+ $b_one) and pe =
+    sum of $b_j z_j over ``effect_columns`` plus the row's period effect $g_i (joined on
+    $t_i; 0 for a period not listed)."""
+    xb = " + ".join([f"$b{int(j)} * r.{_z(j)}" for j in slopes] + (["$b_one"] if intercept else [])) or "0.0"
+    pe = " + ".join([f"$b{int(j)} * r.{_z(j)}" for j in effect_columns]
+                    + (["coalesce(pe.g, 0.0)"] if n_periods else [])) or "0.0"
+    return (f"used AS ({used}),\nparts AS (SELECT r.k_unit, r.k_period, r.k_c0, r.{_z(q - 1)} AS y, {xb} AS xb, "
+            f"{pe} AS pe FROM used AS r {period_join_sql(n_periods, 0)})")
+
+
+def writeback_periods_sql(parts: str) -> str:
+    """Per period: its value as the source has it, its rows and its effect (the mean of pe)."""
+    return (f"WITH {parts}\nSELECT k_period, any_value(k_c0) AS shown, count(*) AS n, {DUCKDB.compensated}(pe) / count(*) "
+            "AS effect FROM parts GROUP BY k_period ORDER BY k_period")
+
+
+def writeback_period_links_sql(used: str) -> str:
+    """Each unit's first period beside each of its periods (distinct pairs): the links that
+    make periods one connected group."""
+    return ("SELECT DISTINCT first_period, k_period FROM (SELECT k_period, min(k_period) OVER (PARTITION BY k_unit) "
+            f"AS first_period FROM ({used}) AS r) AS l")
+
+
+def writeback_unit_effects_sql(parts: str, names: Sequence[str]) -> str:
+    """Per unit (output columns ``names``: unit, effect, rows): the mean of y - xb - pe."""
+    unit, effect, rows = (quote_ident(n) for n in names)
+    return (f"WITH {parts}\nSELECT k_unit AS {unit}, {DUCKDB.compensated}(y - xb - pe) / count(*) AS {effect}, "
+            f"count(*) AS {rows} FROM parts GROUP BY k_unit ORDER BY k_unit")
+
+
+def writeback_residuals_sql(parts: str, names: Sequence[str], absorbs_units: bool) -> str:
+    """Per used row (output columns ``names``: unit, period, fitted, residual): the residual
+    y - xb - pe, minus its unit mean when unit effects are absorbed, and y minus it."""
+    unit, period, fitted, residual = (quote_ident(n) for n in names)
+    level = " - avg(y - xb - pe) OVER (PARTITION BY k_unit)" if absorbs_units else ""
+    return (f"WITH {parts},\nresid AS (SELECT k_unit, k_c0, y, y - xb - pe{level} AS e FROM parts)\n"
+            f"SELECT k_unit AS {unit}, k_c0 AS {period}, y - e AS {fitted}, e AS {residual} FROM resid")
+
+
+def copy_parquet_sql(view: str, path: str) -> str:
+    """The writer instance's one statement: a registered stream into a Parquet file."""
+    return f"COPY (SELECT * FROM {quote_ident(view)}) TO {quote_literal(path)} (FORMAT parquet)"
