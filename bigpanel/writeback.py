@@ -217,12 +217,12 @@ def _centred_periods(executor, used: str, q: int, parts: Parts, base: dict) -> t
     params = base | _estimate_params((), parts.effect_columns, 0.0, parts.periods)
     sql = sqlbuild.writeback_periods_sql(
         sqlbuild.writeback_parts_sql(used, q, [], [j for j, _ in parts.effect_columns], len(parts.periods), False))
-    rows = executor.run_once(sql, params)
+    rows = executor.engine.run(sql, params).to_pylist()  # all threads: one value per period, its rows counted
     if not rows:
         return [], ()
     group = {r["k_period"]: 0 for r in rows}
     if not parts.periods_complete:  # some period effect was left out: the panel may fall apart
-        edges = executor.run_once(sqlbuild.writeback_period_links_sql(used), base)
+        edges = executor.engine.run(sqlbuild.writeback_period_links_sql(used), base).to_pylist()
         group = _groups([r["k_period"] for r in rows], [(e["first_period"], e["k_period"]) for e in edges])
     totals: dict = {}
     for r in rows:
