@@ -54,6 +54,8 @@ def fit(
     engine: Engine | None = None,
     csv_nulls=None,
     absorbed_levels: str | None = None,
+    effects_tolerance: float | None = None,
+    effects_iterations: int | None = None,
     write_effects=None,
     write_residuals=None,
 ) -> FitResult:
@@ -75,8 +77,11 @@ def fit(
         Unit and period columns. First differences and lags need whole-number periods.
     estimator : {"pooled", "within", "first-difference"}
     effects : str or list of str, optional
-        Fixed effects: within defaults to the unit and may add the period; for first
-        differences, the period adds period intercepts to the differenced equation.
+        Fixed effects: within defaults to the unit and may add the period (an exact path)
+        and any number of other columns, or ``cell(A, B)`` for one effect per combination
+        of levels (absorbed by iteration; the result's ``absorption`` reports the path,
+        sweeps, tolerance reached, singletons and redundancies). For first differences,
+        the period adds period intercepts to the differenced equation.
     variance : {"homoskedastic", "hc1", "cluster"}, optional
         Default: cluster for within and first differences, homoskedastic for pooled.
     cluster : str or list of str, optional
@@ -93,6 +98,12 @@ def fit(
         How absorbed effect levels count in K' of the cluster small-sample factor, one K'
         for every component of a two-way variance: "not-nested" (default) leaves out the
         effects nested in a cluster dimension; "all" counts every level (dummy variables).
+    effects_tolerance : float, optional
+        Many effects: stop when the largest remaining level mean of a transformed column,
+        count-weighted over every effect and relative to the column's norm, is below this
+        (default 1e-10). A fit that does not reach it warns and says so in the result.
+    effects_iterations : int, optional
+        Many effects: most iterations, each one pass over the scratch copy (default 1000).
     table, query, csv_types, engine
         As in :func:`bigpanel.open_source`.
     csv_nulls : str or list of str, optional
@@ -106,7 +117,8 @@ def fit(
         value and residual (within and first-difference fits).
     """
     spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step,
-                         absorbed_levels, write_effects, write_residuals)
+                         absorbed_levels, effects_tolerance, effects_iterations, write_effects=write_effects,
+                         write_residuals=write_residuals)
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     spec = writeback.checked(spec, src)
     notes = Notes([])
@@ -270,7 +282,8 @@ def estimate(executor: Executor, spec: FitSpec, notes: Notes) -> FitResult:
     eq = executor.moments(request, params, lambda chunks: est.equations(design, request, chunks, executor))
     if eq.n_obs == 0:
         raise EstimationError(executor.empty_message(spec.needs_order))
-    accumulation = "one pass, shifted per-unit sums" + (" folded in numpy" if executor.fold_path == "numpy" else "")
+    accumulation = est.accumulation(eq) or (
+        "one pass, shifted per-unit sums" + (" folded in numpy" if executor.fold_path == "numpy" else ""))
     if est.demeaned_retry and eq.cancellation() > CANCELLATION_LIMIT:
         request = replace(request, rows=replace(request.rows, demeaned=True))
         eq = executor.moments(request, params, lambda chunks: est.equations(design, request, chunks, executor))

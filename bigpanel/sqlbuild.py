@@ -246,18 +246,20 @@ def _z(j: int) -> str:
 
 def design_rows_sql(
     source: str, unit: str, period: str, clusters: list[str], columns: list[tuple[str, int]], step: int,
-    period_sql: str | None = None,
+    period_sql: str | None = None, effects: Sequence[Sequence[str]] = (),
 ) -> str:
     """Select the unit, period, clusters and shifted design columns of every row.
 
     ``columns`` holds ``(expression, lag)`` pairs; a lag K reads the expression at
     period - K*step in the same unit (NULL when that period is absent); a negative K (a
     lead) reads it |K|*step periods later. ``period_sql``: the period as a slot on its
-    regular grid (:func:`period_slot_sql`) instead of the column.
+    regular grid (:func:`period_slot_sql`) instead of the column. ``effects``: the key
+    columns of each absorbed effect (many effects, :mod:`bigpanel.sweeps`), as k_e<i>_<m>.
     """
     period_sql = period_sql or quote_ident(period)
     items = [f"{quote_ident(unit)} AS k_unit", f"{period_sql} AS k_period"]
     items += [f"{quote_ident(c)} AS k_c{i}" for i, c in enumerate(clusters)]
+    items += [f"{quote_ident(c)} AS {name}" for e, keys in enumerate(effects) for c, name in zip(keys, effect_keys(e, len(keys)))]
     for j, (expr, lag) in enumerate(columns):
         value = f"CAST(({expr}) AS DOUBLE)"
         if lag:
@@ -278,6 +280,40 @@ def differenced_rows_sql(rows: str, n_clusters: int, q: int, streaming: bool = F
     diffs = ", ".join(f"{_z(j)} - lag({_z(j)}) OVER w AS {_z(j)}" for j in range(q))
     window = "" if streaming else "PARTITION BY k_unit ORDER BY k_period"
     return render("differenced_rows", rows=f"({rows})", keys=", ".join(keys), diffs=diffs, window=window)
+
+
+def effect_keys(effect: int, n_columns: int) -> list[str]:
+    """The names of an absorbed effect's key columns in the design rows."""
+    return [f"k_e{effect}_{m}" for m in range(n_columns)]
+
+
+def keys_present(keys: Sequence[str]) -> str:
+    """Every key column has a value (rows without an effect's level are not used)."""
+    return " AND ".join(f"{k} IS NOT NULL" for k in keys)
+
+
+def effect_levels_sql(used: str, keys: Sequence[str]) -> str:
+    """The distinct levels (``keys``: key columns of the used rows) in sort order; row i is level i."""
+    return render("effect_levels", rows=f"({used})", keys=", ".join(keys))
+
+
+def effect_rows_sql(used: str, effects: Sequence[Sequence[str]], clusters: Sequence[Sequence[str]], q: int,
+                    keep: Sequence[str] = ()) -> str:
+    """The used rows with a compact level index per effect (``i<e>``, INTEGER) and per
+    cluster set (``g<c>``; a set of two columns is their intersection), the design
+    columns z<j> and the ``keep`` columns, numbered as :func:`effect_levels_sql` numbers them."""
+    levels, columns, joins = [], [], []
+    for name, keys, nulls in ([(f"i{e}", k, False) for e, k in enumerate(effects)]
+                              + [(f"g{c}", k, True) for c, k in enumerate(clusters)]):
+        table = f"l_{name}"
+        cols = ", ".join(keys)
+        levels.append(f", {table} AS (SELECT {cols}, CAST(row_number() OVER (ORDER BY {cols}) - 1 AS INTEGER) AS i "
+                      f"FROM (SELECT DISTINCT {cols} FROM used) AS d)")
+        equal = " IS NOT DISTINCT FROM " if nulls else " = "
+        joins.append(f" JOIN {table} ON " + " AND ".join(f"used.{k}{equal}{table}.{k}" for k in keys))
+        columns.append(f"{table}.i AS {name}")
+    columns += [f"used.{_z(j)}" for j in range(q)] + [f"used.{k}" for k in keep]
+    return render("effect_rows", rows=used, levels="".join(levels), columns=", ".join(columns), joins="".join(joins))
 
 
 def valid_predicate(q: int, differenced: bool, step: int) -> str:
@@ -375,8 +411,10 @@ def stream_rows_sql(used: str, q: int) -> str:
     return f"SELECT k_unit, k_period, {', '.join(_z(j) for j in range(q))} FROM ({used}) AS r"
 
 
-def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dialect = DUCKDB) -> str:
-    finite = " AND ".join(f"{dialect.is_finite(_z(j))}" for j in range(q))
+def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dialect = DUCKDB,
+                   required: Sequence[str] = ()) -> str:
+    """Rows by reason; ``required``: key columns (absorbed effects') whose missing value drops a row."""
+    finite = " AND ".join([f"{dialect.is_finite(_z(j))}" for j in range(q)] + [f"{k} IS NOT NULL" for k in required])
     usable = f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)} AND " if differenced else ""
     counts = ["count(*) AS n_rows",
               f"count(*) FILTER (WHERE k_unit IS NULL OR ({usable}NOT coalesce({finite}, false))) AS missing"]

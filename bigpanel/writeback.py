@@ -262,7 +262,7 @@ def _write_files(executor, plan: list[tuple]) -> None:
         staged = []
         for folder, name, rows in plan:
             temporary = os.path.join(private[folder], name)
-            reader = executor.engine.stream(*rows, STREAM_BATCH_ROWS) if isinstance(rows, tuple) else rows
+            reader = executor.engine.reader(*rows, STREAM_BATCH_ROWS) if isinstance(rows, tuple) else rows
             writer = writer_connection(executor.engine.source.engine, [temporary])
             try:
                 writer.register(sqlbuild.WRITE_VIEW, reader)
