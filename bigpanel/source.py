@@ -292,6 +292,7 @@ def writer_connection(engine: Engine, files: Sequence[str]) -> duckdb.DuckDBPyCo
     try:
         for _, statement in engine.settings(None):
             con.execute(statement)
+        con.execute(sqlbuild.setting_sql(*sqlbuild.WRITER_OPTIMIZERS))
         for statement in lockdown.lockdown_sql([os.path.abspath(f) for f in files], []):
             con.execute(statement)
         interrupts.register(con)

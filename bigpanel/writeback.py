@@ -1,28 +1,36 @@
 """Effects and residuals written back as Parquet, out of core and atomically.
 
-After a fit, ``write_effects`` writes one Parquet file per effect (``effect_<column>.parquet``:
-the level, its estimated effect, its row count) and ``write_residuals`` writes
-``residuals.parquet`` (each used row's keys, fitted value and residual). The rows never
-enter Python:
+After a fit, ``write_effects`` writes one Parquet file per effect (``effect_<column>.parquet``,
+``effect_<a>_<b>.parquet`` for ``cell(a, b)``: the level's key columns, its estimated effect,
+its row count) and ``write_residuals`` writes ``residuals.parquet`` (each used row's unit,
+period and other effects' key columns, fitted value and residual). The rows never enter
+Python:
 
 - every query that reads the source is one SELECT on the session's locked connection
   (:mod:`bigpanel.lockdown`), built by :mod:`bigpanel.sqlbuild` from the fit's design (the
   checked expressions) with the estimates as parameters;
-- its result streams as Arrow batches into a second, writer DuckDB instance
-  (:func:`bigpanel.source.writer_connection`) whose only reachable paths are this run's
-  temporary files: it can read no source and write nothing else;
+- effects are aggregates (one row per level) and are held as Arrow tables; the residual
+  rows stream as Arrow batches from the locked connection into a second, writer DuckDB
+  instance (:func:`bigpanel.source.writer_connection`) that joins them to the effect tables
+  and whose only reachable paths are this run's temporary files: it can read no source and
+  write nothing else;
 - the files are written into a private folder made inside the target folder (mode 0700,
   removed on any error and after a stop signal) and renamed into place only when every
   file is complete: an interrupted run leaves no file under a final name.
 
-Effects, as estimated (the model y = x'b + a_unit [+ d_period] + u):
+Effects, as estimated (y = x'b + the effects + u), normalised so that the unit's effect
+carries the level and every other effect is centred: its row-weighted mean over the rows
+used is zero, within each connected group of its graph with the units (levels linked by
+sharing a row; a group of units seen in no period, firm, ... of another group is centred
+on its own). Fitted values, x'b plus the row's effects, do not depend on this choice.
 
 - within, unit effects only: a_i is unit i's mean of y - x'b over the rows used;
-- unit plus period effects (the exact path): the period effects d_t are the fit's own
-  coefficients, then *centred*: their row-weighted mean over the rows used is zero, within
-  each connected group of units and periods when the panel falls apart into groups (units
-  sharing no period with the rest); a_i is the unit mean of y - x'b - d_t, so the unit
-  effects carry the level. Fitted values x'b + a_i + d_t do not depend on the normalisation.
+- unit plus period effects (the exact path): the period effects are the fit's own
+  coefficients, centred; a_i is the unit mean of y - x'b - d_t;
+- more effects (absorbed by iteration, :mod:`bigpanel.sweeps`): the fit absorbed the
+  effects from every design column; the projection being linear, the effects of y - x'b are
+  combined from those column by column (nothing is swept again), then centred; with three
+  effects or more, redundancies other than those groups are left as the solver found them.
 
 First differences estimate no unit effects (the spec refuses ``write_effects``); their
 residuals are those of the differenced equation, keyed by the later period of each pair.
@@ -42,6 +50,9 @@ from .requests import Rows
 
 NORMALISATION = ("unit effects carry the level; period effects centred (row-weighted mean zero over the rows used, "
                  "within each connected group of units and periods)")
+NORMALISATION_MANY = ("the unit's effect carries the level; every other effect centred (row-weighted mean zero over "
+                      "the rows used, within each connected group of its levels and the units'); with three effects "
+                      "or more, other redundancies are left as the solver found them")
 RESIDUALS_FILE = "residuals.parquet"
 STREAM_BATCH_ROWS = 131_072
 
@@ -148,56 +159,174 @@ def parts_of(design, estimates: dict) -> Parts:
 # ---------------------------------------------------------------- writing
 
 
+@dataclass(frozen=True)
+class Written:
+    """One file to write: the rows of a query on the locked connection (``query``: SQL and
+    parameters) or a small Arrow ``table`` of aggregates; ``joined`` (effect tables, each
+    with its join key columns) and ``select`` (the writer's SELECT over them and the
+    streamed rows) when the file is the rows joined to the effects."""
+
+    folder: str
+    name: str
+    query: tuple | None = None
+    table: object = None
+    joined: tuple = ()
+    select: str | None = None
+
+
 def write(executor, est, design, spec, estimates: dict) -> dict:
     """Write the fit's effects and residuals; returns what was written (file paths by
     effect, the residuals file, the normalisation) for the result."""
     if not (spec.write_effects or spec.write_residuals):
         return {}
     parts = parts_of(design, estimates)
-    rows = Rows(design.sql_columns, (spec.period,), est.differenced)
-    used = executor.used_sql(rows)
+    many = estimates.get("absorption") is not None
+    if many and any(lag for _, lag in design.sql_columns):
+        raise InputError("Options --write-effects and --write-residuals do not yet take lag() or lead() terms with "
+                         "effects beyond the unit and the period. Leave out the write-back, or the lagged term.")
     q = design.q
+    rows = Rows(design.sql_columns, (spec.period,), est.differenced, effects=spec.effect_columns if many else ())
+    used = executor.used_sql(rows)
     base = {f"s{j}": 0.0 for j in range(q)} | {f"d{j}": 1.0 for j in range(q)}
-    # within with period effects: the centred period effects join every row (the period
-    # indicator columns, if any, are left out of x'b); otherwise they are as estimated
-    centred = est.absorbs_units and spec.period_effects
+    # within with period effects (exact path): the centred period effects join every row (the
+    # period indicator columns, if any, leave x'b); otherwise the periods' effects as estimated
+    centred = est.absorbs_units and spec.period_effects and not many
     period_rows: list[dict] = []
     periods = parts.periods
     if centred:
         period_rows, periods = _centred_periods(executor, used, q, parts, base)
     params = base | _estimate_params(parts.slopes, () if centred else parts.effect_columns, parts.intercept, periods)
+    keys = [k for e, cols in enumerate(rows.effects) for k in sqlbuild.effect_keys(e, len(cols))]
     parts_sql = sqlbuild.writeback_parts_sql(used, q, [j for j, _ in parts.slopes],
                                              [] if centred else [j for j, _ in parts.effect_columns],
-                                             len(periods), bool(parts.intercept))
-    plan: list[tuple] = []  # (folder, file name, SQL and its parameters, or an Arrow table)
+                                             len(periods), bool(parts.intercept), keys)
+    # effect tables: (columns as the source names them, join keys, Arrow table with the join
+    # keys, effect and n_rows)
+    effects: list[tuple[tuple[str, ...], list[str], object]] = []
+    if many:
+        effects = _absorbed_effects(spec, estimates, parts)
+    elif est.absorbs_units:
+        table = executor.engine.run(sqlbuild.writeback_unit_effects_sql(parts_sql), params)
+        effects.append(((spec.unit,), ["k_unit"], table))
+    plan: list[Written] = []
     written: dict = {}
     if spec.write_effects:
-        folder = spec.write_effects
-        taken: set[str] = set()
-        files = {}
-        name = file_name(spec.unit, taken)
-        columns = _unique([spec.unit, "effect", "n_rows"])
-        plan.append((folder, name, (sqlbuild.writeback_unit_effects_sql(parts_sql, columns), params)))
-        files[spec.unit] = os.path.join(folder, name)
-        if spec.period_effects:
+        folder, taken, files = spec.write_effects, set(), {}
+        for columns, join, table in effects:
+            plan.append(Written(folder, file_name("_".join(columns), taken), table=_named(table, join, columns)))
+            files[_label(columns)] = os.path.join(folder, plan[-1].name)
+        if centred:
             import pyarrow as pa
 
-            name = file_name(spec.period, taken)
-            columns = _unique([spec.period, "effect", "n_rows"])
-            table = pa.table({columns[0]: [r["shown"] for r in period_rows],
-                              columns[1]: pa.array([float(r["effect"]) for r in period_rows], pa.float64()),
-                              columns[2]: pa.array([int(r["n"]) for r in period_rows], pa.int64())})
-            plan.append((folder, name, table))
-            files[spec.period] = os.path.join(folder, name)
+            table = pa.table({"k": [r["shown"] for r in period_rows],
+                              "effect": pa.array([float(r["effect"]) for r in period_rows], pa.float64()),
+                              "n_rows": pa.array([int(r["n"]) for r in period_rows], pa.int64())})
+            plan.append(Written(folder, file_name(spec.period, taken), table=_named(table, ["k"], (spec.period,))))
+            files[spec.period] = os.path.join(folder, plan[-1].name)
         written["effects"] = files
-        written["normalisation"] = NORMALISATION if spec.period_effects else "unit effects carry the level"
+        written["normalisation"] = (NORMALISATION_MANY if many else NORMALISATION if centred
+                                    else "unit effects carry the level")
     if spec.write_residuals:
-        columns = _unique([spec.unit, spec.period, "fitted", "residual"])
-        plan.append((spec.write_residuals, RESIDUALS_FILE,
-                     (sqlbuild.writeback_residuals_sql(parts_sql, columns, est.absorbs_units), params)))
+        extra = [(k, c) for columns, join, _ in effects for k, c in zip(join, columns)] if many else []
+        carried, seen = [("k_unit", spec.unit), ("k_c0", spec.period)], {spec.unit, spec.period}
+        for k, c in extra:
+            if c not in seen:
+                carried.append((k, c))
+                seen.add(c)
+        names = _unique([c for _, c in carried] + ["fitted", "residual"])
+        select = sqlbuild.writeback_joined_sql(sqlbuild.WRITE_VIEW, [join for _, join, _ in effects],
+                                               [k for k, _ in carried], names)
+        plan.append(Written(spec.write_residuals, RESIDUALS_FILE,
+                            query=(sqlbuild.writeback_rows_sql(parts_sql, list(dict.fromkeys(
+                                [k for k, _ in carried] + [k for _, join, _ in effects for k in join]))), params),
+                            joined=tuple(table.select(join + ["effect"]) for _, join, table in effects),
+                            select=select))
         written["residuals"] = os.path.join(spec.write_residuals, RESIDUALS_FILE)
     _write_files(executor, plan)
     return written
+
+
+def _label(columns: tuple[str, ...]) -> str:
+    return columns[0] if len(columns) == 1 else f"cell({', '.join(columns)})"
+
+
+def _named(table, join: list[str], columns: tuple[str, ...]):
+    """An effect table for its file: the key columns under the source's names, then the
+    effect and the row count (names made unique)."""
+    names = _unique(list(columns) + ["effect", "n_rows"])
+    return table.select(join + ["effect", "n_rows"]).rename_columns(names)
+
+
+def _absorbed_effects(spec, estimates: dict, parts: Parts) -> list:
+    """Many effects: each effect's values from the fit's own absorption, normalised.
+
+    The fit absorbed the effects from every design column z_j = (x_j - s_j) d_j: its
+    projection on the effects is D a_j, so that of x_j is D a_j / d_j + s_j, and, the
+    projection being linear, that of y - x'b has level values a_y / d_y - sum_j b_j a_j / d_j
+    plus the constant s_y - b's (given to the unit's effect). Nothing is swept again.
+    """
+    found = estimates["absorption"]
+    copy = found.copy
+    scales, shifts = estimates["scales"], estimates["shifts"]
+    q = len(scales)
+    b = np.zeros(q - 1)
+    for j, v in parts.slopes:
+        b[j] = v
+    values = [a[q - 1] / scales[q - 1] - (b / scales[: q - 1]) @ a[: q - 1] for a in found.solution.alpha]
+    first = found.unit_effect if found.unit_effect is not None else 0
+    values[first] = values[first] + (shifts[q - 1] - b @ shifts[: q - 1])
+    _centre(copy, values, first)
+    out = []
+    for e, effect in enumerate(copy.effects):
+        keep = copy.counts[e] > 0
+        join = list(copy.levels[e].column_names)
+        table = (copy.levels[e].filter(keep).append_column("effect", _array(values[e][keep]))
+                 .append_column("n_rows", _array(copy.counts[e][keep])))
+        out.append((tuple(effect.columns), join, table))
+    return out
+
+
+def _array(values):
+    import pyarrow as pa
+
+    return pa.array(values)
+
+
+def _centre(copy, values: list[np.ndarray], first: int) -> None:
+    """Centre every effect but ``first`` (the unit's): row-weighted mean zero within each
+    connected group of its graph with the unit's levels (levels linked by sharing a row),
+    the group's mean added to its unit levels, so the fitted values do not change."""
+    for e in range(len(values)):
+        if e == first:
+            continue
+        hub, own = _pair_groups(copy, first, e)
+        n_groups = int(max(hub.max(initial=0), own.max(initial=0))) + 1
+        rows = copy.counts[e].astype(float)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.bincount(own, weights=rows * values[e], minlength=n_groups) / np.bincount(
+                own, weights=rows, minlength=n_groups)
+        mean = np.nan_to_num(mean)
+        values[e] = values[e] - mean[own]
+        values[first] = values[first] + mean[hub]
+
+
+def _pair_groups(copy, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
+    """Connected groups of the graph between the levels of effects ``a`` and ``b`` (a
+    level of each linked when they share a row): a group number per level of ``a`` and
+    per level of ``b``. Read chunk by chunk from the fit's scratch copy, labels merged as
+    the chunks come."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    la = copy.n_levels[a]
+    n = la + copy.n_levels[b]
+    labels = np.arange(n)
+    for chunk in copy.store.chunks([f"i{a}", f"i{b}"]):
+        pairs = np.unique(labels[chunk[f"i{a}"].astype(np.int64)] * n + labels[la + chunk[f"i{b}"].astype(np.int64)])
+        graph = coo_matrix((np.ones(len(pairs), dtype=np.int8), (pairs // n, pairs % n)), shape=(n, n))
+        _, component = connected_components(graph, directed=False)
+        labels = component[labels]
+    return labels[:la], labels[la:]
 
 
 def _estimate_params(slopes, columns, intercept: float, periods) -> dict:
@@ -251,31 +380,35 @@ def _groups(values: list, links: list[tuple]) -> dict:
     return {v: root(v) for v in values}
 
 
-def _write_files(executor, plan: list[tuple]) -> None:
-    """Write each entry into its Parquet file in a private folder inside its target
-    folder (a query's rows streamed from the locked connection, or a small Arrow table of
-    aggregates), then rename every file into place, only once all are complete."""
+def _write_files(executor, plan: list[Written]) -> None:
+    """Write each file in a private folder inside its target folder (a query's rows
+    streamed from the locked connection, possibly joined to effect tables in the writer,
+    or a small Arrow table of aggregates), then rename every file into place, only once
+    all are complete."""
     from .source import writer_connection
 
-    private = {folder: interrupts.private_folder(folder) for folder in dict.fromkeys(p[0] for p in plan)}
+    private = {folder: interrupts.private_folder(folder) for folder in dict.fromkeys(w.folder for w in plan)}
     try:
         staged = []
-        for folder, name, rows in plan:
-            temporary = os.path.join(private[folder], name)
-            reader = executor.engine.reader(*rows, STREAM_BATCH_ROWS) if isinstance(rows, tuple) else rows
+        for item in plan:
+            temporary = os.path.join(private[item.folder], item.name)
+            reader = executor.engine.reader(*item.query, STREAM_BATCH_ROWS) if item.query else item.table
             writer = writer_connection(executor.engine.source.engine, [temporary])
             try:
                 writer.register(sqlbuild.WRITE_VIEW, reader)
-                writer.execute(sqlbuild.copy_parquet_sql(sqlbuild.WRITE_VIEW, temporary))
+                for i, table in enumerate(item.joined):
+                    writer.register(sqlbuild.effect_view(i), table)
+                writer.execute(sqlbuild.copy_parquet_sql(item.select or sqlbuild.all_rows_sql(sqlbuild.WRITE_VIEW),
+                                                         temporary))
             except Exception as exc:  # noqa: BLE001 - DuckDB's errors, or the stream's
                 interrupts.raise_if_received()
                 raise executor.engine.explain(exc) from None
             finally:
                 interrupts.unregister(writer)
                 writer.close()
-                if isinstance(rows, tuple):
+                if item.query:
                     reader.close()
-            staged.append((temporary, os.path.join(folder, name)))
+            staged.append((temporary, os.path.join(item.folder, item.name)))
         for temporary, final in staged:
             os.replace(temporary, final)
     finally:

@@ -262,6 +262,111 @@ def test_writer_instance_reaches_only_its_file(tmp_path, source):
     assert not (tmp_path / "other.parquet").exists()
 
 
+# ---------------------------------------------------------------- many effects (absorbed by iteration)
+
+
+def _many_fit(tmp_path, df, effects: str):
+    folder = tmp_path / "many-src"
+    folder.mkdir(exist_ok=True)
+    path = write_parquet(df, folder / "workers.parquet")
+    out = tmp_path / "many-out"
+    r = _fit(path, "y", "x1, x2", "worker", "year", effects=effects, write_effects=str(out), write_residuals=str(out))
+    return r, out
+
+
+def _worker_dummy_ols(rows: pd.DataFrame, effects: list[list[str]]):
+    """statsmodels OLS of y on x1, x2, a constant and indicators of every effect's levels
+    but the first (a cell effect: one indicator per combination), on the rows given."""
+    parts = [rows[["x1", "x2"]]]
+    for cols in effects:
+        key = rows[cols].astype(str).agg("|".join, axis=1) if len(cols) > 1 else rows[cols[0]]
+        parts.append(pd.get_dummies(key, prefix="=".join(cols), prefix_sep="=", drop_first=True, dtype=float))
+    return sm.OLS(rows["y"], sm.add_constant(pd.concat(parts, axis=1))).fit()
+
+
+def test_three_effects_reproduce_dummy_ols(tmp_path):
+    from test_many_effects import without_singletons, worker_panel
+
+    df = worker_panel(seed=3)  # workers moving between firms, with singletons in a cascade
+    r, out = _many_fit(tmp_path, df, "worker,firm,year")
+    effects = [["worker"], ["firm"], ["year"]]
+    rows = without_singletons(df, effects).reset_index(drop=True)  # the rule, in pandas
+    ols = _worker_dummy_ols(rows, effects)  # reference: statsmodels LSDV on the rows left
+    assert r.absorption["path"] == "iterative" and r.absorption["converged"]
+    assert set(r.written["effects"]) == {"worker", "firm", "year"}
+    files = {c: _read(p) for c, p in r.written["effects"].items()}
+    for column in ("worker", "firm", "year"):
+        counts = rows.groupby(column).size()
+        table = files[column].set_index(column)
+        assert list(table.index) == list(counts.index)  # levels with rows after singletons, sorted
+        assert (table["n_rows"] == counts).all()
+    # our normalisation on statsmodels' coefficients: firm and year effects centred with row
+    # weights (the mobility graph is connected here), the worker effects taking the means
+    b = np.array([r.coef("x1").estimate, r.coef("x2").estimate])
+    np.testing.assert_allclose(b, ols.params[["x1", "x2"]], rtol=0, atol=1e-8)
+    means = {}
+    for column in ("firm", "year"):
+        coef = pd.Series({v: ols.params.get(f"{column}={v}", 0.0) for v in sorted(rows[column].unique())})
+        n = rows.groupby(column).size()
+        means[column] = float((coef * n).sum() / n.sum())
+        assert abs((files[column]["effect"] * files[column]["n_rows"]).sum()) < TOL
+        np.testing.assert_allclose(files[column].set_index(column)["effect"], coef - means[column], rtol=0, atol=1e-7)
+    worker = pd.Series({v: ols.params["const"] + ols.params.get(f"worker={v}", 0.0) for v in sorted(rows.worker.unique())})
+    np.testing.assert_allclose(files["worker"].set_index("worker")["effect"], worker + sum(means.values()), rtol=0, atol=1e-7)
+    rebuilt = rows.copy()
+    rebuilt["rebuilt"] = rows[["x1", "x2"]].to_numpy() @ b
+    for column, table in files.items():
+        rebuilt = rebuilt.merge(table[[column, "effect"]], on=column, validate="many_to_one")
+        rebuilt["rebuilt"] += rebuilt.pop("effect")
+    both = rows.assign(ref=ols.fittedvalues).merge(rebuilt[["worker", "year", "rebuilt"]], on=["worker", "year"])
+    np.testing.assert_allclose(both["rebuilt"], both["ref"], rtol=0, atol=TOL)
+    res = _read(r.written["residuals"])
+    assert list(res.columns) == ["worker", "year", "firm", "fitted", "residual"]
+    assert len(res) == len(rows) == r.n_obs
+    joined = rows.assign(ref_fitted=ols.fittedvalues, ref_resid=ols.resid).merge(
+        res, on=["worker", "year"], validate="one_to_one", suffixes=("", "_written"))
+    assert (joined["firm"] == joined["firm_written"]).all()
+    np.testing.assert_allclose(joined["fitted"], joined["ref_fitted"], rtol=0, atol=TOL)
+    np.testing.assert_allclose(joined["residual"], joined["ref_resid"], rtol=0, atol=TOL)
+    assert (res["residual"] ** 2).sum() == pytest.approx(ols.ssr, rel=1e-9)
+
+
+def test_many_effects_disconnected_firms_centred_per_group(tmp_path):
+    """Two groups of firms no worker moves between: firm effects are centred within each
+    group; fitted values still match the dummy-variable fit (statsmodels, pseudo-inverse)."""
+    from test_many_effects import worker_panel
+
+    df = worker_panel(seed=8, groups=2, singletons=False)
+    r, _ = _many_fit(tmp_path, df, "worker,firm,year")
+    firms = _read(r.written["effects"]["firm"])
+    half = df.firm.max() // 2 + 1  # worker_panel gives group g the firms g*9 .. g*9+8
+    for group in (firms["firm"] < half, firms["firm"] >= half):
+        assert group.any() and abs((firms["effect"] * firms["n_rows"])[group].sum()) < TOL
+    ols = _worker_dummy_ols(df, [["worker"], ["firm"], ["year"]])
+    res = df.assign(ref=ols.fittedvalues).merge(_read(r.written["residuals"]), on=["worker", "year"])
+    np.testing.assert_allclose(res["fitted"], res["ref"], rtol=0, atol=TOL)
+
+
+def test_cell_effect_written_with_both_columns(tmp_path):
+    from test_many_effects import worker_panel
+
+    df = worker_panel(seed=5, singletons=False)
+    df = df[df.groupby(["firm", "year"]).worker.transform("size") > 1].reset_index(drop=True)  # no singleton cells
+    r, out = _many_fit(tmp_path, df, "worker, cell(firm, year)")
+    assert r.written["effects"]["cell(firm, year)"] == str(out / "effect_firm_year.parquet")
+    cells = _read(out / "effect_firm_year.parquet")
+    assert list(cells.columns) == ["firm", "year", "effect", "n_rows"]
+    ols = _worker_dummy_ols(df, [["worker"], ["firm", "year"]])
+    res = df.assign(ref=ols.resid).merge(_read(r.written["residuals"]), on=["worker", "year"], validate="one_to_one")
+    np.testing.assert_allclose(res["residual"], res["ref"], rtol=0, atol=TOL)
+    rebuilt = (df.merge(_read(r.written["effects"]["worker"]).rename(columns={"effect": "a"}), on="worker")
+               .merge(cells.rename(columns={"effect": "c"}), on=["firm", "year"]))
+    b = np.array([r.coef("x1").estimate, r.coef("x2").estimate])
+    fitted = rebuilt[["x1", "x2"]].to_numpy() @ b + rebuilt["a"] + rebuilt["c"]
+    both = df.assign(ref=ols.fittedvalues).merge(rebuilt[["worker", "year"]].assign(g=fitted.to_numpy()), on=["worker", "year"])
+    np.testing.assert_allclose(both["g"], both["ref"], rtol=0, atol=TOL)
+
+
 # ---------------------------------------------------------------- an interrupted write
 
 BIG_QUERY = ("SELECT i // 10 AS unit, i % 10 AS period, hash(i) % 1000 * 1.0 AS x1, "
