@@ -168,11 +168,16 @@ class Executor:
         return sql
 
     def used_sql(self, rows: Rows, chunk=None, head: bool = False, streaming: bool = False) -> str:
+        used = sqlbuild.used_rows_sql(self.rows_sql(rows, chunk, head, streaming), self.valid_sql(rows))
+        return sqlbuild.demeaned_rows_sql(used, rows.q, len(rows.clusters)) if rows.demeaned else used
+
+    def valid_sql(self, rows: Rows) -> str:
+        """The predicate of the used rows: a unit, finite design columns (differences: the
+        unit's previous period) and, with absorbed effects, a level of every effect."""
         valid = sqlbuild.valid_predicate(rows.q, rows.differenced, self.keys.step)
         if rows.effects:
             valid += " AND " + sqlbuild.keys_present(self.effect_keys(rows))
-        used = sqlbuild.used_rows_sql(self.rows_sql(rows, chunk, head, streaming), valid)
-        return sqlbuild.demeaned_rows_sql(used, rows.q, len(rows.clusters)) if rows.demeaned else used
+        return valid
 
     @staticmethod
     def effect_keys(rows: Rows) -> list[str]:

@@ -292,28 +292,34 @@ def keys_present(keys: Sequence[str]) -> str:
     return " AND ".join(f"{k} IS NOT NULL" for k in keys)
 
 
-def effect_levels_sql(used: str, keys: Sequence[str]) -> str:
-    """The distinct levels (``keys``: key columns of the used rows) in sort order; row i is level i."""
-    return render("effect_levels", rows=f"({used})", keys=", ".join(keys))
+def effect_levels_sql(rows: str, keys: Sequence[str], missing: bool = False) -> str:
+    """The distinct levels of ``keys`` over the design rows, in sort order: row i is level
+    i in :func:`effect_rows_sql`. ``missing``: a row without a value is a level too
+    (clusters); else such rows have no level (effects: they are not used)."""
+    cols = ", ".join(keys)
+    return render("effect_levels", rows=f"({rows})", keys=cols, present="true" if missing else keys_present(keys))
 
 
-def effect_rows_sql(used: str, effects: Sequence[Sequence[str]], clusters: Sequence[Sequence[str]], q: int,
+def effect_rows_sql(rows: str, valid: str, effects: Sequence[Sequence[str]], clusters: Sequence[Sequence[str]], q: int,
                     keep: Sequence[str] = ()) -> str:
-    """The used rows with a compact level index per effect (``i<e>``, INTEGER) and per
-    cluster set (``g<c>``; a set of two columns is their intersection), the design
-    columns z<j> and the ``keep`` columns, numbered as :func:`effect_levels_sql` numbers them."""
+    """The used rows (design rows ``rows`` where ``valid``) with a compact level index per
+    effect (``i<e>``, INTEGER) and per cluster set (``g<c>``; a set of two columns is their
+    intersection), the design columns z<j> and the ``keep`` columns, numbered as
+    :func:`effect_levels_sql` numbers them."""
     levels, columns, joins = [], [], []
-    for name, keys, nulls in ([(f"i{e}", k, False) for e, k in enumerate(effects)]
-                              + [(f"g{c}", k, True) for c, k in enumerate(clusters)]):
+    for name, keys, missing in ([(f"i{e}", k, False) for e, k in enumerate(effects)]
+                                + [(f"g{c}", k, True) for c, k in enumerate(clusters)]):
         table = f"l_{name}"
         cols = ", ".join(keys)
+        present = "true" if missing else keys_present(keys)
         levels.append(f", {table} AS (SELECT {cols}, CAST(row_number() OVER (ORDER BY {cols}) - 1 AS INTEGER) AS i "
-                      f"FROM (SELECT DISTINCT {cols} FROM used) AS d)")
-        equal = " IS NOT DISTINCT FROM " if nulls else " = "
+                      f"FROM (SELECT DISTINCT {cols} FROM design WHERE {present}) AS d)")
+        equal = " IS NOT DISTINCT FROM " if missing else " = "
         joins.append(f" JOIN {table} ON " + " AND ".join(f"used.{k}{equal}{table}.{k}" for k in keys))
         columns.append(f"{table}.i AS {name}")
     columns += [f"used.{_z(j)}" for j in range(q)] + [f"used.{k}" for k in keep]
-    return render("effect_rows", rows=used, levels="".join(levels), columns=", ".join(columns), joins="".join(joins))
+    return render("effect_rows", rows=rows, valid=valid, levels="".join(levels), columns=", ".join(columns),
+                  joins="".join(joins))
 
 
 def valid_predicate(q: int, differenced: bool, step: int) -> str:

@@ -53,7 +53,7 @@ import numpy as np
 from . import sqlbuild
 from .errors import EstimationError
 
-CHUNK_ROWS = 1 << 20  # rows per chunk of a pass over the scratch files
+CHUNK_ROWS = 1 << 18  # rows per chunk of a pass over the scratch files (numpy temporaries ~30 MB)
 DEFAULT_TOLERANCE = 1e-10  # on the transformed columns (see the module text); slopes then match dummy-variable OLS to 1e-8 in the tests
 DEFAULT_ITERATIONS = 1_000
 EXACT_RANK_LEVELS = 1_500  # at most this many levels in all: redundancies from the rank of D'D (exact)
@@ -198,12 +198,12 @@ def materialise(executor, rows, params: dict, effects: Sequence[Effect], keep: S
     import pyarrow as pa
 
     engine = executor.engine
-    used = executor.used_sql(rows)
+    design = executor.rows_sql(rows)  # levels are numbered over these (a key column read alone is cheap)
     effect_keys = [sqlbuild.effect_keys(e, len(cols)) for e, cols in enumerate(rows.effects)]
     clusters = [f"k_c{i}" for i in range(len(rows.clusters))]
     cluster_sets = [[c] for c in clusters] + ([clusters] if len(clusters) == 2 else [])
-    levels = [engine.run(sqlbuild.effect_levels_sql(used, keys), params) for keys in effect_keys]
-    n_cluster = [engine.run(sqlbuild.effect_levels_sql(used, keys), params).num_rows for keys in cluster_sets]
+    levels = [engine.run(sqlbuild.effect_levels_sql(design, keys), params) for keys in effect_keys]
+    n_cluster = [engine.run(sqlbuild.effect_levels_sql(design, keys, missing=True), params).num_rows for keys in cluster_sets]
     q = rows.q
     dtypes = {f"i{e}": np.dtype(np.int32) for e in range(len(effects))}
     dtypes |= {f"g{c}": np.dtype(np.int32) for c in range(len(cluster_sets))}
@@ -211,7 +211,7 @@ def materialise(executor, rows, params: dict, effects: Sequence[Effect], keep: S
     if keep:
         dtypes["row"] = np.dtype(np.int64)  # the row's place in keys.arrow (kept rows stay in order)
     store = Store(engine.scratch_folder(), dtypes)
-    sql = sqlbuild.effect_rows_sql(used, effect_keys, cluster_sets, q, keep)
+    sql = sqlbuild.effect_rows_sql(design, executor.valid_sql(rows), effect_keys, cluster_sets, q, keep)
     writer = store.writer()
     kept_writer = None
     try:
@@ -387,13 +387,12 @@ def _components(copy: Copy, a: int, b: int) -> int:
     n = la + lb
     labels = np.arange(n)
     for chunk in copy.store.chunks([f"i{a}", f"i{b}"], size=4 * CHUNK_ROWS):
-        codes = np.unique(chunk[f"i{a}"].astype(np.int64) * lb + chunk[f"i{b}"])
-        u, v = labels[codes // lb], labels[la + codes % lb]
+        u, v = labels[chunk[f"i{a}"]], labels[la + chunk[f"i{b}"]]  # repeated edges are harmless
         graph = coo_matrix((np.ones(len(u), dtype=np.int8), (u, v)), shape=(n, n))
         _, comp = connected_components(graph, directed=False)
         labels = comp[labels]
     active = np.r_[copy.counts[a] > 0, copy.counts[b] > 0]
-    return int(len(np.unique(labels[active])))
+    return int(np.count_nonzero(np.bincount(labels[active], minlength=n)))
 
 
 def _rank(copy: Copy, subset: Sequence[int]) -> int:
