@@ -61,29 +61,28 @@ STREAM_BATCH_ROWS = 131_072
 
 
 def check_folder(option: str, folder: str, source) -> str:
-    """The absolute target folder, made if missing, after refusing one that is a file, is
-    not writable, or lies among the source's files. Runs before any scan."""
+    """The absolute target folder, made if missing, after refusing one that holds a source
+    file or lies inside a source folder (checked first: nothing is made then), is a file,
+    or cannot be written. Runs before any scan."""
     from .source import _unwritable_folder
 
     flag = "--" + option.replace("_", "-")
     path = os.path.realpath(os.path.abspath(os.path.expanduser(folder)))
+    given = list(source.files or ()) + ([source.database] if source.database else [])
+    files = [os.path.realpath(os.path.abspath(f)) for f in given]
+    for shown_file, f in zip(given, files):
+        if _inside(f, path):
+            raise InputError(f"Option {flag} names '{echo(folder)}', which holds the source file '{echo(shown_file)}'. "
+                             "bigpanel never writes among its sources: give a folder of its own.")
+    if len(files) > 1 or source.hive:
+        root = os.path.commonpath([os.path.dirname(f) for f in files])
+        if _inside(path, root):
+            raise InputError(f"Option {flag} names '{echo(folder)}', which lies inside the source's folder "
+                             f"'{echo(os.path.relpath(root))}'. bigpanel never writes among its sources: give a folder "
+                             "outside it.")
     problem = _unwritable_folder(path)
     if problem:
         raise InputError(f"Option {flag} names '{echo(folder)}', {problem}. Give a folder you can write to.")
-    files = [os.path.realpath(os.path.abspath(f)) for f in (source.files or ())]
-    if source.database:
-        files.append(os.path.realpath(os.path.abspath(source.database)))
-    roots = []
-    if len(files) > 1 or source.hive:
-        roots.append(os.path.commonpath([os.path.dirname(f) for f in files]))
-    for f in files:
-        if _inside(f, path):
-            raise InputError(f"Option {flag} names '{echo(folder)}', which holds the source file '{echo(f)}'. "
-                             "bigpanel never writes among its sources: give a folder of its own.")
-    for root in roots:
-        if _inside(path, root):
-            raise InputError(f"Option {flag} names '{echo(folder)}', which lies inside the source's folder '{echo(root)}'. "
-                             "bigpanel never writes among its sources: give a folder outside it.")
     return path
 
 

@@ -186,6 +186,21 @@ def test_first_difference_residuals_match_ols_on_differences(tmp_path, panel, so
     np.testing.assert_allclose(both["fitted"], both["ref_fitted"], rtol=0, atol=TOL)
 
 
+def test_fit_many_writes_each_models_files(tmp_path, panel, source):
+    """A model of fit_many writes the same residuals as the same fit alone (statsmodels
+    LSDV as the reference for both)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        results = bigpanel.fit_many(source, [dict(outcome="y", regressors="x1, x2", write_residuals=str(tmp_path / "a")),
+                                             dict(outcome="y", regressors="x1", estimator="pooled")],
+                                    unit="unit", period="period")
+    assert results[1].written == {}
+    res = _read(results[0].written["residuals"])
+    ols = _dummy_ols(panel, ["unit"])
+    both = panel.assign(ref=ols.resid).merge(res, on=["unit", "period"], validate="one_to_one")
+    np.testing.assert_allclose(both["residual"], both["ref"], rtol=0, atol=TOL)
+
+
 def _digest(folder: Path) -> dict:
     return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
             for p in sorted(folder.rglob("*")) if p.is_file()}
@@ -208,6 +223,7 @@ def test_folder_among_the_sources_is_refused(tmp_path, source, inside):
     with pytest.raises(InputError, match="never writes among its sources"):
         _fit(source, "y", "x1, x2", "unit", "period", write_effects=str(tmp_path / inside))
     assert _digest(Path(source)) == before
+    assert not (tmp_path / "source" / "sub").exists()  # refused before anything is made
 
 
 def test_folder_holding_the_source_file_is_refused(tmp_path, panel):
