@@ -174,6 +174,22 @@ def test_disconnected_groups_are_centred_each(tmp_path):
     np.testing.assert_allclose(res["residual"], res["ref"], rtol=0, atol=TOL)
 
 
+def test_date_periods_take_the_indicator_path(tmp_path, panel):
+    """Weekly DATE periods: period effects are indicator columns inside the within fit;
+    the written residuals and centred period effects match statsmodels LSDV all the same."""
+    df = panel.assign(week=pd.to_datetime("2020-01-06") + pd.to_timedelta((panel.period - 1) * 7, unit="D"))
+    path = write_parquet(df, (tmp_path / "src").mkdir() or tmp_path / "src" / "weeks.parquet")
+    r = _fit(path, "y", "x1, x2", "unit", "week", effects="unit,week", write_effects=str(tmp_path / "o"),
+             write_residuals=str(tmp_path / "o"))
+    ols = _dummy_ols(panel, ["unit", "period"])
+    res = df.assign(ref=ols.resid).merge(_read(r.written["residuals"]), on=["unit", "week"], validate="one_to_one")
+    np.testing.assert_allclose(res["residual"], res["ref"], rtol=0, atol=TOL)
+    weeks = _read(r.written["effects"]["week"])
+    raw = _ols_period_effects(ols, panel).to_numpy()
+    n_t = panel.groupby("period").size().to_numpy()
+    np.testing.assert_allclose(weeks["effect"], raw - (raw * n_t).sum() / n_t.sum(), rtol=0, atol=TOL)
+
+
 def test_first_difference_residuals_match_ols_on_differences(tmp_path, panel, source):
     r = _fit(source, "y", "x1, x2", "unit", "period", estimator="first-difference",
              write_residuals=str(tmp_path / "res"))
