@@ -78,6 +78,9 @@ class EngineAdapter(Protocol):
     def scratch_folder(self) -> str:
         """Optional: a new private folder for the run's scratch files, removed with the session."""
 
+    def reader(self, sql: str, params: dict, batch_rows: int):
+        """Optional: a query's rows as a pyarrow RecordBatchReader (the write-back's rows)."""
+
     def fold_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict, fold: Callable) -> list:
         """Optional: stream each chunk's rows as Arrow batches into ``fold(batches)`` (one
         thread per chunk, the rows in storage order); results in chunk order."""
@@ -151,6 +154,19 @@ class DuckDBEngine:
                 cur.close()
 
         return moments.in_parallel(one, chunks, threads)
+
+    def reader(self, sql: str, params: dict, batch_rows: int):
+        """A query's rows as a pyarrow RecordBatchReader on all threads (one SELECT on the
+        locked main connection; the write-back streams them into its writer instance)."""
+        check_select(sql)
+        try:
+            return self.session.con.sql(sql, params=params).to_arrow_reader(batch_rows)
+        except duckdb.Error as exc:
+            raise self.session._explain(exc) from None
+
+    def explain(self, exc: BaseException) -> BaseException:
+        """The error to raise for a DuckDB error met while streaming rows out."""
+        return self.session._explain(exc) if isinstance(exc, duckdb.Error) else exc
 
     def row_count(self) -> int | None:
         if self.source.kind == "parquet" and not self.source.where:

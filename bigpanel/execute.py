@@ -59,6 +59,7 @@ class Executor:
         self.absorptions: dict = {}  # many effects: Rows -> sweeps.Absorption (scratch copy, solved effects)
         self.collecting: list | None = None  # score requests seen while planning (fit_many)
         self.fold_path = "sql"  # where the last unit fold was summed: "sql" or "numpy"
+        self.estimates: dict | None = None  # the last solved model's estimates in user units (inference.finish)
         self._grid: tuple | None = None  # (kind, panel grid) of the periods after the filter
         self.given_step = keys.step  # None: the step is the panel's detected one
         self.slot_values: dict | None = None  # slot -> period value, when periods are slots

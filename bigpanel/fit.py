@@ -20,7 +20,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from . import estimators
+from . import estimators, writeback
 from .design import Design, build_design
 from .engine import DuckDBEngine
 from .errors import BigpanelWarning, EstimationError, InputError
@@ -56,6 +56,8 @@ def fit(
     absorbed_levels: str | None = None,
     effects_tolerance: float | None = None,
     effects_iterations: int | None = None,
+    write_effects=None,
+    write_residuals=None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
@@ -106,10 +108,19 @@ def fit(
         As in :func:`bigpanel.open_source`.
     csv_nulls : str or list of str, optional
         Extra CSV tokens read as missing (``"NA,."``); empty fields always are.
+    write_effects : str or path, optional
+        Folder (made if missing, outside the source's folders) to write one Parquet file
+        per effect into, ``effect_<column>.parquet`` (level, effect, rows; within fits;
+        normalisation in :mod:`bigpanel.writeback`). The result's ``written`` names them.
+    write_residuals : str or path, optional
+        Folder to write ``residuals.parquet`` into: each used row's unit, period, fitted
+        value and residual (within and first-difference fits).
     """
     spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step,
-                         absorbed_levels, effects_tolerance, effects_iterations)
+                         absorbed_levels, effects_tolerance, effects_iterations, write_effects=write_effects,
+                         write_residuals=write_residuals)
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
+    spec = writeback.checked(spec, src)
     notes = Notes([])
     try:
         with Session(src) as session:
@@ -166,6 +177,7 @@ def fit_many(
     """
     specs = [_model_spec(m, i, unit, period, period_step) for i, m in enumerate(models)]
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
+    specs = [writeback.checked(spec, src) for spec in specs]
     notes = [Notes([]) for _ in specs]
     try:
         with Session(src) as session:
@@ -226,7 +238,8 @@ def _run_shared(executor: Executor, scan, notes: list, results: list) -> list[in
     executor.shared_meats(scan, requests, params)
     for m, eq in ready:
         own, own_params = member_params(m, shifts, scales)
-        results[m.index] = finish(m.est, executor, m.design, m.rows, own, own_params, eq, SHARED, notes[m.index])
+        results[m.index] = written(executor, m.est, m.design,
+                                   finish(m.est, executor, m.design, m.rows, own, own_params, eq, SHARED, notes[m.index]))
     return alone
 
 
@@ -282,7 +295,15 @@ def estimate(executor: Executor, spec: FitSpec, notes: Notes) -> FitResult:
         request = replace(request, rows=replace(request.rows, demeaned=True))
         eq = executor.moments(request, params, lambda chunks: est.equations(design, request, chunks, executor))
         accumulation = "two passes, unit means subtracted in SQL"
-    return finish(est, executor, design, rows, shifts, params, eq, accumulation, notes)
+    return written(executor, est, design, finish(est, executor, design, rows, shifts, params, eq, accumulation, notes))
+
+
+def written(executor: Executor, est: estimators.Estimator, design: Design, result: FitResult) -> FitResult:
+    """The result, after writing the effects and residuals its specification asks for."""
+    spec = est.spec
+    if not (spec.write_effects or spec.write_residuals):
+        return result
+    return replace(result, written=writeback.write(executor, est, design, spec, executor.estimates))
 
 
 def pilot(est: estimators.Estimator, executor: Executor, design: Design, params: dict) -> np.ndarray | None:

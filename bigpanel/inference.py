@@ -255,6 +255,12 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     n_periods = executor.n_periods()  # distinct periods, not the span
     for msg in executor.notes:
         notes.add(None, msg)
+    # every column's estimate in the user's units (effects included, 0 when left out), for
+    # the write-back of effects and residuals (bigpanel.writeback)
+    executor.estimates = {"estimate": np.where(sol.kept, estimate, 0.0), "is_effect": is_effect[:k], "labels": labels[:k],
+                          "kept": sol.kept, "effect_values": eq.effect_values, "effect_rows": eq.effect_rows,
+                          "shifts": np.asarray(shifts, dtype=float), "scales": np.array([params[f"d{j}"] for j in range(q)]),
+                          "absorption": eq.absorption}
     return FitResult(
         estimator=spec.estimator, outcome=spec.outcome, coefficients=tuple(coefs), n_obs=n_obs, n_units=eq.n_units,
         n_periods=n_periods, period_first=t_min, period_last=t_max, period_step=executor.step_text, effects=spec.effects,

@@ -8,6 +8,7 @@ renaming an option is one line here.
 
 from __future__ import annotations
 
+import os
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -29,7 +30,9 @@ class Param:
     ``kind`` is one of ``expression`` (a SQL scalar expression or column), ``terms`` (a list
     of terms, or one text split at top-level commas), ``column``, ``columns`` (a list, or
     comma-separated text), ``choice`` (one of ``choices``), ``flag`` (True/False/None),
-    ``count`` (a whole number of at least ``minimum``) and ``number`` (a real number within ``bounds``).
+    ``count`` (a whole number of at least ``minimum``), ``number`` (a real number within ``bounds``)
+    and ``folder`` (a folder to write into, checked against the source when the fit starts:
+    :mod:`bigpanel.writeback`).
     """
 
     name: str
@@ -82,6 +85,12 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("period_step", "count", "Distance between consecutive whole-number periods (default: the panel's detected "
           "step: the gcd of the gaps, or for dates a day, week, month, quarter or year).", minimum=1, maximum=2**53,
           empty="Give the distance between consecutive periods."),
+    Param("write_effects", "folder", "Folder to write the estimated effects into, one Parquet file per effect "
+          "(level, effect, rows), normalised as README describes; within fits only.",
+          empty="Give a folder outside the source's folders."),
+    Param("write_residuals", "folder", "Folder to write residuals.parquet into: each used row's keys, fitted value and "
+          "residual; within and first-difference fits.",
+          empty="Give a folder outside the source's folders."),
 )}
 
 MODEL_KEYS = tuple(PARAMETERS)
@@ -158,6 +167,10 @@ def check(name: str, value: Any) -> Any:
         if p.required:
             raise InputError(f"Option '{name}' is missing. {p.empty or p.help}")
         return p.default if p.kind != "columns" else ()
+    if p.kind == "folder":
+        if not isinstance(value, (str, os.PathLike)) or not str(os.fspath(value)).strip():
+            raise InputError(f"Option '{name}' must name a folder; got {echo(repr(value), 40)}. {p.empty}")
+        return str(os.fspath(value))
     if p.kind in ("expression", "column"):
         if not isinstance(value, str) or not value.strip():
             raise InputError(f"Option '{name}' is empty. {p.empty or p.help}")

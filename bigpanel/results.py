@@ -91,6 +91,9 @@ class FitResult:
     # how the effects were absorbed: {"path": "exact" | "iterative", "method": ...}; iterative adds
     # effects and levels, iterations, tolerance, achieved, converged, singletons, redundancies
     absorption: dict = field(default_factory=dict)
+    # files written back (bigpanel.writeback): {"effects": {column: path}, "normalisation": text,
+    # "residuals": path}; empty when nothing was asked for
+    written: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         out = json_ready(self)
@@ -222,6 +225,10 @@ def _footer(r: "FitResult", notes: bool) -> list[str]:
         lines += _wrapped("", "rows left out: " + "; ".join(parts))
     for term, why in r.terms_dropped.items():
         lines += _wrapped("", f"term left out: {term} ({why})")
+    for column, path in r.written.get("effects", {}).items():
+        lines += _wrapped("", f"effects of {column} written to {path}")
+    if r.written.get("residuals"):
+        lines += _wrapped("", f"residuals written to {r.written['residuals']}")
     for w in r.warnings if notes else ():
         lines += _wrapped("", f"note: {w}")
     lines += ["", "  Read these estimates as causal effects only if:"]

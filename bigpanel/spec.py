@@ -93,6 +93,8 @@ class FitSpec:
     absorbed_levels: str = "not-nested"
     effects_tolerance: float = 1e-10  # many effects: the iteration's tolerance (bigpanel.sweeps)
     effects_iterations: int = 1000
+    write_effects: str | None = None  # folders the fit writes its effects / residuals into (bigpanel.writeback)
+    write_residuals: str | None = None
 
     @classmethod
     def build(
@@ -110,6 +112,8 @@ class FitSpec:
         absorbed_levels: str | None = None,
         effects_tolerance: float | None = None,
         effects_iterations: int | None = None,
+        write_effects: str | None = None,
+        write_residuals: str | None = None,
     ) -> "FitSpec":
         estimator = params.check("estimator", estimator)
         outcome = params.check("outcome", outcome)
@@ -163,10 +167,19 @@ class FitSpec:
         absorbed_levels = params.check("absorbed_levels", absorbed_levels)
         effects_tolerance = params.check("effects_tolerance", effects_tolerance)
         effects_iterations = params.check("effects_iterations", effects_iterations)
+        write_effects = params.check("write_effects", write_effects)
+        write_residuals = params.check("write_residuals", write_residuals)
+        if write_effects is not None and estimator != "within":
+            raise InputError(f"Option 'write_effects' needs the within estimator: {estimator} fits estimate no unit "
+                             "effects to write. Use --estimator within, or leave out --write-effects.")
+        if write_residuals is not None and estimator == "pooled":
+            raise InputError("Option 'write_residuals' applies to within and first-difference fits, not pooled ones. "
+                             "Use --estimator within or first-difference, or leave out --write-residuals.")
         return cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, variance=variance, cluster=clus, intercept=bool(intercept), period_step=None if period_step is None else int(period_step),
             absorbed_levels=absorbed_levels, effects_tolerance=effects_tolerance, effects_iterations=effects_iterations,
+            write_effects=write_effects, write_residuals=write_residuals,
         )
 
     @property

@@ -908,3 +908,81 @@ def grouping_id(keys: Sequence[str], grouped: Sequence[str]) -> int:
     for key in keys:
         out = (out << 1) | (0 if key in grouped else 1)
     return out
+
+
+# ---------------------------------------------------------------- write-back (bigpanel.writeback)
+# The rows of the fit's sample (``used``, design columns unshifted: $s_j = 0, $d_j = 1, the
+# period column carried as k_c0) with the estimates as parameters: $b_j per design column,
+# $b_one the intercept, ($t_i, $g_i) the periods' effects.
+
+WRITE_VIEW = "bigpanel_rows"  # the name under which the writer instance sees the streamed rows
+# The writer joins streamed rows (not counted in advance: DuckDB guesses one row) to effect
+# tables; with these optimizers on it built its hash table from the stream (20M rows: 2.5 GB),
+# off it builds from the effect tables and streams the rows through (0.28 GB).
+WRITER_OPTIMIZERS = ("disabled_optimizers", "join_order,build_side_probe_side")
+
+
+def writeback_parts_sql(used: str, q: int, slopes: Sequence[int], effect_columns: Sequence[int], n_periods: int,
+                        intercept: bool, keys: Sequence[str] = ()) -> str:
+    """CTEs ``used`` and ``parts``: per used row k_unit, k_period, k_c0 (the period as the
+    source has it), the effects' key columns ``keys``, the outcome y, xb = sum of $b_j z_j
+    over ``slopes`` (+ $b_one) and pe = sum of $b_j z_j over ``effect_columns`` plus the
+    row's period effect $g_i (joined on $t_i; 0 for a period not listed)."""
+    xb = " + ".join([f"$b{int(j)} * r.{_z(j)}" for j in slopes] + (["$b_one"] if intercept else [])) or "0.0"
+    pe = " + ".join([f"$b{int(j)} * r.{_z(j)}" for j in effect_columns]
+                    + (["coalesce(pe.g, 0.0)"] if n_periods else [])) or "0.0"
+    carried = "".join(f"r.{k}, " for k in keys)
+    return (f"used AS ({used}),\nparts AS (SELECT r.k_unit, r.k_period, r.k_c0, {carried}r.{_z(q - 1)} AS y, {xb} AS xb, "
+            f"{pe} AS pe FROM used AS r {period_join_sql(n_periods, 0)})")
+
+
+def writeback_periods_sql(parts: str) -> str:
+    """Per period: its value as the source has it, its rows and its effect (the mean of pe)."""
+    return (f"WITH {parts}\nSELECT k_period, any_value(k_c0) AS shown, count(*) AS n, {DUCKDB.compensated}(pe) / count(*) "
+            "AS effect FROM parts GROUP BY k_period ORDER BY k_period")
+
+
+def writeback_period_links_sql(used: str) -> str:
+    """Each unit's first period beside each of its periods (distinct pairs): the links that
+    make periods one connected group."""
+    return ("SELECT DISTINCT first_period, k_period FROM (SELECT k_period, min(k_period) OVER (PARTITION BY k_unit) "
+            f"AS first_period FROM ({used}) AS r) AS l")
+
+
+def writeback_unit_effects_sql(parts: str) -> str:
+    """Per unit (k_unit, effect, n_rows), in unit order: the mean of y - xb - pe."""
+    return (f"WITH {parts}\nSELECT k_unit, {DUCKDB.compensated}(y - xb - pe) / count(*) AS effect, "
+            "count(*) AS n_rows FROM parts GROUP BY k_unit ORDER BY k_unit")
+
+
+def writeback_rows_sql(parts: str, carried: Sequence[str]) -> str:
+    """The rows streamed to the writer instance: the ``carried`` key columns, y, xb and pe."""
+    return f"WITH {parts}\nSELECT {', '.join(carried)}, y, xb, pe FROM parts"
+
+
+def effect_view(i: int) -> str:
+    """The name under which the writer instance sees effect table ``i``."""
+    return f"bigpanel_effect_{int(i)}"
+
+
+def writeback_joined_sql(view: str, joins: Sequence[Sequence[str]], carried: Sequence[str], names: Sequence[str]) -> str:
+    """The writer instance's residual rows: the streamed rows ``view`` joined to effect table
+    i on its key columns ``joins[i]``; output the ``carried`` columns, then the fitted value
+    xb + pe + the effects and the residual y minus it, named ``names``. The effect tables are
+    the hash tables built (the writer's join-order optimizers are off: the stream is not
+    counted in advance, and would otherwise be taken for the small side)."""
+    total = "r.xb + r.pe" + "".join(f" + t{i}.effect" for i in range(len(joins)))
+    items = [f"r.{c} AS {quote_ident(n)}" for c, n in zip(carried, names)]
+    items += [f"{total} AS {quote_ident(names[-2])}", f"r.y - ({total}) AS {quote_ident(names[-1])}"]
+    tables = "".join(f" JOIN {quote_ident(effect_view(i))} AS t{i} ON " + " AND ".join(f"r.{k} = t{i}.{k}" for k in keys)
+                     for i, keys in enumerate(joins))
+    return f"SELECT {', '.join(items)} FROM {quote_ident(view)} AS r{tables}"
+
+
+def all_rows_sql(view: str) -> str:
+    return f"SELECT * FROM {quote_ident(view)}"
+
+
+def copy_parquet_sql(select: str, path: str) -> str:
+    """The writer instance's one statement: the rows of ``select`` into a Parquet file."""
+    return f"COPY ({select}) TO {quote_literal(path)} (FORMAT parquet)"
