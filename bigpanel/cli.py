@@ -177,6 +177,10 @@ def fit_command(
     period_step: Annotated[Optional[int], _model_option("period_step")] = None,
     absorbed_levels: Annotated[LevelCount, _model_option("absorbed_levels")] = LevelCount(
         PARAMETERS["absorbed_levels"].default),
+    effects_tolerance: Annotated[Optional[float], _model_option("effects_tolerance")] = None,
+    effects_iterations: Annotated[Optional[int], _model_option("effects_iterations")] = None,
+    write_effects: Annotated[Optional[str], _model_option("write_effects")] = None,
+    write_residuals: Annotated[Optional[str], _model_option("write_residuals")] = None,
     table: TableOpt = None,
     query: QueryOpt = None,
     where: WhereOpt = None,
@@ -196,7 +200,9 @@ def fit_command(
         warnings.simplefilter("always", BigpanelWarning)
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
                      variance=variance.value if variance else None, cluster=cluster, intercept=False if no_intercept else None,
-                     period_step=period_step, absorbed_levels=absorbed_levels.value)
+                     period_step=period_step, absorbed_levels=absorbed_levels.value,
+                     effects_tolerance=effects_tolerance, effects_iterations=effects_iterations,
+                     write_effects=write_effects, write_residuals=write_residuals)
     for w in caught:  # each note once, on stderr (the table below leaves them out)
         if issubclass(w.category, BigpanelWarning):
             typer.echo(f"note: {w.message}", err=True)
