@@ -497,3 +497,17 @@ source = "text"
         np.testing.assert_allclose(x["estimate"], y["estimate"], rtol=1e-9)  # CSV text round-trips doubles to ~1e-15
         np.testing.assert_allclose(x["std_error"], y["std_error"], rtol=1e-9)
     assert [f["path"] for f in report.manifest["inputs"]["text"]] == [str(tmp_path / "depots.csv")]
+
+
+def test_effect_columns_are_checked_and_folders_read_relative_to_the_spec(depots, tmp_path, monkeypatch):
+    spec = write_spec(tmp_path, depots, '[models.a]\nregressors = ["staff_hours"]\neffects = ["depot", "month", "regon"]\n')
+    with pytest.raises(SpecError, match="model 'a', key 'effects': Column 'regon' not found in demo-depots. "
+                                        "Did you mean 'region'"):
+        bigpanel.run_spec(spec, out=tmp_path / "out")
+    spec = write_spec(tmp_path, depots, '[models.a]\nregressors = ["staff_hours"]\nwrite_effects = "effects"\n')
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    report = bigpanel.run_spec(spec, out=tmp_path / "out")
+    assert report.exit_code == 0 and (tmp_path / "effects" / "effect_depot.parquet").is_file()
+    assert not (elsewhere / "effects").exists()

@@ -142,7 +142,7 @@ def read_spec(path) -> tuple[RunSpec, list[str]]:
         if not isinstance(table, dict):
             problems.append(f"{label}, {where}: must be a table ([models.{name}]) of model keys.")
             continue
-        entry = _model(label, name, table, defaults, sources, model_keys, problems)
+        entry = _model(path, name, table, defaults, sources, model_keys, problems)
         if entry is not None:
             out.models[name] = entry
             out.broken.discard(name)
@@ -208,10 +208,11 @@ def _exists(path: str) -> bool:
     return os.path.exists(path)
 
 
-def _model(label: str, name: str, table: dict, defaults: dict, sources: dict, model_keys: tuple,
+def _model(spec_path: Path, name: str, table: dict, defaults: dict, sources: dict, model_keys: tuple,
            problems: list[str]) -> ModelEntry | None:
     from ..spec import FitSpec
 
+    label = spec_path.name
     where = _where("model", name)
     before = len(problems)
     unknown = [key for key in table if key not in model_keys]
@@ -246,6 +247,8 @@ def _model(label: str, name: str, table: dict, defaults: dict, sources: dict, mo
             continue
         try:
             params.check(key, merged[key])
+            if params.PARAMETERS[key].kind == "folder":  # a folder a fit writes: relative to the spec file too
+                merged[key] = _resolve(spec_path, merged[key])
             values[key] = merged[key]
         except InputError as exc:
             origin = "" if key in table else (" (from the source)" if key in source.shared else " (from [defaults])")
@@ -359,6 +362,9 @@ def _model_columns(label: str, m: ModelEntry, engine, numeric_expression) -> lis
     column("period", spec.period)
     for c in spec.cluster:
         column("cluster", c)
+    for e in spec.effects:
+        if e not in (spec.unit, spec.period):
+            column("effects", e)
     for term in spec.terms:
         if term.kind == "levels":
             column("regressors", term.expr)
