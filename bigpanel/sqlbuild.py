@@ -246,18 +246,20 @@ def _z(j: int) -> str:
 
 def design_rows_sql(
     source: str, unit: str, period: str, clusters: list[str], columns: list[tuple[str, int]], step: int,
-    period_sql: str | None = None,
+    period_sql: str | None = None, effects: Sequence[Sequence[str]] = (),
 ) -> str:
     """Select the unit, period, clusters and shifted design columns of every row.
 
     ``columns`` holds ``(expression, lag)`` pairs; a lag K reads the expression at
     period - K*step in the same unit (NULL when that period is absent); a negative K (a
     lead) reads it |K|*step periods later. ``period_sql``: the period as a slot on its
-    regular grid (:func:`period_slot_sql`) instead of the column.
+    regular grid (:func:`period_slot_sql`) instead of the column. ``effects``: the key
+    columns of each absorbed effect (many effects, :mod:`bigpanel.sweeps`), as k_e<i>_<m>.
     """
     period_sql = period_sql or quote_ident(period)
     items = [f"{quote_ident(unit)} AS k_unit", f"{period_sql} AS k_period"]
     items += [f"{quote_ident(c)} AS k_c{i}" for i, c in enumerate(clusters)]
+    items += [f"{quote_ident(c)} AS {name}" for e, keys in enumerate(effects) for c, name in zip(keys, effect_keys(e, len(keys)))]
     for j, (expr, lag) in enumerate(columns):
         value = f"CAST(({expr}) AS DOUBLE)"
         if lag:
@@ -278,6 +280,46 @@ def differenced_rows_sql(rows: str, n_clusters: int, q: int, streaming: bool = F
     diffs = ", ".join(f"{_z(j)} - lag({_z(j)}) OVER w AS {_z(j)}" for j in range(q))
     window = "" if streaming else "PARTITION BY k_unit ORDER BY k_period"
     return render("differenced_rows", rows=f"({rows})", keys=", ".join(keys), diffs=diffs, window=window)
+
+
+def effect_keys(effect: int, n_columns: int) -> list[str]:
+    """The names of an absorbed effect's key columns in the design rows."""
+    return [f"k_e{effect}_{m}" for m in range(n_columns)]
+
+
+def keys_present(keys: Sequence[str]) -> str:
+    """Every key column has a value (rows without an effect's level are not used)."""
+    return " AND ".join(f"{k} IS NOT NULL" for k in keys)
+
+
+def effect_levels_sql(rows: str, keys: Sequence[str], missing: bool = False) -> str:
+    """The distinct levels of ``keys`` over the design rows, in sort order: row i is level
+    i in :func:`effect_rows_sql`. ``missing``: a row without a value is a level too
+    (clusters); else such rows have no level (effects: they are not used)."""
+    cols = ", ".join(keys)
+    return render("effect_levels", rows=f"({rows})", keys=cols, present="true" if missing else keys_present(keys))
+
+
+def effect_rows_sql(rows: str, valid: str, effects: Sequence[Sequence[str]], clusters: Sequence[Sequence[str]], q: int,
+                    keep: Sequence[str] = ()) -> str:
+    """The used rows (design rows ``rows`` where ``valid``) with a compact level index per
+    effect (``i<e>``, INTEGER) and per cluster set (``g<c>``; a set of two columns is their
+    intersection), the design columns z<j> and the ``keep`` columns, numbered as
+    :func:`effect_levels_sql` numbers them."""
+    levels, columns, joins = [], [], []
+    for name, keys, missing in ([(f"i{e}", k, False) for e, k in enumerate(effects)]
+                                + [(f"g{c}", k, True) for c, k in enumerate(clusters)]):
+        table = f"l_{name}"
+        cols = ", ".join(keys)
+        present = "true" if missing else keys_present(keys)
+        levels.append(f", {table} AS (SELECT {cols}, CAST(row_number() OVER (ORDER BY {cols}) - 1 AS INTEGER) AS i "
+                      f"FROM (SELECT DISTINCT {cols} FROM design WHERE {present}) AS d)")
+        equal = " IS NOT DISTINCT FROM " if missing else " = "
+        joins.append(f" JOIN {table} ON " + " AND ".join(f"used.{k}{equal}{table}.{k}" for k in keys))
+        columns.append(f"{table}.i AS {name}")
+    columns += [f"used.{_z(j)}" for j in range(q)] + [f"used.{k}" for k in keep]
+    return render("effect_rows", rows=rows, valid=valid, levels="".join(levels), columns=", ".join(columns),
+                  joins="".join(joins))
 
 
 def valid_predicate(q: int, differenced: bool, step: int) -> str:
@@ -375,8 +417,10 @@ def stream_rows_sql(used: str, q: int) -> str:
     return f"SELECT k_unit, k_period, {', '.join(_z(j) for j in range(q))} FROM ({used}) AS r"
 
 
-def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dialect = DUCKDB) -> str:
-    finite = " AND ".join(f"{dialect.is_finite(_z(j))}" for j in range(q))
+def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dialect = DUCKDB,
+                   required: Sequence[str] = ()) -> str:
+    """Rows by reason; ``required``: key columns (absorbed effects') whose missing value drops a row."""
+    finite = " AND ".join([f"{dialect.is_finite(_z(j))}" for j in range(q)] + [f"{k} IS NOT NULL" for k in required])
     usable = f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)} AND " if differenced else ""
     counts = ["count(*) AS n_rows",
               f"count(*) FILTER (WHERE k_unit IS NULL OR ({usable}NOT coalesce({finite}, false))) AS missing"]
@@ -864,3 +908,81 @@ def grouping_id(keys: Sequence[str], grouped: Sequence[str]) -> int:
     for key in keys:
         out = (out << 1) | (0 if key in grouped else 1)
     return out
+
+
+# ---------------------------------------------------------------- write-back (bigpanel.writeback)
+# The rows of the fit's sample (``used``, design columns unshifted: $s_j = 0, $d_j = 1, the
+# period column carried as k_c0) with the estimates as parameters: $b_j per design column,
+# $b_one the intercept, ($t_i, $g_i) the periods' effects.
+
+WRITE_VIEW = "bigpanel_rows"  # the name under which the writer instance sees the streamed rows
+# The writer joins streamed rows (not counted in advance: DuckDB guesses one row) to effect
+# tables; with these optimizers on it built its hash table from the stream (20M rows: 2.5 GB),
+# off it builds from the effect tables and streams the rows through (0.28 GB).
+WRITER_OPTIMIZERS = ("disabled_optimizers", "join_order,build_side_probe_side")
+
+
+def writeback_parts_sql(used: str, q: int, slopes: Sequence[int], effect_columns: Sequence[int], n_periods: int,
+                        intercept: bool, keys: Sequence[str] = ()) -> str:
+    """CTEs ``used`` and ``parts``: per used row k_unit, k_period, k_c0 (the period as the
+    source has it), the effects' key columns ``keys``, the outcome y, xb = sum of $b_j z_j
+    over ``slopes`` (+ $b_one) and pe = sum of $b_j z_j over ``effect_columns`` plus the
+    row's period effect $g_i (joined on $t_i; 0 for a period not listed)."""
+    xb = " + ".join([f"$b{int(j)} * r.{_z(j)}" for j in slopes] + (["$b_one"] if intercept else [])) or "0.0"
+    pe = " + ".join([f"$b{int(j)} * r.{_z(j)}" for j in effect_columns]
+                    + (["coalesce(pe.g, 0.0)"] if n_periods else [])) or "0.0"
+    carried = "".join(f"r.{k}, " for k in keys)
+    return (f"used AS ({used}),\nparts AS (SELECT r.k_unit, r.k_period, r.k_c0, {carried}r.{_z(q - 1)} AS y, {xb} AS xb, "
+            f"{pe} AS pe FROM used AS r {period_join_sql(n_periods, 0)})")
+
+
+def writeback_periods_sql(parts: str) -> str:
+    """Per period: its value as the source has it, its rows and its effect (the mean of pe)."""
+    return (f"WITH {parts}\nSELECT k_period, any_value(k_c0) AS shown, count(*) AS n, {DUCKDB.compensated}(pe) / count(*) "
+            "AS effect FROM parts GROUP BY k_period ORDER BY k_period")
+
+
+def writeback_period_links_sql(used: str) -> str:
+    """Each unit's first period beside each of its periods (distinct pairs): the links that
+    make periods one connected group."""
+    return ("SELECT DISTINCT first_period, k_period FROM (SELECT k_period, min(k_period) OVER (PARTITION BY k_unit) "
+            f"AS first_period FROM ({used}) AS r) AS l")
+
+
+def writeback_unit_effects_sql(parts: str) -> str:
+    """Per unit (k_unit, effect, n_rows), in unit order: the mean of y - xb - pe."""
+    return (f"WITH {parts}\nSELECT k_unit, {DUCKDB.compensated}(y - xb - pe) / count(*) AS effect, "
+            "count(*) AS n_rows FROM parts GROUP BY k_unit ORDER BY k_unit")
+
+
+def writeback_rows_sql(parts: str, carried: Sequence[str]) -> str:
+    """The rows streamed to the writer instance: the ``carried`` key columns, y, xb and pe."""
+    return f"WITH {parts}\nSELECT {', '.join(carried)}, y, xb, pe FROM parts"
+
+
+def effect_view(i: int) -> str:
+    """The name under which the writer instance sees effect table ``i``."""
+    return f"bigpanel_effect_{int(i)}"
+
+
+def writeback_joined_sql(view: str, joins: Sequence[Sequence[str]], carried: Sequence[str], names: Sequence[str]) -> str:
+    """The writer instance's residual rows: the streamed rows ``view`` joined to effect table
+    i on its key columns ``joins[i]``; output the ``carried`` columns, then the fitted value
+    xb + pe + the effects and the residual y minus it, named ``names``. The effect tables are
+    the hash tables built (the writer's join-order optimizers are off: the stream is not
+    counted in advance, and would otherwise be taken for the small side)."""
+    total = "r.xb + r.pe" + "".join(f" + t{i}.effect" for i in range(len(joins)))
+    items = [f"r.{c} AS {quote_ident(n)}" for c, n in zip(carried, names)]
+    items += [f"{total} AS {quote_ident(names[-2])}", f"r.y - ({total}) AS {quote_ident(names[-1])}"]
+    tables = "".join(f" JOIN {quote_ident(effect_view(i))} AS t{i} ON " + " AND ".join(f"r.{k} = t{i}.{k}" for k in keys)
+                     for i, keys in enumerate(joins))
+    return f"SELECT {', '.join(items)} FROM {quote_ident(view)} AS r{tables}"
+
+
+def all_rows_sql(view: str) -> str:
+    return f"SELECT * FROM {quote_ident(view)}"
+
+
+def copy_parquet_sql(select: str, path: str) -> str:
+    """The writer instance's one statement: the rows of ``select`` into a Parquet file."""
+    return f"COPY ({select}) TO {quote_literal(path)} (FORMAT parquet)"
