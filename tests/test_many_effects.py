@@ -394,3 +394,19 @@ def test_the_same_numbers_on_any_thread_count(panel):
         out.pop("run")
         texts.append(str(out))
     assert texts[0] == texts[1]
+
+
+def test_terms_the_effects_explain_are_left_out_by_name(panel, tmp_path):
+    # Common practice (ESTIMATION.md: effects take priority): a term constant within
+    # workers, and one that is a firm value plus a year trend, lie in the effects' span.
+    df, _ = panel
+    df = df.assign(worker_kind=(df.worker % 7) * 1.3, firm_year=df.firm * 0.5 + df.year * 0.1)
+    path = write_parquet(df, tmp_path / "spanned.parquet")
+    res = bigpanel.fit(path, "y", "x1, worker_kind, firm_year, x2", "worker", "year", effects="worker,firm,year",
+                       variance="homoskedastic")
+    assert [c.term for c in res.coefficients] == ["x1", "x2"]
+    assert res.terms_dropped == {"worker_kind": "no variation left once the effects are absorbed",
+                                 "firm_year": "no variation left once the effects are absorbed"}
+    plain = bigpanel.fit(path, "y", "x1, x2", "worker", "year", effects="worker,firm,year", variance="homoskedastic")
+    np.testing.assert_allclose([c.estimate for c in res.coefficients], [c.estimate for c in plain.coefficients],
+                               rtol=1e-9)
