@@ -189,7 +189,7 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         if est.constant:
             zero_var[k - 1] = False
         for j in np.flatnonzero(zero_var):
-            terms_dropped[labels[j]] = "no variation within units"
+            terms_dropped[labels[j]] = est.no_variation
     sol = solve_normal(h, g, zero_variation=zero_var, first=np.array(is_effect[:k], dtype=bool))
     for j in np.flatnonzero(~sol.kept & ~zero_var):
         terms_dropped[labels[j]] = "collinear with the period effects" if sol.by_first[j] else "collinear with other terms"

@@ -62,6 +62,7 @@ class Estimator:
     absorbs_units = False  # unit effects absorbed: counted in the df, scores demeaned
     demeaned_retry = False  # redo the pass with unit means subtracted when digits cancel
     checks_variation = False  # terms without variation within units are dropped by name
+    no_variation = "no variation within units"  # why such a term was left out
     r2_kind = ""
     expands = False  # the unit-cluster meat can be expanded in the first pass
     shares = False  # the first request can be served by a shared scan (bigpanel.plan)
