@@ -217,6 +217,23 @@ def test_fit_many_writes_each_models_files(tmp_path, panel, source):
     np.testing.assert_allclose(both["residual"], both["ref"], rtol=0, atol=TOL)
 
 
+def test_spec_file_writes_relative_to_itself(tmp_path, panel, source):
+    """A spec file's model takes write_residuals too, relative to the spec file like its
+    source path (statsmodels LSDV as the reference)."""
+    spec = tmp_path / "jobs" / "spec.toml"
+    spec.parent.mkdir()
+    spec.write_text(f'[source]\npath = "{source}"\nunit = "unit"\nperiod = "period"\n\n'
+                    '[models.main]\noutcome = "y"\nregressors = ["x1", "x2"]\nwrite_residuals = "rows"\n')
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        done = bigpanel.run_spec(spec, tmp_path / "run")
+    assert done.exit_code == 0
+    res = _read(tmp_path / "jobs" / "rows" / "residuals.parquet")
+    ols = _dummy_ols(panel, ["unit"])
+    both = panel.assign(ref=ols.resid).merge(res, on=["unit", "period"], validate="one_to_one")
+    np.testing.assert_allclose(both["residual"], both["ref"], rtol=0, atol=TOL)
+
+
 def _digest(folder: Path) -> dict:
     return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
             for p in sorted(folder.rglob("*")) if p.is_file()}
