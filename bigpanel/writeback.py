@@ -324,7 +324,7 @@ def _pair_groups(copy, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
         pairs = np.unique(labels[chunk[f"i{a}"].astype(np.int64)] * n + labels[la + chunk[f"i{b}"].astype(np.int64)])
         graph = coo_matrix((np.ones(len(pairs), dtype=np.int8), (pairs // n, pairs % n)), shape=(n, n))
         _, component = connected_components(graph, directed=False)
-        labels = component[labels]
+        labels = component[labels].astype(np.int64)  # int32 from scipy: label * n must not overflow
     return labels[:la], labels[la:]
 
 

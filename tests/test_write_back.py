@@ -396,6 +396,33 @@ def test_many_effects_disconnected_firms_centred_per_group(tmp_path):
     np.testing.assert_allclose(res["fitted"], res["ref"], rtol=0, atol=TOL)
 
 
+def test_groups_of_many_levels_read_in_chunks():
+    """The connected groups of two effects' levels, read chunk by chunk, against scipy's
+    connected_components on the whole graph at once; 120,000 levels, so that label * levels
+    passes 2**31 (a 32-bit product overflowed at this size)."""
+    from types import SimpleNamespace
+
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    from bigpanel.writeback import _pair_groups
+
+    rng = np.random.default_rng(4)
+    n_a, n_b, n_rows = 120_000, 400, 300_000
+    a = np.sort(rng.integers(0, n_a, n_rows)).astype(np.int32)  # sorted, as by unit: later chunks' levels unseen at first
+    b = (a // 200 + rng.integers(0, 2, n_rows) * (rng.random(n_rows) < 0.01)).astype(np.int32) % n_b
+    chunks = [{"i0": a[i:i + 40_000], "i1": b[i:i + 40_000]} for i in range(0, n_rows, 40_000)]
+    copy = SimpleNamespace(n_levels=[n_a, n_b], store=SimpleNamespace(chunks=lambda names: iter(chunks)))
+    hub, own = _pair_groups(copy, 0, 1)
+    graph = coo_matrix((np.ones(n_rows), (a.astype(np.int64), n_a + b.astype(np.int64))), shape=(n_a + n_b,) * 2)
+    _, whole = connected_components(graph, directed=False)
+    labels = np.r_[hub, own]
+    seen = np.r_[np.bincount(a, minlength=n_a) > 0, np.bincount(b, minlength=n_b) > 0]
+    # the same partition of the levels with rows: equal labels exactly when scipy's are equal
+    pairs = set(zip(labels[seen].tolist(), whole[seen].tolist()))
+    assert len(pairs) == len(set(labels[seen].tolist())) == len(set(whole[seen].tolist()))
+
+
 def test_cell_effect_written_with_both_columns(tmp_path):
     from test_many_effects import worker_panel
 
