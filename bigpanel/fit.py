@@ -303,6 +303,7 @@ def written(executor: Executor, est: estimators.Estimator, design: Design, resul
     spec = est.spec
     if not (spec.write_effects or spec.write_residuals):
         return result
+    spec = writeback.checked(spec, executor.engine.source)  # again for callers that did not check (spec files)
     return replace(result, written=writeback.write(executor, est, design, spec, executor.estimates))
 
 

@@ -22,7 +22,7 @@ import re
 import tomllib
 from collections.abc import Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from .. import params
@@ -144,6 +144,10 @@ def read_spec(path) -> tuple[RunSpec, list[str]]:
             continue
         entry = _model(path, name, table, defaults, sources, model_keys, problems)
         if entry is not None:
+            folders = {k: _resolve(path, getattr(entry.spec, k)) for k in ("write_effects", "write_residuals")
+                       if getattr(entry.spec, k)}  # written-back folders, like paths, relative to the spec file
+            if folders:
+                entry = replace(entry, spec=replace(entry.spec, **folders))
             out.models[name] = entry
             out.broken.discard(name)
     return out, problems
