@@ -177,6 +177,9 @@ def fit_command(
     period_step: Annotated[Optional[int], _model_option("period_step")] = None,
     absorbed_levels: Annotated[LevelCount, _model_option("absorbed_levels")] = LevelCount(
         PARAMETERS["absorbed_levels"].default),
+    weights: Annotated[Optional[str], _model_option("weights")] = None,
+    endogenous: Annotated[Optional[str], _model_option("endogenous")] = None,
+    instruments: Annotated[Optional[str], _model_option("instruments")] = None,
     table: TableOpt = None,
     query: QueryOpt = None,
     where: WhereOpt = None,
@@ -196,7 +199,8 @@ def fit_command(
         warnings.simplefilter("always", BigpanelWarning)
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
                      variance=variance.value if variance else None, cluster=cluster, intercept=False if no_intercept else None,
-                     period_step=period_step, absorbed_levels=absorbed_levels.value)
+                     period_step=period_step, absorbed_levels=absorbed_levels.value, weights=weights,
+                     endogenous=endogenous, instruments=instruments)
     for w in caught:  # each note once, on stderr (the table below leaves them out)
         if issubclass(w.category, BigpanelWarning):
             typer.echo(f"note: {w.message}", err=True)

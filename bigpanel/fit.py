@@ -31,6 +31,7 @@ from .plan import ScanPlan, member_params, prefill
 from .results import FitResult
 from .source import Engine, Session, as_source
 from .spec import FitSpec
+from .weights import check_weights
 
 CANCELLATION_LIMIT = 1e6  # raw/transformed sum of squares above which one pass loses > 6 digits
 
@@ -54,6 +55,9 @@ def fit(
     engine: Engine | None = None,
     csv_nulls=None,
     absorbed_levels: str | None = None,
+    weights: str | None = None,
+    endogenous=None,
+    instruments=None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
@@ -95,9 +99,19 @@ def fit(
         As in :func:`bigpanel.open_source`.
     csv_nulls : str or list of str, optional
         Extra CSV tokens read as missing (``"NA,."``); empty fields always are.
+    weights : str, optional
+        Column of analytic weights (finite, at least 0) for every estimator and variance:
+        weighted sums, weighted unit means; rows of weight 0 are left out and counted in
+        ``rows_dropped["zero_weight"]``; a first difference takes its later row's weight.
+        A negative, missing or non-finite weight is an error naming a few rows.
+    endogenous, instruments : str or list of str, optional
+        Two-stage least squares: the instrumented terms and the excluded instruments
+        (written like the regressors, ``lag()`` included; at least as many instruments as
+        endogenous terms). The result lists ``instrumented`` terms and, per endogenous
+        term, the first-stage F of the excluded instruments under the chosen variance.
     """
     spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step,
-                         absorbed_levels)
+                         absorbed_levels, weights, endogenous, instruments)
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     notes = Notes([])
     try:
@@ -229,6 +243,8 @@ def emit(notes: Notes, stacklevel: int) -> None:
 def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators.Estimator, Design]:
     """The estimator and its design (checked against the schema; no rows read but
     ``levels()`` values)."""
+    if spec.weights:
+        check_weights(executor, spec.weights)
     design = build_design(executor, spec)
     for msg in design.notes:
         notes.add(BigpanelWarning, msg)
@@ -236,7 +252,7 @@ def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators
     executor.use_periods(spec.needs_order or isinstance(est, estimators.UnitPeriod))
     design = est.extend_design(executor, design)
     if spec.needs_order:
-        if any(t.kind == "lag" for t in spec.terms):
+        if any(t.kind == "lag" for t in spec.all_terms):
             executor.duplicates(only_if_any=True)
     else:  # within and pooled keep duplicate keys' rows: say so
         note = executor.duplicate_note()
@@ -250,7 +266,7 @@ def estimate(executor: Executor, spec: FitSpec, notes: Notes) -> FitResult:
     executor.notes = []
     est, design = prepare(executor, spec, notes)
     rows = est.rows(design)
-    shifts, scales = executor.shifts(design.sql_columns)
+    shifts, scales = executor.shifts(design.sql_columns, rows.weight)
     if not est.shifted():
         shifts = np.zeros(design.q)
     params = scaled_params(shifts, scales)

@@ -15,9 +15,10 @@ __all__ = ["Equations", "Estimator", "FirstDifference", "Pooled", "UnitPeriod", 
 
 def select(spec: FitSpec, engine) -> Estimator:
     """The estimator for ``spec`` (unit and period effects on whole-number periods take
-    the exact two-way path; on other periods, indicator columns inside within)."""
+    the exact two-way path; on other periods, and in weighted fits, whose presence
+    patterns would need each unit's weights, indicator columns inside within)."""
     if spec.estimator == "within":
-        if spec.period_effects and integer_period(engine, spec):
+        if spec.period_effects and not spec.weights and integer_period(engine, spec):
             return UnitPeriod(spec)
         return Within(spec)
     if spec.estimator == "first-difference":
