@@ -293,3 +293,16 @@ def test_report_and_json_mark_instrumented_terms(panel):
     stage = out["first_stage"][0]
     assert stage["term"] == "xe" and stage["f_stat"] == pytest.approx(res.first_stage[0].f_stat)
     assert [c["term"] for c in out["coefficients"]] == ["x1", "xe"]
+
+
+def test_command_line_options(panel, capsys):
+    # the options come from the parameter table: the command line gives the API's result
+    _, path = panel
+    code = main(["fit", path, "--outcome", "y", "--regressors", "x1", "--unit", "unit", "--period", "period",
+                 "--endogenous", "xe", "--instruments", "z1, z2", "--weights", "w", "--json"])
+    assert code == 0
+    out = json.loads(capsys.readouterr().out)
+    api = bigpanel.fit(path, "y", ["x1"], "unit", "period", endogenous="xe", instruments="z1, z2", weights="w")
+    assert out["instrumented"] == ["xe"] and out["weights"] == "w"
+    assert out["coefficients"][1]["estimate"] == pytest.approx(api.coef("xe").estimate, rel=1e-12)
+    assert out["first_stage"][0]["f_stat"] == pytest.approx(api.first_stage[0].f_stat, rel=1e-12)
