@@ -28,6 +28,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
+from . import moments
 from .errors import BigpanelWarning, EstimationError, echo
 from .requests import Rows
 from .solve import Solution, solve_normal
@@ -119,6 +120,28 @@ def two_stage(total: np.ndarray, endogenous: list[int], excluded: list[int], zer
     return sol, TwoStage(pi, list(endogenous), list(excluded), z_kept, dropped)
 
 
+def _stage_sums(row: dict, k: int, outcome: int, cols: list) -> dict:
+    """The expansion sums of a first stage (moments.expanded_meat with pilot 0: rr, rb, bb)
+    from those of the fit: every one is a sum over units of products of two entries of the
+    unit's transformed cross-product (bb), whose first-stage outcome ``outcome`` is one of
+    the fit's columns. ``cols``: the fit's column behind each first-stage column (None:
+    the fit's outcome, whose first-stage coefficient is 0 and whose meat row is not used)."""
+    pos = {p: u for u, p in enumerate(moments.pairs(k))}
+
+    def bb(a, b, c, d) -> float:
+        if None in (a, b, c, d):
+            return 0.0
+        u, v = sorted((pos[(min(a, b), max(a, b))], pos[(min(c, d), max(c, d))]))
+        return row[f"bb{u}_{v}"] or 0.0
+
+    stage = moments.pairs(k)
+    out = {f"rr{j}_{m}": bb(cols[j], outcome, cols[m], outcome) for j in range(k) for m in range(j, k)}
+    out.update({f"rb{j}_{a}_{b}": bb(cols[j], outcome, cols[a], cols[b]) for j in range(k) for a, b in stage})
+    out.update({f"bb{u}_{v}": bb(cols[a], cols[b], cols[c], cols[d]) for u, (a, b) in enumerate(stage)
+                for v, (c, d) in enumerate(stage) if v >= u})
+    return out
+
+
 def _quoted(label: str) -> str:
     return f"'{echo(label, 60)}'"
 
@@ -137,6 +160,11 @@ def first_stages(choose_variance, wald, est, executor, design, rows: Rows, param
         design_perm = [j for j in range(kx) if j != e] + [kx, e]  # design columns (outcome at kx)
         total = eq.total[np.ix_(perm, perm)]
         stage_eq = replace(eq, total=total, raw_diag=eq.raw_diag[perm], expansion=None, pilot=None)
+        if eq.expansion is not None:  # the unit-cluster meat of the first stage from the first pass's sums
+            k_s = len(eq.pilot)
+            cols = [j if j < k else None for j in perm[:k_s]]  # the outcome has no entries there (coefficient 0)
+            stage_eq = replace(stage_eq, expansion=[_stage_sums(r, k_s, e, cols) for r in eq.expansion],
+                               pilot=np.zeros(k_s))
         zero = np.array([not iv.instrument_kept[j] if j < k else True for j in perm[:-1]])
         first = np.array([j < k and is_effect[j] for j in perm[:-1]]) & ~zero
         sol = solve_normal(total[:k, :k], total[:k, k], zero_variation=zero, first=first)

@@ -306,3 +306,27 @@ def test_command_line_options(panel, capsys):
     assert out["instrumented"] == ["xe"] and out["weights"] == "w"
     assert out["coefficients"][1]["estimate"] == pytest.approx(api.coef("xe").estimate, rel=1e-12)
     assert out["first_stage"][0]["f_stat"] == pytest.approx(api.first_stage[0].f_stat, rel=1e-12)
+
+
+def test_unit_cluster_first_stage_from_the_first_pass(panel, monkeypatch):
+    # within, unit clusters, a small model: the 2SLS meat and every first stage's meat come
+    # from the first pass's per-unit sums (no score pass); the same F and errors as the
+    # score passes give when that expansion is switched off. Reference for both: the
+    # parametrized comparison with numpy above; here the two paths are compared.
+    import importlib
+
+    from bigpanel.execute import Executor
+
+    _, path = panel
+    kinds = []
+    original = Executor.meats
+    monkeypatch.setattr(Executor, "meats", lambda self, request, *a: kinds.append(request.kind) or original(self, request, *a))
+    one = bigpanel.fit(path, "y", ["x1"], "unit", "period", endogenous="xe, xf", instruments="z1, z2, z3")
+    assert kinds == []
+    monkeypatch.setattr(importlib.import_module("bigpanel.fit"), "MAX_EXPANDED", 0)
+    two = bigpanel.fit(path, "y", ["x1"], "unit", "period", endogenous="xe, xf", instruments="z1, z2, z3")
+    assert kinds == ["units"] * 3  # the fit's meat and one per endogenous term
+    for a, b in zip(one.first_stage, two.first_stage):
+        assert a.f_stat == pytest.approx(b.f_stat, rel=1e-10)
+    for a, b in zip(one.coefficients, two.coefficients):
+        assert a.std_error == pytest.approx(b.std_error, rel=1e-10)
