@@ -330,3 +330,29 @@ def test_unit_cluster_first_stage_from_the_first_pass(panel, monkeypatch):
         assert a.f_stat == pytest.approx(b.f_stat, rel=1e-10)
     for a, b in zip(one.coefficients, two.coefficients):
         assert a.std_error == pytest.approx(b.std_error, rel=1e-10)
+
+
+def test_two_way_clusters_and_fit_many(panel):
+    # two-way clusters (unit, period) on the within 2SLS fit, dummy-variable K' for every
+    # component. Reference: statsmodels sandwich_covariance.cov_cluster_2groups fed the
+    # IV2SLS fit's X^ u and (X^'X^)^-1. Then fit_many: an instrumented model runs alone and
+    # equals its own fit.
+    df, path = panel
+    used, dum = _prepare(df, "within", ["y", "x1", "xe", "z1", "z2"], False)
+    x = np.hstack([used[["x1", "xe"]].to_numpy(), dum])
+    z = np.hstack([used[["x1", "z1", "z2"]].to_numpy(), dum])
+    iv = IV2SLS(used["y"].to_numpy(), x, z).fit()
+    scores = iv.model.exog_hat if hasattr(iv.model, "exog_hat") else iv.exog_hat
+    pair = (scores * iv.resid[:, None], np.linalg.inv(scores.T @ scores))
+    ref = sw.cov_cluster_2groups(pair, pd.factorize(used["unit"])[0], pd.factorize(used["period"])[0])[0]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = bigpanel.fit(path, "y", ["x1"], "unit", "period", endogenous="xe", instruments="z1, z2",
+                           cluster="unit,period", absorbed_levels="all")
+    np.testing.assert_allclose([res.coef(t).std_error for t in ("x1", "xe")], np.sqrt(np.diag(ref))[:2], rtol=TOL)
+    models = [dict(outcome="y", regressors="x1", endogenous="xe", instruments="z1, z2"), dict(outcome="y", regressors="x1, xe")]
+    out = bigpanel.fit_many(path, models, "unit", "period")
+    alone = bigpanel.fit(path, "y", ["x1"], "unit", "period", endogenous="xe", instruments="z1, z2")
+    assert out[0].coef("xe").estimate == pytest.approx(alone.coef("xe").estimate, rel=1e-12)
+    assert out[0].first_stage[0].f_stat == pytest.approx(alone.first_stage[0].f_stat, rel=1e-10)
+    assert out[1].instrumented == ()
