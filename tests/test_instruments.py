@@ -356,3 +356,12 @@ def test_two_way_clusters_and_fit_many(panel):
     assert out[0].coef("xe").estimate == pytest.approx(alone.coef("xe").estimate, rel=1e-12)
     assert out[0].first_stage[0].f_stat == pytest.approx(alone.first_stage[0].f_stat, rel=1e-10)
     assert out[1].instrumented == ()
+
+
+def test_many_effects_refuse_instruments(panel):
+    # iterative absorption of effects beyond the unit and the period does not take
+    # instruments yet: refused by name
+    df, _ = panel
+    with pytest.raises(InputError, match=r"^Option 'effects' names effects beyond .* 'endogenous' and 'instruments' yet"):
+        bigpanel.fit(df.assign(g=df["unit"] % 4), "y", ["x1"], "unit", "period", effects="unit,g", endogenous="xe",
+                     instruments="z1")

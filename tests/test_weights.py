@@ -228,3 +228,13 @@ def test_weights_through_fit_many(generated):
     assert out[0].coef("x1").estimate == pytest.approx(alone.coef("x1").estimate, rel=1e-12)
     assert out[0].coef("x1").std_error == pytest.approx(alone.coef("x1").std_error, rel=1e-10)
     assert out[1].weights == "" and out[0].weights == "w"
+
+
+def test_weights_refused_where_not_supported_yet(generated, tmp_path):
+    # many effects (iterative absorption) and written-back effects do not take weights yet:
+    # one sentence naming the options (the house rule), before any row is read
+    df, path = generated
+    with pytest.raises(InputError, match=r"^Option 'effects' names effects beyond the unit and the period .* 'weights' yet"):
+        bigpanel.fit(path, "y", ["x1"], "unit", "period", effects="unit,region", weights="w")
+    with pytest.raises(InputError, match=r"^Options 'write_effects' and 'write_residuals' do not take 'weights' yet"):
+        bigpanel.fit(path, "y", ["x1"], "unit", "period", weights="w", write_effects=str(tmp_path / "out"))
