@@ -232,9 +232,9 @@ class FitSpec:
         if spec.many_effects and (weights is not None or endog):
             given = "'weights'" if not endog else ("'endogenous' and 'instruments'" if weights is None
                                                     else "'weights', 'endogenous' and 'instruments'")
-            raise InputError(f"Option 'effects' names effects beyond the unit and the period ({echo(', '.join(eff))}), whose "
-                             f"iterative absorption does not take {given} yet; absorb the unit and the period only, or "
-                             "leave those options out.")
+            raise InputError(f"Option 'effects' names effects beyond the unit and the period ({echo(', '.join(eff))}), "
+                             f"which are removed by iteration, and that path does not take {given} yet; keep to unit and "
+                             "period effects, or leave those options out.")
         return spec
 
     @property

@@ -234,7 +234,7 @@ def test_weights_refused_where_not_supported_yet(generated, tmp_path):
     # many effects (iterative absorption) and written-back effects do not take weights yet:
     # one sentence naming the options (the house rule), before any row is read
     df, path = generated
-    with pytest.raises(InputError, match=r"^Option 'effects' names effects beyond the unit and the period .* 'weights' yet"):
+    with pytest.raises(InputError, match=r"^Option 'effects' names effects beyond the unit and the period .* does not take 'weights' yet"):
         bigpanel.fit(path, "y", ["x1"], "unit", "period", effects="unit,region", weights="w")
     with pytest.raises(InputError, match=r"^Options 'write_effects' and 'write_residuals' do not take 'weights' yet"):
         bigpanel.fit(path, "y", ["x1"], "unit", "period", weights="w", write_effects=str(tmp_path / "out"))
