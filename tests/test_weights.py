@@ -238,3 +238,25 @@ def test_weights_refused_where_not_supported_yet(generated, tmp_path):
         bigpanel.fit(path, "y", ["x1"], "unit", "period", effects="unit,region", weights="w")
     with pytest.raises(InputError, match=r"^Options 'write_effects' and 'write_residuals' do not take 'weights' yet"):
         bigpanel.fit(path, "y", ["x1"], "unit", "period", weights="w", write_effects=str(tmp_path / "out"))
+
+
+def test_spec_file_takes_weights_and_instruments(generated, tmp_path):
+    # the options come from the parameter table, so a spec file takes them too: each
+    # model's saved JSON equals its own fit (itself checked against statsmodels above)
+    df, path = generated
+    df = df.assign(z=df["x1"] + np.random.default_rng(14).normal(size=len(df)))
+    source = write_parquet(df, tmp_path / "panel.parquet")
+    spec = tmp_path / "spec.toml"
+    spec.write_text(f'[source]\npath = "{source}"\nunit = "unit"\nperiod = "period"\n\n'
+                    '[models.weighted]\noutcome = "y"\nregressors = "x1, x2"\nweights = "w"\n\n'
+                    '[models.instrumented]\noutcome = "y"\nregressors = "x2"\nendogenous = "x1"\ninstruments = "z"\n')
+    report = bigpanel.run_spec(spec, out=tmp_path / "run")
+    assert report.exit_code == 0
+    saved = {name: json.loads((tmp_path / "run" / "models" / f"{name}.json").read_text())
+             for name in ("weighted", "instrumented")}
+    weighted = bigpanel.fit(source, "y", "x1, x2", "unit", "period", weights="w")
+    instrumented = bigpanel.fit(source, "y", "x2", "unit", "period", endogenous="x1", instruments="z")
+    assert saved["weighted"]["weights"] == "w"
+    assert saved["weighted"]["coefficients"][0]["estimate"] == pytest.approx(weighted.coef("x1").estimate, rel=1e-12)
+    assert saved["instrumented"]["instrumented"] == ["x1"]
+    assert saved["instrumented"]["coefficients"][1]["estimate"] == pytest.approx(instrumented.coef("x1").estimate, rel=1e-12)
