@@ -91,6 +91,15 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("write_residuals", "folder", "Folder to write residuals.parquet into: each used row's keys, fitted value and "
           "residual; within and first-difference fits.",
           empty="Give a folder outside the source's folders."),
+    Param("weights", "column", "Column of analytic weights (finite, at least 0): every sum and variance is weighted, unit "
+          "means are weighted means, rows of weight 0 are left out and counted; a first difference takes the weight of "
+          "its later row."),
+    Param("endogenous", "terms", "Regressors to instrument, written like the regressors (columns, expressions, lag(), "
+          "lead()); they join the regressors and are estimated by two-stage least squares. Needs --instruments.",
+          empty="Give at least one endogenous term, separated by commas."),
+    Param("instruments", "terms", "Excluded instruments for the endogenous terms, written like the regressors; at least "
+          "as many as endogenous terms. The regressors instrument themselves.",
+          empty="Give at least one instrument, separated by commas."),
 )}
 
 MODEL_KEYS = tuple(PARAMETERS)

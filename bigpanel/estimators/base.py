@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .. import moments
+from .. import moments, sqlbuild
 from ..design import Design
 from ..requests import CrossProducts, Rows
 from ..spec import FitSpec
@@ -75,7 +75,8 @@ class Estimator:
         return design
 
     def rows(self, design: Design) -> Rows:
-        return Rows(design.sql_columns, tuple(self.spec.cluster), self.differenced)
+        weight = sqlbuild.quote_ident(self.spec.weights) if self.spec.weights else None
+        return Rows(design.sql_columns, tuple(self.spec.cluster), self.differenced, weight=weight)
 
     @property
     def constant(self) -> bool:

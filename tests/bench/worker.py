@@ -89,6 +89,45 @@ def _bigpanel(estimator, effects=None, fold="as shipped"):
     return run
 
 
+def within_weighted(files, settings):
+    """Weighted within (analytic weights: the depot's vans in service; months without vans
+    weigh 0 and are left out), unit clusters."""
+    import bigpanel
+
+    engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                             temp_directory=settings.temp_directory)
+    result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS, UNIT, PERIOD, variance="cluster", cluster=UNIT,
+                          weights="vans", engine=engine)
+    return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
+            "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
+
+
+def within_instrumented(files, settings):
+    """Within by two-stage least squares: staff_hours instrumented by last month's staff
+    hours (one excluded instrument, a lag), unit clusters, with its first-stage F."""
+    import bigpanel
+
+    engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                             temp_directory=settings.temp_directory)
+    result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS[1:], UNIT, PERIOD, variance="cluster",
+                          cluster=UNIT, endogenous=REGRESSORS[0], instruments=f"lag({REGRESSORS[0]})", engine=engine)
+    return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
+            "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
+
+
+def within_lag_regressor(files, settings):
+    """Within with last month's staff hours added as a regressor (no instrument): the same
+    columns and lag window as ``within-iv``, so the two differ by the two-stage work alone."""
+    import bigpanel
+
+    engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                             temp_directory=settings.temp_directory)
+    result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS + [f"lag({REGRESSORS[0]})"], UNIT, PERIOD,
+                          variance="cluster", cluster=UNIT, engine=engine)
+    return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
+            "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
+
+
 def _couriers(effects: str, write: bool = False):
     """A fit on the couriers panel (courier, depot and year effects available), clustered by
     courier; ``write``: effects and residuals written back into a folder beside the panel's."""
@@ -275,6 +314,12 @@ CASES = {case.name: case for case in [
          "bigpanel within, unit clusters, unit fold summed in SQL"),
     Case("first-difference-sql-fold", "bigpanel", _bigpanel("first-difference", fold="sql"), _BP,
          "bigpanel first differences, unit clusters, unit fold summed in SQL"),
+    Case("within-weighted", "bigpanel", within_weighted, _BP,
+         "bigpanel weighted within (weights: vans), unit clusters"),
+    Case("within-iv", "bigpanel", within_instrumented, _BP,
+         "bigpanel within, staff_hours instrumented by lag(staff_hours), unit clusters and first-stage F"),
+    Case("within-lag", "bigpanel", within_lag_regressor, _BP,
+         "bigpanel within with lag(staff_hours) as a regressor (within-iv's columns, no instrument), unit clusters"),
     Case("couriers-within", "bigpanel", _couriers("courier"), _BP,
          "couriers: within (courier effects), courier clusters", "couriers"),
     Case("couriers-within-write", "bigpanel", _couriers("courier", write=True), _BP,
