@@ -22,14 +22,14 @@ import numpy as np
 
 from . import estimators
 from .design import Design, build_design
-from .engine import DuckDBEngine
+from .engine import open_engine
 from .errors import BigpanelWarning, EstimationError, InputError
 from .execute import Executor, Keys
 from .inference import MAX_EXPANDED, Notes, finish
 from .params import check_keys
 from .plan import ScanPlan, member_params, prefill
 from .results import FitResult
-from .source import Engine, Session, as_source
+from .source import Engine, as_source
 from .spec import FitSpec
 
 CANCELLATION_LIMIT = 1e6  # raw/transformed sum of squares above which one pass loses > 6 digits
@@ -101,8 +101,8 @@ def fit(
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     notes = Notes([])
     try:
-        with Session(src) as session:
-            executor = Executor(DuckDBEngine(session), Keys(spec.unit, spec.period, spec.period_step))
+        with open_engine(src) as engine_:
+            executor = Executor(engine_, Keys(spec.unit, spec.period, spec.period_step))
             return estimate(executor, spec, notes)
     finally:
         emit(notes, stacklevel=3)
@@ -150,8 +150,8 @@ def fit_many(
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     notes = [Notes([]) for _ in specs]
     try:
-        with Session(src) as session:
-            executor = Executor(DuckDBEngine(session), Keys(unit, period, specs[0].period_step if specs else None))
+        with open_engine(src) as engine_:
+            executor = Executor(engine_, Keys(unit, period, specs[0].period_step if specs else None))
             prepared = [prepare(executor, spec, n) for spec, n in zip(specs, notes)]
             plan = ScanPlan.build(prepared)
             results: list = [None] * len(specs)

@@ -240,7 +240,9 @@ def inspect_panel(source, unit: str, period: str, columns: Sequence[str] | None 
         For an unknown or unsuitable column, a bad filter, or no rows after the filter.
     """
     source = as_source(source, where, table, query, csv_types, engine, csv_nulls)
-    with Session(source) as session:
+    from .engine import open_session
+
+    with open_session(source) as session:
         kinds = _check_arguments(session, unit, period, columns)
         session.check_filter()
         schema = session.columns()

@@ -51,6 +51,11 @@ class Dialect:
 
 
 DUCKDB = Dialect()
+# PostgreSQL: builders write DuckDB's SQL for it, and bigpanel.render writes PostgreSQL's
+# text from DuckDB's parse tree of each query (fsum and favg become sum and avg there, which
+# add rows in one order on one process; isfinite a comparison). The dialect tells builders
+# what to leave out: no bitstring_agg (bigpanel.pg.PostgresEngine.twoway_pass), no histogram.
+POSTGRES = Dialect(name="postgres")
 
 
 def quote_ident(name: str, dialect: Dialect = DUCKDB) -> str:
