@@ -55,8 +55,11 @@ Rule = str | Callable[[list[str]], str]
 class Target:
     """One engine's SQL: what :class:`Renderer` needs to write it.
 
-    ``param(position, kind)`` writes the marker of the ``position``-th bound parameter
-    (1-based) whose Python value is of ``kind`` (``float``, ``int``, ``str``, ``bool``).
+    ``param(position, kind, name)`` writes the marker of the ``position``-th bound
+    parameter (1-based; :attr:`Rendered.names` lists the names by position), named
+    ``name`` in bigpanel's SQL (``$name``), whose Python value is of ``kind`` (``float``,
+    ``int``, ``str``, ``bool``): ``CAST($3 AS bigint)`` on PostgreSQL; a target with named
+    markers can write ``:name`` instead.
     Function tables map a lower-case DuckDB name to a rule: a name (the same arguments,
     renamed) or a function of the rendered arguments returning SQL text.
     """
@@ -69,7 +72,7 @@ class Target:
     aggregates: Mapping[str, Rule]
     internal: Mapping[str, Rule]
     windows: frozenset[str]
-    param: Callable[[int, str], str]
+    param: Callable[[int, str, str], str]
     string: Callable[[str], str]
     divide: Callable[[str, str, bool], str]  # (a, b, user) -> a / b as DuckDB's '/' means it
     operators: Mapping[str, Rule] = field(default_factory=dict)  # DuckDB operator name -> rule
@@ -190,7 +193,7 @@ class Renderer:
         if kind == "null":
             return "NULL"
         self.names.append(name)
-        return self.target.param(len(self.names), kind)
+        return self.target.param(len(self.names), kind, name)
 
     def _comparison(self, node: dict) -> str:
         op = _COMPARISONS.get(node.get("type"))
@@ -581,7 +584,7 @@ def _pg_string(text: str) -> str:
 _PG_PARAM_TYPES = {"float": "double precision", "int": "bigint", "str": "text", "bool": "boolean"}
 
 
-def _pg_param(position: int, kind: str) -> str:
+def _pg_param(position: int, kind: str, name: str) -> str:
     return f"CAST(${position} AS {_PG_PARAM_TYPES[kind]})"
 
 
