@@ -226,6 +226,8 @@ class Renderer:
             return f"coalesce({', '.join(self.expr(k) for k in kids)})"
         if kind == "GROUPING_FUNCTION" and self.mode == "internal":
             return f"GROUPING({', '.join(self.expr(k) for k in kids)})"
+        if kind == "ARRAY_CONSTRUCTOR" and self.mode == "internal":
+            return f"ARRAY[{', '.join(self.expr(k) for k in kids)}]"
         self.refuse(f"the operator {str(kind).lower()}")
 
     def _case(self, node: dict) -> str:
@@ -299,8 +301,9 @@ class Renderer:
                 if not isinstance(rule, str):
                     self.refuse(f"DISTINCT inside {name}()")
                 args = ["DISTINCT " + ", ".join(args)]
-            text = rule if callable(rule) else None
-            out = text(args) if text else f"{rule}({', '.join(args)})"
+            if callable(rule) and node.get("filter"):
+                self.refuse(f"FILTER on {name}()")
+            out = rule(args) if callable(rule) else f"{rule}({', '.join(args)})"
             if node.get("filter"):
                 out += f" FILTER (WHERE {self.expr(node['filter'])})"
             return out
@@ -375,9 +378,20 @@ class Renderer:
         return f"{self.expr(value)} {word}" if kind.startswith("EXPR_") else word
 
     def _subquery(self, node: dict) -> str:
-        if self.mode == "expression" or node.get("subquery_type") != "SCALAR":
+        if self.mode == "expression":
             self.refuse("subqueries")
-        return f"({self.query_node(node['subquery']['node'])})"
+        kind = node.get("subquery_type")
+        body = self.query_node(node["subquery"]["node"])
+        if kind == "SCALAR":
+            return f"({body})"
+        if kind == "EXISTS":
+            return f"(EXISTS ({body}))"
+        if kind == "ANY" and node.get("comparison_type") in _COMPARISONS:
+            op = _COMPARISONS[node["comparison_type"]]
+            if op.startswith("IS"):
+                self.refuse("IS [NOT] DISTINCT FROM ANY")
+            return f"({self.expr(node['child'])} {op} ANY ({body}))"
+        self.refuse(f"{str(kind).lower()} subqueries")
 
     def order(self, item: dict) -> str:
         direction = {"ORDER_DEFAULT": "", "ASCENDING": " ASC", "DESCENDING": " DESC"}.get(item.get("type"))
@@ -644,14 +658,38 @@ PG_FUNCTIONS: dict[str, Rule] = {
     "date_part": _arity("date_part", (2,), _date_part),
 }
 
+def _pg_sxx(args: list[str]) -> str:
+    # PostgreSQL's regr_sxx (Youngs-Cramer) can leave a tiny positive sum for a constant
+    # column, where DuckDB's streaming update gives exactly zero: zero when min = max
+    if args[0] != args[1]:
+        return f"regr_sxx({args[0]}, {args[1]})"
+    return f"(CASE WHEN min({args[0]}) = max({args[0]}) THEN 0 ELSE regr_sxx({args[0]}, {args[1]}) END)"
+
+
 PG_AGGREGATES: dict[str, Rule] = {
     "count": "count", "sum": "sum", "min": "min", "max": "max", "avg": "avg",
-    "fsum": "sum", "kahan_sum": "sum", "sumkahan": "sum", "favg": "avg", "regr_sxx": "regr_sxx",
+    "fsum": "sum", "kahan_sum": "sum", "sumkahan": "sum", "favg": "avg", "regr_sxx": _arity("regr_sxx", (2,), _pg_sxx),
+    "array_agg": "array_agg",
 }
 
 
 def _pg_year_month(part: str) -> Callable[[list[str]], str]:
     return _arity(part, (1,), lambda a: f"CAST(date_part(E'{part}', {a[0]}) AS bigint)")
+
+
+_NUMBER_TEXT = r"^\s*[-+]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][-+]?[0-9]+)?\s*$"
+_SPECIAL_TEXT = ("nan", "inf", "+inf", "-inf", "infinity", "+infinity", "-infinity")
+
+
+def _pg_try_cast(args: list[str]) -> str:
+    # TRY_CAST(text AS DOUBLE) (the checkup's test for numbers written as text): NULL unless
+    # the text reads as a number as DuckDB reads it
+    value, kind = args
+    if kind != "double precision":
+        raise Unsupported(f"TRY_CAST to {kind}", "PostgreSQL")
+    special = ", ".join(_pg_string(t) for t in _SPECIAL_TEXT)
+    return (f"(CASE WHEN {value} ~ {_pg_string(_NUMBER_TEXT)} OR lower(trim({value})) IN ({special}) "
+            f"THEN CAST(trim({value}) AS double precision) END)")
 
 
 def _pg_day_diff(args: list[str]) -> str:
@@ -668,6 +706,7 @@ PG_INTERNAL: dict[str, Rule] = {
     "month": _pg_year_month("month"),
     "epoch_us": _arity("epoch_us", (1,), lambda a: f"CAST(date_part(E'epoch', {a[0]}) * 1000000 AS bigint)"),
     "date_diff": _arity("date_diff", (3,), lambda a: _pg_day_diff(a)),
+    "try_cast": _pg_try_cast,
 }
 
 PG_TYPES = {
