@@ -273,7 +273,7 @@ def pilot(est: estimators.Estimator, executor: Executor, design: Design, params:
     if not (spec.variance == "cluster" and spec.cluster == (spec.unit,) and est.expands):
         return None
     k = design.q - 1 + (1 if est.constant else 0)
-    if k > MAX_EXPANDED:
+    if k > getattr(executor.engine, "max_expanded", MAX_EXPANDED):  # an engine may prefer a second pass
         return None
     probe = replace(est.first_pass(design), head=True)
     eq = est.equations(design, probe, executor.cross_products(probe, params), executor)

@@ -316,6 +316,10 @@ class PostgresEngine(DuckDBEngine):
 
     dialect = sqlbuild.POSTGRES
     twoway_pass = False  # unit + period effects go through period indicators (no bitstring_agg)
+    # The unit-cluster meat by expansion sums ~k^4/4 products per unit: cheap in DuckDB, but
+    # PostgreSQL evaluates them one by one (at k = 5, 5x the rest of the pass): a second
+    # pass over the rows (unit_scores.sql) is faster there. Only k = 1 is expanded.
+    max_expanded = 1
 
     def row_count(self) -> int | None:
         return None
