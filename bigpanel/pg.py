@@ -321,6 +321,13 @@ class PostgresEngine(DuckDBEngine):
     # pass over the rows (unit_scores.sql) is faster there. Only k = 1 is expanded.
     max_expanded = 1
 
+    def refuse_model(self, spec) -> None:
+        """Refuse, before any row is read, what bigpanel does not run on PostgreSQL yet."""
+        if spec.many_effects:
+            raise InputError(f"Effects beyond the unit and the period ({', '.join(spec.effects)}) are absorbed by "
+                             "iteration over a private copy of the rows, which bigpanel does not make in a PostgreSQL "
+                             "warehouse yet. Fit a Parquet export of the panel, or keep to unit and period effects.")
+
     def row_count(self) -> int | None:
         return None
 

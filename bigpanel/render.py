@@ -339,6 +339,8 @@ class Renderer:
             return f"({args[0]} {word} {args[1]}{t.like_escape})"
         if name == "||" and len(args) == 2:
             return f"({args[0]} || {args[1]})"
+        if self.mode == "internal" and name in ("&", "|", "<<", ">>") and len(args) == 2:
+            return f"({args[0]} {name} {args[1]})"
         if self.mode == "internal" and name in t.internal:
             rule = t.internal[name]
             return rule(args) if callable(rule) else f"{rule}({', '.join(args)})"
@@ -410,7 +412,7 @@ class Renderer:
             body = self._set_operation(node)
         else:
             self.refuse(f"the query form {str(kind).lower()}")
-        return ctes + body + self._modifiers(node.get("modifiers") or [], kind == "SELECT_NODE")
+        return ctes + body + self._modifiers(node.get("modifiers") or [], kind == "SELECT_NODE", node)
 
     def _ctes(self, cte_map: dict) -> str:
         items = cte_map.get("map") or []
@@ -474,12 +476,26 @@ class Renderer:
         glue = f" {word}{' ALL' if node.get('setop_all') else ''} "
         return glue.join(f"({self.query_node(k)})" for k in kids)
 
-    def _modifiers(self, modifiers: list[dict], select: bool) -> str:
+    def _width(self, node: dict) -> int:
+        """Columns of a query node's result (ORDER BY ALL orders by each, left to right)."""
+        while node.get("type") == "SET_OPERATION_NODE":
+            node = (node.get("children") or [node.get("left")])[0]
+        items = node.get("select_list") or []
+        if any(i.get("class") in ("STAR", "COLUMNS") for i in items):
+            self.refuse("ORDER BY ALL over *")
+        return len(items)
+
+    def _modifiers(self, modifiers: list[dict], select: bool, node: dict) -> str:
         out = ""
         for m in modifiers:
             kind = m.get("type")
-            if kind == "ORDER_MODIFIER":
-                out += " ORDER BY " + ", ".join(self.order(o) for o in m.get("orders", []))
+            orders = m.get("orders", [])
+            if kind == "ORDER_MODIFIER" and len(orders) == 1 and (orders[0].get("expression") or {}).get("class") == "STAR" \
+                    and orders[0]["expression"].get("columns") and self.mode == "internal":
+                suffix = self.order({**orders[0], "expression": {"class": "CONSTANT", "literal": {"kind": "INTEGER", "text": "0"}}})[1:]
+                out += " ORDER BY " + ", ".join(f"{i}{suffix}" for i in range(1, self._width(node) + 1))
+            elif kind == "ORDER_MODIFIER":
+                out += " ORDER BY " + ", ".join(self.order(o) for o in orders)
             elif kind == "LIMIT_MODIFIER":
                 if m.get("limit") is not None:
                     out += " LIMIT " + self.expr(m["limit"])
@@ -512,6 +528,17 @@ class Renderer:
             rows = ", ".join("(" + ", ".join(self.expr(v) for v in row) + ")" for row in ref.get("values", []))
             text = f"(VALUES {rows})"
             alias = alias or "valueslist"
+        elif kind == "JOIN" and ref.get("join_type") in ("ANTI", "SEMI") and ref.get("ref_type") in ("REGULAR", None):
+            # a ANTI JOIN b ON c: the rows of a with no (SEMI: some) row of b meeting c, under a's name
+            left = ref["left"]
+            name = left.get("alias") or (left.get("table_name") if left.get("type") == "BASE_TABLE" else None)
+            if not name or ref.get("condition") is None or left.get("column_name_alias"):
+                self.refuse("this form of anti or semi join")
+            test = "NOT EXISTS" if ref["join_type"] == "ANTI" else "EXISTS"
+            return (f"(SELECT * FROM {self.table_ref(left)} WHERE {test} (SELECT 1 FROM {self.table_ref(ref['right'])} "
+                    f"WHERE {self.expr(ref['condition'])})) AS {self.target.quote_ident(name)}")
+        elif kind == "JOIN" and ref.get("ref_type") == "CROSS":
+            return f"{self.table_ref(ref['left'])} CROSS JOIN {self.table_ref(ref['right'])}"
         elif kind == "JOIN":
             if ref.get("ref_type") not in ("REGULAR", None) or ref.get("join_type") not in _JOINS:
                 self.refuse(f"{str(ref.get('ref_type')).lower()} {str(ref.get('join_type')).lower()} joins")

@@ -394,3 +394,52 @@ def test_rendered_expressions_compute_what_duckdb_computes(edge_values, text):
     assert len(ours) == len(duck)
     for row, (a, b) in enumerate(zip(duck, ours)):
         assert _close(a, b), (text, rendered, row, a, b)
+
+
+def test_spec_file_with_a_postgres_source(wagepan, tmp_path):
+    # A spec file's source path may be a PostgreSQL URI (or env:NAME); the run folder's
+    # model results equal DuckDB's fits, and no file of the run shows the password.
+    from bigpanel.batch.run import run_spec
+
+    path, uri, _ = wagepan
+    secret = "spec-s3cret"
+    spec = tmp_path / "wages.toml"
+    spec.write_text(f'''[source]
+path = "{_as_user(uri, "reader", secret)}"
+table = "{SCHEMA}.wagepan"
+unit = "nr"
+period = "year"
+
+[defaults]
+outcome = "lwage"
+
+[models.within]
+regressors = ["union", "married", "expersq"]
+
+[models.differences]
+regressors = ["union", "married"]
+estimator = "first-difference"
+variance = "hc1"
+''')
+    report = run_spec(spec, tmp_path / "run")
+    assert not report.failed if hasattr(report, "failed") else True
+    for name, model in (("within", dict(regressors="union, married, expersq")),
+                        ("differences", dict(regressors="union, married", estimator="first-difference", variance="hc1"))):
+        saved = json.loads((tmp_path / "run" / "models" / f"{name}.json").read_text())
+        duck = bigpanel.fit(path, "lwage", unit="nr", period="year", **model)
+        got = {c["term"]: (c["estimate"], c["std_error"]) for c in saved["coefficients"]}
+        for c in duck.coefficients:
+            assert got[c.term][0] == pytest.approx(c.estimate, rel=RTOL) and got[c.term][1] == pytest.approx(c.std_error, rel=RTOL)
+    for f in (tmp_path / "run").rglob("*"):
+        if f.is_file():
+            assert secret not in f.read_text(errors="replace"), f
+
+
+def test_what_postgres_cannot_do_yet_is_refused_by_name(wagepan, tmp_path):
+    _, uri, _ = wagepan
+    table = f"{SCHEMA}.wagepan"
+    with pytest.raises(InputError, match="Effects beyond the unit and the period .* PostgreSQL"):
+        bigpanel.fit(uri, "lwage", "union", "nr", "year", table=table, effects="nr,year,occ1")
+    with pytest.raises(InputError, match="Option 'write_residuals' is not available for PostgreSQL sources"):
+        bigpanel.fit(uri, "lwage", "union", "nr", "year", table=table, write_residuals=str(tmp_path / "out"))
+    assert not (tmp_path / "out").exists()
