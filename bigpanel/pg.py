@@ -215,6 +215,7 @@ class PostgresSession:
         text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         text = re.sub(r"^[A-Z_]+: (\[libpq\] )?", "", text)
         text = re.sub(r"^(Failed to (prepare|execute) query|could not begin COPY)[^:]*: ", "", text)
+        text = re.sub(r"^(ERROR|FATAL):\s+", "", text)
         for secret in self._secrets:
             text = text.replace(secret, "***")
         return echo(mask(text))
