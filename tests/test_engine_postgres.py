@@ -443,3 +443,25 @@ def test_what_postgres_cannot_do_yet_is_refused_by_name(wagepan, tmp_path):
     with pytest.raises(InputError, match="Option 'write_residuals' is not available for PostgreSQL sources"):
         bigpanel.fit(uri, "lwage", "union", "nr", "year", table=table, write_residuals=str(tmp_path / "out"))
     assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("period", ["day", "stamp"])
+def test_date_and_timestamp_periods_as_on_duckdb(server, wagepan, tmp_path, period):
+    # Periods read as slots on their detected grid (a year here): the slot arithmetic
+    # (year(), month(), date_diff, //) is written for PostgreSQL by the renderer.
+    _, uri, df = wagepan
+    df = df.assign(day=pd.to_datetime(df["year"].astype(str) + "-03-01").dt.date,
+                   stamp=pd.to_datetime(df["year"].astype(str) + "-03-01 12:00"))
+    path = write_parquet(df, tmp_path / "dated.parquet")
+    _load(server, "dated", pa.Table.from_pandas(df, preserve_index=False))
+    for model in (dict(regressors="union, married", estimator="first-difference"),
+                  dict(regressors="union, married, lag(married)"),
+                  dict(regressors="union, married", effects=f"nr,{period}")):
+        duck = bigpanel.fit(path, "lwage", unit="nr", period=period, **model)
+        pg = bigpanel.fit(uri, "lwage", unit="nr", period=period, table=f"{SCHEMA}.dated", **model)
+        _same_fit(duck, pg)
+        assert (pg.period_first, pg.period_last, pg.period_step) == (duck.period_first, duck.period_last, duck.period_step)
+    duck = bigpanel.inspect_panel(path, "nr", period, ["lwage"]).to_dict()
+    pg = bigpanel.inspect_panel(uri, "nr", period, ["lwage"], table=f"{SCHEMA}.dated").to_dict()
+    assert {k: v for k, v in pg.items() if k not in ("source", "run", "columns")} == \
+        {k: v for k, v in duck.items() if k not in ("source", "run", "columns")}
