@@ -255,6 +255,8 @@ class Renderer:
                     self.refuse(f"the type {name} with modifiers")
                 args.append(str(int(literal["text"])))
             return f"{rule}({', '.join(args)})"
+        if name in ("DECIMAL", "NUMERIC"):
+            return f"{rule}(18, 3)"  # DuckDB's DECIMAL without a width
         return rule
 
     def _is_boolean(self, node: dict) -> bool:
@@ -279,6 +281,9 @@ class Renderer:
             return rule([self.expr(node["child"]), self.type_name(node["type_expr"])])
         child = self.expr(node["child"])
         kind = self.type_name(node["type_expr"])
+        if self.mode != "internal" and kind == self.target.types.get("VARCHAR"):
+            # numbers become other text (DuckDB writes 100.0, PostgreSQL 100)
+            self.refuse("CAST to VARCHAR", "numbers are written as text differently on each engine")
         if self._is_boolean(node["child"]) and kind not in ("boolean", "text", "BOOLEAN", "STRING"):
             child = f"CAST({child} AS {self.target.types['INTEGER']})"
         return f"CAST({child} AS {kind})"

@@ -31,12 +31,13 @@ def test_operators_keep_duckdbs_meaning():
     assert pg("CAST(flag AS DOUBLE)") == 'CAST("flag" AS double precision)'
     assert pg("CAST(x > 1 AS DOUBLE)") == 'CAST(CAST(("x" > 1) AS integer) AS double precision)'
     assert pg("-x - -1") == '((- "x") - (-1))'
+    assert pg("CAST(x AS DECIMAL)") == 'CAST("x" AS numeric(18, 3))'  # DuckDB's default width and scale
 
 
 @pytest.mark.parametrize("text,function", [
     ("isfinite(x)", "isfinite()"), ("round(x, 2)", "round()"), ("hash(x)", "hash()"), ("if(x > 0, 1, 0)", "if()"),
     ("list_value(x)", "list_value()"), ("regexp_matches(t, 'a')", "regexp_matches()"), ("x::HUGEINT // 2", "the operator //"),
-    ("CAST(x AS UUID)", "the type UUID"), ("TRY_CAST(x AS DOUBLE)", "TRY_CAST"),
+    ("CAST(x AS UUID)", "the type UUID"), ("TRY_CAST(x AS DOUBLE)", "TRY_CAST"), ("CAST(x AS VARCHAR) = '1.0'", "CAST to VARCHAR"),
 ])
 def test_functions_postgres_lacks_are_refused_by_name(text, function):
     with pytest.raises(render.Unsupported) as refused:
