@@ -77,6 +77,7 @@ class Target:
     divide: Callable[[str, str, bool], str]  # (a, b, user) -> a / b as DuckDB's '/' means it
     operators: Mapping[str, Rule] = field(default_factory=dict)  # DuckDB operator name -> rule
     like_escape: str = ""  # appended to LIKE (DuckDB's LIKE has no escape character by default)
+    byte_order: str = ""  # appended to a text constant compared by order (DuckDB orders text by bytes)
 
     def quote_ident(self, name: str) -> str:
         name = str(name)
@@ -195,10 +196,20 @@ class Renderer:
         self.names.append(name)
         return self.target.param(len(self.names), kind, name)
 
+    def _ordered(self, node: dict) -> str:
+        """An operand of an order comparison: a text constant compared in DuckDB's byte order
+        (a database's collation may order 'East' after 'other')."""
+        text = self.expr(node)
+        if node.get("class") == "CONSTANT" and (node.get("literal") or {}).get("kind") == "STRING":
+            text += self.target.byte_order
+        return text
+
     def _comparison(self, node: dict) -> str:
         op = _COMPARISONS.get(node.get("type"))
         if op is None:
             self.refuse(f"the comparison {node.get('type')}")
+        if op in ("<", ">", "<=", ">="):
+            return f"({self._ordered(node['left'])} {op} {self._ordered(node['right'])})"
         return f"({self.expr(node['left'])} {op} {self.expr(node['right'])})"
 
     def _conjunction(self, node: dict) -> str:
@@ -208,7 +219,7 @@ class Renderer:
         return "(" + op.join(self.expr(c) for c in node.get("children", [])) + ")"
 
     def _between(self, node: dict) -> str:
-        return f"({self.expr(node['input'])} BETWEEN {self.expr(node['lower'])} AND {self.expr(node['upper'])})"
+        return f"({self.expr(node['input'])} BETWEEN {self._ordered(node['lower'])} AND {self._ordered(node['upper'])})"
 
     def _operator(self, node: dict) -> str:
         kind = node.get("type")
@@ -764,4 +775,5 @@ POSTGRES = Target(
     divide=_pg_divide,
     operators={"**": lambda a: f"power({a[0]}, {a[1]})", "^": lambda a: f"power({a[0]}, {a[1]})", "%": "%"},
     like_escape=" ESCAPE E''",
+    byte_order=' COLLATE "C"',
 )

@@ -126,6 +126,7 @@ CASES = {
     "within, clusters of whole units": dict(regressors="union, married, expersq", cluster="black"),
     "within, unit and period effects": dict(regressors="union, married, expersq", effects="nr,year"),
     "within, levels and a filter": dict(regressors="union, levels(region), hours / 1000.0", where="hours > 0 AND educ >= 10"),
+    "within, a filter ordering text": dict(regressors="union, married", where="region < 'a'"),
     "within, lag and lead": dict(regressors='married, lag("union"), lead(married)'),
     "first differences": dict(regressors="union, married, exper", estimator="first-difference"),
     "first differences, period effects, hc1": dict(regressors="union, married", estimator="first-difference",

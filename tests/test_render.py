@@ -32,6 +32,9 @@ def test_operators_keep_duckdbs_meaning():
     assert pg("CAST(x > 1 AS DOUBLE)") == 'CAST(CAST(("x" > 1) AS integer) AS double precision)'
     assert pg("-x - -1") == '((- "x") - (-1))'
     assert pg("CAST(x AS DECIMAL)") == 'CAST("x" AS numeric(18, 3))'  # DuckDB's default width and scale
+    # text ordered by bytes, as DuckDB orders it, whatever the database's collation
+    assert pg("region < 'b'") == '("region" < E\'b\' COLLATE "C")'
+    assert pg("region BETWEEN 'B' AND 'a'") == '("region" BETWEEN E\'B\' COLLATE "C" AND E\'a\' COLLATE "C")'
 
 
 @pytest.mark.parametrize("text,function", [
