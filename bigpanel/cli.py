@@ -39,11 +39,12 @@ app = typer.Typer(
 
 SourceArg = Annotated[
     Optional[str],
-    typer.Argument(help="Parquet file, folder or glob; CSV file or glob; or a DuckDB file (with --table or --query).",
+    typer.Argument(help="Parquet file, folder or glob; CSV file or glob; a DuckDB file, or a PostgreSQL URI "
+                   "(postgresql://... or env:NAME; with --table or --query).",
                    show_default=False),
 ]
-TableOpt = Annotated[Optional[str], typer.Option("--table", help="Table or view in the DuckDB file.")]
-QueryOpt = Annotated[Optional[str], typer.Option("--query", help="A SQL query giving the rows (inside the DuckDB file, or on its own).")]
+TableOpt = Annotated[Optional[str], typer.Option("--table", help="Table or view in the DuckDB file or PostgreSQL database (schema.name).")]
+QueryOpt = Annotated[Optional[str], typer.Option("--query", help="A SQL query giving the rows (inside the DuckDB file or PostgreSQL database, or on its own).")]
 WhereOpt = Annotated[Optional[str], typer.Option("--where", help="SQL predicate keeping rows, e.g. \"region = 'north'\".")]
 CsvTypesOpt = Annotated[Optional[str], typer.Option("--csv-types", help="Override detected CSV column types: \"col=TYPE,col2=TYPE\".")]
 CsvNullOpt = Annotated[Optional[list[str]], typer.Option("--csv-null", metavar="TOKEN", help="Extra CSV token read as a missing value, e.g. NA or \".\" "

@@ -242,7 +242,9 @@ class Executor:
         """Distinct non-null values of an expression (as text, sorted; at most ``limit``)."""
         if expression not in self._levels:
             sql = sqlbuild.distinct_values_sql(self.engine.filtered(), expression, limit)
-            self._levels[expression] = [r["v"] for r in self.run_once(sql)]
+            # sorted here too: an engine may order text by its collation (PostgreSQL's locale),
+            # and the first level is the default base (code point order = DuckDB's byte order)
+            self._levels[expression] = sorted(r["v"] for r in self.run_once(sql))
         return self._levels[expression]
 
     def duplicate_keys(self) -> list[dict]:

@@ -22,14 +22,14 @@ import numpy as np
 
 from . import estimators, writeback
 from .design import Design, build_design
-from .engine import DuckDBEngine
+from .engine import open_engine
 from .errors import BigpanelWarning, EstimationError, InputError
 from .execute import Executor, Keys
 from .inference import MAX_EXPANDED, Notes, finish
 from .params import check_keys
 from .plan import ScanPlan, member_params, prefill
 from .results import FitResult
-from .source import Engine, Session, as_source
+from .source import Engine, as_source
 from .spec import FitSpec
 from .weights import check_weights
 
@@ -138,8 +138,8 @@ def fit(
     spec = writeback.checked(spec, src)
     notes = Notes([])
     try:
-        with Session(src) as session:
-            executor = Executor(DuckDBEngine(session), Keys(spec.unit, spec.period, spec.period_step))
+        with open_engine(src) as engine_:
+            executor = Executor(engine_, Keys(spec.unit, spec.period, spec.period_step))
             return estimate(executor, spec, notes)
     finally:
         emit(notes, stacklevel=3)
@@ -195,8 +195,8 @@ def fit_many(
     specs = [writeback.checked(spec, src) for spec in specs]
     notes = [Notes([]) for _ in specs]
     try:
-        with Session(src) as session:
-            executor = Executor(DuckDBEngine(session), Keys(unit, period, specs[0].period_step if specs else None))
+        with open_engine(src) as engine_:
+            executor = Executor(engine_, Keys(unit, period, specs[0].period_step if specs else None))
             prepared = [prepare(executor, spec, n) for spec, n in zip(specs, notes)]
             plan = ScanPlan.build(prepared)
             results: list = [None] * len(specs)
@@ -331,7 +331,7 @@ def pilot(est: estimators.Estimator, executor: Executor, design: Design, params:
     if not (spec.variance == "cluster" and spec.cluster == (spec.unit,) and est.expands):
         return None
     k = design.q - 1 + (1 if est.constant else 0)
-    if k > MAX_EXPANDED:
+    if k > getattr(executor.engine, "max_expanded", MAX_EXPANDED):  # an engine may prefer a second pass
         return None
     probe = replace(est.first_pass(design), head=True)
     eq = est.equations(design, probe, executor.cross_products(probe, params), executor)

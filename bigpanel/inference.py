@@ -286,7 +286,8 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         f_p_value=f_p, f_unavailable=f_missing, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=eq.singletons,
         absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=executor.label,
         absorption=est.absorption(eq),
-        where=executor.engine.where, warnings=notes.texts, run=run_record(executor.engine.thread_count()),
+        where=executor.engine.where, warnings=notes.texts,
+        run=run_record(executor.engine.thread_count()) | getattr(executor.engine, "run_facts", dict)(),
         weights=spec.weights or "", instrumented=tuple(labels[j] for j in design.endogenous),
         instruments=tuple(labels[j] for j in design.excluded), first_stage=first_stage,
     )

@@ -114,9 +114,10 @@ SHARED_KEYS = ("unit", "period", "period_step")
 # settings (fields of source.Engine), which change how a fit runs, never its numbers (they
 # enter no resume key). Every other key is passed to open_source under its own name.
 SOURCE_PARAMETERS: dict[str, Param] = {p.name: p for p in (
-    Param("path", "text", "Parquet file, folder or glob; CSV file or glob; or a DuckDB file (relative to the spec file)."),
-    Param("table", "text", "Table or view in the DuckDB file."),
-    Param("query", "text", "A SQL query giving the rows (inside the DuckDB file, or on its own)."),
+    Param("path", "text", "Parquet file, folder or glob; CSV file or glob; or a DuckDB file (relative to the spec file); "
+          "or a PostgreSQL URI (postgresql://... or env:NAME, as given)."),
+    Param("table", "text", "Table or view in the DuckDB file or the PostgreSQL database (schema.name)."),
+    Param("query", "text", "A SQL query giving the rows (inside the DuckDB file or PostgreSQL database, or on its own)."),
     Param("where", "text", "SQL predicate keeping rows, e.g. \"region = 'north'\".", scope="model"),
     Param("csv_types", "mapping", "Override detected CSV column types: a table of column = \"TYPE\"."),
     Param("csv_nulls", "columns", "Extra CSV tokens read as missing values, e.g. [\"NA\", \".\"]."),

@@ -51,6 +51,11 @@ class Dialect:
 
 
 DUCKDB = Dialect()
+# PostgreSQL: builders write DuckDB's SQL for it, and bigpanel.render writes PostgreSQL's
+# text from DuckDB's parse tree of each query (fsum and favg become sum and avg there, which
+# add rows in one order on one process; isfinite a comparison). The dialect tells builders
+# what to leave out: no bitstring_agg (bigpanel.pg.PostgresEngine.twoway_pass), no histogram.
+POSTGRES = Dialect(name="postgres")
 
 
 def quote_ident(name: str, dialect: Dialect = DUCKDB) -> str:
@@ -714,9 +719,15 @@ def distinct_periods_sql(source: str, period: str, kind: str, limit: int) -> str
 
 
 def checkup_unit_scan_sql(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
-                          numeric: Sequence[int], mode: str, bitmap: bool) -> str:
+                          numeric: Sequence[int], mode: str, bitmap: bool, dialect: Dialect = DUCKDB) -> str:
     """SQL of the unit scan; each j in ``numeric`` (indices into ``checked``) gives
-    within_ss_j and varying_units_j."""
+    within_ss_j and varying_units_j. On PostgreSQL (no bitstring_agg, no histogram) distinct
+    periods are counted with count(DISTINCT) and the histogram comes as [n_periods, units]
+    pairs (flattened: ``panel.histogram_pairs`` reads both forms)."""
+    bitmap = bitmap and dialect.name == "duckdb"
+    periods = "histogram(n_periods)" if dialect.name == "duckdb" else (
+        "(SELECT array_agg(ARRAY[n_periods, n_units]) FROM "
+        "(SELECT n_periods, count(*) AS n_units FROM per_unit GROUP BY n_periods) AS h)")
     values = [f"{_shifted(checked[j], j)} AS v_{j}" for j in numeric]
     per_unit = [f"regr_sxx(v_{j}, v_{j}) AS ss_{j}" for j in numeric]
     totals = [f"fsum(ss_{j}) AS within_ss_{j},\n       count(*) FILTER (WHERE ss_{j} > 0) AS varying_units_{j}"
@@ -731,6 +742,7 @@ def checkup_unit_scan_sql(source_sql: str, unit: str, period_value: str, checked
         column_values="".join(", " + v for v in values),
         unit_aggregates="".join(",\n           " + a for a in per_unit),
         column_totals="".join(",\n       " + t for t in totals),
+        periods_per_unit=periods,
     )
 
 

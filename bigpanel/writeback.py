@@ -91,8 +91,11 @@ def checked(spec, source):
     absolute (made if missing)."""
     from dataclasses import replace
 
-    folders = {name: check_folder(name, getattr(spec, name), source)
-               for name in ("write_effects", "write_residuals") if getattr(spec, name)}
+    asked = [name for name in ("write_effects", "write_residuals") if getattr(spec, name)]
+    if asked and source.kind == "postgres":  # nothing is written from a warehouse session (bigpanel.pg)
+        raise InputError(f"Option '{asked[0]}' is not available for PostgreSQL sources yet: bigpanel reads the "
+                         "warehouse only. Fit a Parquet export of the panel to write effects or residuals.")
+    folders = {name: check_folder(name, getattr(spec, name), source) for name in asked}
     return replace(spec, **folders) if folders else spec
 
 

@@ -209,7 +209,9 @@ def now() -> str:
 
 def input_files(src) -> list[str]:
     """The files a source reads: its Parquet or CSV files, its DuckDB file, or the files
-    its query names (globs expanded)."""
+    its query names (globs expanded); none for a PostgreSQL source (a table has no file)."""
+    if src.kind == "postgres":
+        return []
     if src.files:
         return [os.path.abspath(f) for f in src.files]
     if src.database:

@@ -376,12 +376,11 @@ class _Run:
     def _run_group(self, group: list[ModelEntry]) -> None:
         """One session for models sharing a source, filter and keys: shared scans first,
         then the models that run alone; each model's result or error recorded as it comes."""
-        from ..engine import DuckDBEngine
+        from ..engine import adapter, open_session
         from ..execute import Executor, Keys
         from ..fit import _run_shared, estimate, prepare
         from ..inference import Notes
         from ..plan import ScanPlan
-        from ..source import Session
 
         first = group[0]
         source = self.spec.sources[first.source]
@@ -391,14 +390,14 @@ class _Run:
             + f": models {', '.join(names)}.", source=first.source, where=first.where, models=names)
         try:
             src = open_entry(source, first.where, self.overrides)
-            session = Session(src)
+            session = open_session(src)
         except BigpanelError as exc:
             for m in group:
                 self._failed(m, exc, 0.0)
             return
         notes = {m.name: Notes([]) for m in group}
         with session:
-            engine = RecordingEngine(DuckDBEngine(session), recorder, f"source '{first.source}'")
+            engine = RecordingEngine(adapter(session), recorder, f"source '{first.source}'")
             spec = first.spec
             executor = Executor(engine, Keys(spec.unit, spec.period, spec.period_step))
             try:
@@ -538,20 +537,19 @@ class RunPlan:
 
 def plan_run(spec: RunSpec, chosen: list[str], overrides: dict) -> RunPlan:
     """The dry run: the models, the scans that will serve them and their SQL."""
-    from ..engine import DuckDBEngine
+    from ..engine import adapter, open_session
     from ..errors import BigpanelError as Problem
     from ..execute import Executor, Keys
     from ..fit import prepare
     from ..inference import Notes
     from ..plan import ScanPlan
-    from ..source import Session
 
     plan = RunPlan(spec.label)
     for group in _groups(spec, chosen):
         first = group[0]
         src = open_entry(spec.sources[first.source], first.where, overrides)
-        with Session(src) as session:
-            executor = _SchemaOnly(DuckDBEngine(session), Keys(first.spec.unit, first.spec.period, first.spec.period_step))
+        with open_session(src) as session:
+            executor = _SchemaOnly(adapter(session), Keys(first.spec.unit, first.spec.period, first.spec.period_step))
             prepared, described = [], []
             for m in group:
                 s = m.spec

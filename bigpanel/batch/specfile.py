@@ -201,8 +201,8 @@ def _sources(doc: dict, path: Path, problems: list[str]) -> dict[str, SourceEntr
 
 
 def _resolve(spec_path: Path, given: str) -> str:
-    if "://" in given:
-        return given  # refused by name when the source is opened
+    if "://" in given or given.startswith("env:"):
+        return given  # a PostgreSQL source (bigpanel.pg); other URLs are refused by name when opened
     return os.path.abspath(os.path.join(spec_path.parent, os.path.expanduser(given)))
 
 
@@ -297,11 +297,10 @@ def open_entry(source: SourceEntry, model_where: str | None = None, engine_overr
 @contextmanager
 def schema_engine(src) -> Iterator[object]:
     """An engine on ``src`` for schema checks (DESCRIBE and binding only)."""
-    from ..engine import DuckDBEngine
-    from ..source import Session
+    from ..engine import open_engine
 
-    with Session(src) as session:
-        yield DuckDBEngine(session)
+    with open_engine(src) as engine:
+        yield engine
 
 
 def check_columns(spec: RunSpec, engine_overrides: dict | None = None) -> None:

@@ -19,10 +19,13 @@ def select(spec: FitSpec, engine) -> Estimator:
     the exact two-way path; on other periods, and in weighted fits, whose presence
     patterns would need each unit's weights, indicator columns inside within; any other
     effect makes every effect absorbed by iteration)."""
+    refuse = getattr(engine, "refuse_model", None)  # what an engine cannot run yet (bigpanel.pg)
+    if refuse is not None:
+        refuse(spec)
     if spec.estimator == "within":
         if spec.many_effects:  # effects beyond the unit and the period: absorbed by iteration
             return ManyEffects(spec)
-        if spec.period_effects and not spec.weights and integer_period(engine, spec):
+        if spec.period_effects and not spec.weights and integer_period(engine, spec) and getattr(engine, "twoway_pass", True):
             return UnitPeriod(spec)
         return Within(spec)
     if spec.estimator == "first-difference":
