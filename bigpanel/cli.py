@@ -181,6 +181,9 @@ def fit_command(
     effects_iterations: Annotated[Optional[int], _model_option("effects_iterations")] = None,
     write_effects: Annotated[Optional[str], _model_option("write_effects")] = None,
     write_residuals: Annotated[Optional[str], _model_option("write_residuals")] = None,
+    weights: Annotated[Optional[str], _model_option("weights")] = None,
+    endogenous: Annotated[Optional[str], _model_option("endogenous")] = None,
+    instruments: Annotated[Optional[str], _model_option("instruments")] = None,
     table: TableOpt = None,
     query: QueryOpt = None,
     where: WhereOpt = None,
@@ -202,7 +205,8 @@ def fit_command(
                      variance=variance.value if variance else None, cluster=cluster, intercept=False if no_intercept else None,
                      period_step=period_step, absorbed_levels=absorbed_levels.value,
                      effects_tolerance=effects_tolerance, effects_iterations=effects_iterations,
-                     write_effects=write_effects, write_residuals=write_residuals)
+                     write_effects=write_effects, write_residuals=write_residuals, weights=weights,
+                     endogenous=endogenous, instruments=instruments)
     for w in caught:  # each note once, on stderr (the table below leaves them out)
         if issubclass(w.category, BigpanelWarning):
             typer.echo(f"note: {w.message}", err=True)

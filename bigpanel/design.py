@@ -16,7 +16,7 @@ from .errors import InputError, echo, shown, unknown_column
 from .spec import FitSpec
 
 MAX_LEVELS = 500
-ROLES = ("regressor", "lag", "indicator", "effect", "outcome")
+ROLES = ("regressor", "lag", "indicator", "effect", "endogenous", "instrument", "outcome")
 
 
 @dataclass(frozen=True)
@@ -48,6 +48,16 @@ class Design:
     @property
     def is_effect(self) -> list[bool]:
         return [c.role == "effect" for c in self.regressors]
+
+    @property
+    def endogenous(self) -> list[int]:
+        """Positions of the instrumented terms (two-stage least squares)."""
+        return [j for j, c in enumerate(self.regressors) if c.role == "endogenous"]
+
+    @property
+    def excluded(self) -> list[int]:
+        """Positions of the excluded instruments."""
+        return [j for j, c in enumerate(self.regressors) if c.role == "instrument"]
 
     @property
     def sql_columns(self) -> tuple[tuple[str, int], ...]:
@@ -141,6 +151,10 @@ def build_design(executor, spec: FitSpec) -> Design:
             text = term.text if term.kind == "expr" else term.expr
             sql = numeric_expression(engine, text, term.expr, "Term", notes)
             columns.append(Column(sql, "lag" if term.lag else "regressor", term.text, term.lag))
+    for role, group in (("endogenous", spec.endogenous), ("instrument", spec.instruments)):
+        for term in group:  # after the regressors, before the outcome (bigpanel.instruments)
+            text = term.text if term.kind == "expr" else term.expr
+            columns.append(Column(numeric_expression(engine, text, term.expr, "Term", notes), role, term.text, term.lag))
     outcome = numeric_expression(engine, spec.outcome, spec.outcome_sql, "Outcome", notes)
     columns.append(Column(outcome, "outcome", spec.outcome))
     return Design(tuple(columns), tuple(notes))

@@ -162,19 +162,20 @@ class Executor:
         chunk = chunk or moments.Chunk()
         source = self.engine.filtered(chunk, k.unit, PROBE_ROWS if head else None)
         sql = sqlbuild.design_rows_sql(source, k.unit, k.period, list(rows.clusters), list(rows.columns), k.step,
-                                       k.period_sql, rows.effects)
+                                       k.period_sql, rows.effects, rows.weight)
         if rows.differenced:
-            sql = sqlbuild.differenced_rows_sql(sql, len(rows.clusters), rows.q, streaming and chunk.files is not None and not head)
+            sql = sqlbuild.differenced_rows_sql(sql, len(rows.clusters), rows.q, streaming and chunk.files is not None and not head,
+                                                rows.weighted)
         return sql
 
     def used_sql(self, rows: Rows, chunk=None, head: bool = False, streaming: bool = False) -> str:
         used = sqlbuild.used_rows_sql(self.rows_sql(rows, chunk, head, streaming), self.valid_sql(rows))
-        return sqlbuild.demeaned_rows_sql(used, rows.q, len(rows.clusters)) if rows.demeaned else used
+        return sqlbuild.demeaned_rows_sql(used, rows.q, len(rows.clusters), rows.weighted) if rows.demeaned else used
 
     def valid_sql(self, rows: Rows) -> str:
         """The predicate of the used rows: a unit, finite design columns (differences: the
         unit's previous period) and, with absorbed effects, a level of every effect."""
-        valid = sqlbuild.valid_predicate(rows.q, rows.differenced, self.keys.step)
+        valid = sqlbuild.valid_predicate(rows.q, rows.differenced, self.keys.step, rows.weighted)
         if rows.effects:
             valid += " AND " + sqlbuild.keys_present(self.effect_keys(rows))
         return valid
@@ -185,15 +186,16 @@ class Executor:
         return [k for e, cols in enumerate(rows.effects) for k in sqlbuild.effect_keys(e, len(cols))]
 
     # ------------------------------------------------------------------ probes
-    def shifts(self, columns: Sequence[tuple[str, int]]) -> tuple[np.ndarray, np.ndarray]:
-        """Shift (mean) and scale (a power of two, see solve.py) per design column (levels),
-        from the first rows: sums are taken of (x - shift) * scale."""
+    def shifts(self, columns: Sequence[tuple[str, int]], weight: str | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Shift (mean; weighted mean with a ``weight`` column) and scale (a power of two,
+        see solve.py) per design column (levels), from the first rows: sums are taken of
+        (x - shift) * scale."""
         q = len(columns)
         k = self.keys
         head = self.engine.filtered(head=PROBE_ROWS)
-        rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step, k.period_sql)
+        rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step, k.period_sql, weight=weight)
         zero = {f"s{j}": 0.0 for j in range(q)} | {f"d{j}": 1.0 for j in range(q)}
-        row = self.run_once(sqlbuild.probe_sql(rows, q), zero, scan=False)[0]
+        row = self.run_once(sqlbuild.probe_sql(rows, q, weighted=weight is not None), zero, scan=False)[0]
         scales = np.array([power_of_two_scale(row[f"m{j}"]) for j in range(q)])
         shifts = np.array([row[f"a{j}"] if row[f"a{j}"] is not None else 0.0 for j in range(q)], dtype=float)
         return np.where(np.isfinite(shifts), shifts, 0.0), scales
@@ -229,10 +231,10 @@ class Executor:
 
     def row_counts(self, rows: Rows, params: dict) -> dict:
         """Rows by reason, over all rows (differences formed after sorting)."""
-        key = (rows.columns, rows.differenced)
+        key = (rows.columns, rows.differenced, rows.weight)
         if key not in self._counted:
             sql = sqlbuild.row_counts_sql(self.rows_sql(rows), rows.q, rows.differenced, self.keys.step,
-                                          required=self.effect_keys(rows))
+                                          required=self.effect_keys(rows), weighted=rows.weighted)
             self._counted[key] = self.run_once(sql, params)[0]
         return self._counted[key]
 
@@ -294,6 +296,7 @@ class Executor:
         q = rows.q
         p = dict(params)
         streaming = self.streaming
+        weighted = rows.weighted
 
         def used(chunk):
             return self.used_sql(rows, chunk, request.head, streaming)
@@ -304,9 +307,9 @@ class Executor:
             self.scans += 1
             return [[sweeps.cross_products(self, request, params)]]
         if request.fold == "rows":
-            make = lambda c: sqlbuild.pooled_moments_sql(used(c), q, total)  # noqa: E731
+            make = lambda c: sqlbuild.pooled_moments_sql(used(c), q, total, weighted)  # noqa: E731
         elif request.fold == "period":
-            make = lambda c: sqlbuild.period_moments_sql(used(c), q, total)  # noqa: E731
+            make = lambda c: sqlbuild.period_moments_sql(used(c), q, total, weighted)  # noqa: E731
         elif request.fold == "unit+period":
             first, last = self.period_range()
             make = lambda c: sqlbuild.twoway_pass_sql(used(c), q, first, last, total)  # noqa: E731
@@ -316,7 +319,8 @@ class Executor:
                 p.update({f"q{j}": float(v) for j, v in enumerate(request.pilot)})
 
             def make(c):
-                return sqlbuild.unit_pass_sql(sqlbuild.unit_moments_sql(used(c), q, total), q, request.layout, expand, total)
+                return sqlbuild.unit_pass_sql(sqlbuild.unit_moments_sql(used(c), q, total, weighted), q, request.layout, expand,
+                                              total, weighted)
 
             if self._numpy_fold(request, chunks):
                 return self._fold_in_numpy(request, chunks, used, make, p)
@@ -328,7 +332,7 @@ class Executor:
 
     def _numpy_fold(self, request: CrossProducts, chunks) -> bool:
         """Unit-sorted chunks (more than one) of levels, where the engine can stream."""
-        return (len(chunks) > 1 and not request.head and not request.rows.demeaned
+        return (len(chunks) > 1 and not request.head and not request.rows.demeaned and not request.rows.weighted
                 and (request.layout, request.rows.differenced) in NUMPY_FOLD_LAYOUTS
                 and hasattr(self.engine, "fold_chunks"))
 
@@ -373,6 +377,7 @@ class Executor:
             return False
         row = self.row_counts(rows, params)
         pairs = row["n_rows"] - row["first_of_unit"] - row["after_gap"] - row["duplicate_keys"] - row["missing"]
+        pairs -= row.get("zero_weight", 0)  # differences whose later row weighs 0 are left out
         return pairs != result.n_obs
 
     def dropped(self, rows: Rows, params: dict, n_obs: int, n_units: int, singleton_rows: int) -> dict:
@@ -383,8 +388,12 @@ class Executor:
         out = {"missing_or_not_finite": 0}
         if fd:
             out.update(first_period_of_unit=n_units, after_gap=0)
+        if rows.weighted:
+            out["zero_weight"] = 0
         if total != expected:
             row = self.row_counts(rows, params)
+            if rows.weighted:
+                out["zero_weight"] = int(row["zero_weight"])
             if fd and row["duplicate_keys"]:
                 self.duplicates()
             out["missing_or_not_finite"] = int(row["missing"])
@@ -399,7 +408,7 @@ class Executor:
         self._bounds = bounds
 
     def set_row_counts(self, rows: Rows, counts: dict) -> None:
-        self._counted[(rows.columns, rows.differenced)] = counts
+        self._counted[(rows.columns, rows.differenced, rows.weight)] = counts
 
     def set_nested(self, request: Nesting, nested: bool) -> None:
         self._nested[request] = nested
@@ -484,7 +493,7 @@ class Executor:
 
             def make(c):
                 return sqlbuild.unit_scores_sql(self.used_sql(rows, c, streaming=self.streaming), q, request.constant, request.demean,
-                                                request.n_periods, by_unit, total)
+                                                request.n_periods, by_unit, total, rows.weighted)
 
             tables = self.run_chunked(make, p)
             if by_unit:
@@ -498,9 +507,11 @@ class Executor:
             return [scores.T @ scores], [len(groups)]
         used = self.used_sql(rows)
         if request.kind == "rows":
-            row = self.run_once(sqlbuild.residual_moments_sql(used, q, request.constant, request.demean, request.n_periods), p)[0]
+            row = self.run_once(sqlbuild.residual_moments_sql(used, q, request.constant, request.demean, request.n_periods,
+                                                              weighted=rows.weighted), p)[0]
             return [moments.symmetric(row, "h", k)], []
-        sql = sqlbuild.cluster_scores_sql(used, q, request.constant, request.demean, request.n_periods, n_clusters)
+        sql = sqlbuild.cluster_scores_sql(used, q, request.constant, request.demean, request.n_periods, n_clusters,
+                                          weighted=rows.weighted)
         out = {r["gid"]: (moments.symmetric(r, "o", k), int(r["n_groups"])) for r in self.run_once(sql, p)}
         order = [0] if n_clusters == 1 else [1, 2, 0]  # GROUPING(c0, c1): c0 only 01, c1 only 10, both 00
         return [out[g][0] for g in order], [out[g][1] for g in order]

@@ -31,6 +31,7 @@ from .plan import ScanPlan, member_params, prefill
 from .results import FitResult
 from .source import Engine, Session, as_source
 from .spec import FitSpec
+from .weights import check_weights
 
 CANCELLATION_LIMIT = 1e6  # raw/transformed sum of squares above which one pass loses > 6 digits
 
@@ -58,6 +59,9 @@ def fit(
     effects_iterations: int | None = None,
     write_effects=None,
     write_residuals=None,
+    weights: str | None = None,
+    endogenous=None,
+    instruments=None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
@@ -115,10 +119,21 @@ def fit(
     write_residuals : str or path, optional
         Folder to write ``residuals.parquet`` into: each used row's unit, period, fitted
         value and residual (within and first-difference fits).
+    weights : str, optional
+        Column of analytic weights (finite, at least 0) for every estimator and variance:
+        weighted sums, weighted unit means; rows of weight 0 are left out and counted in
+        ``rows_dropped["zero_weight"]``; a first difference takes its later row's weight.
+        A negative, missing or non-finite weight is an error naming a few rows.
+    endogenous, instruments : str or list of str, optional
+        Two-stage least squares: the instrumented terms and the excluded instruments
+        (written like the regressors, ``lag()`` included; at least as many instruments as
+        endogenous terms). The result lists ``instrumented`` terms and, per endogenous
+        term, the first-stage F of the excluded instruments under the chosen variance.
     """
     spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step,
                          absorbed_levels, effects_tolerance, effects_iterations, write_effects=write_effects,
-                         write_residuals=write_residuals)
+                         write_residuals=write_residuals, weights=weights, endogenous=endogenous,
+                         instruments=instruments)
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     spec = writeback.checked(spec, src)
     notes = Notes([])
@@ -260,6 +275,8 @@ def emit(notes: Notes, stacklevel: int) -> None:
 def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators.Estimator, Design]:
     """The estimator and its design (checked against the schema; no rows read but
     ``levels()`` values)."""
+    if spec.weights:
+        check_weights(executor, spec.weights)
     design = build_design(executor, spec)
     for msg in design.notes:
         notes.add(BigpanelWarning, msg)
@@ -267,7 +284,7 @@ def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators
     executor.use_periods(spec.needs_order or isinstance(est, estimators.UnitPeriod))
     design = est.extend_design(executor, design)
     if spec.needs_order:
-        if any(t.kind == "lag" for t in spec.terms):
+        if any(t.kind == "lag" for t in spec.all_terms):
             executor.duplicates(only_if_any=True)
     else:  # within and pooled keep duplicate keys' rows: say so
         note = executor.duplicate_note()
@@ -281,7 +298,7 @@ def estimate(executor: Executor, spec: FitSpec, notes: Notes) -> FitResult:
     executor.notes = []
     est, design = prepare(executor, spec, notes)
     rows = est.rows(design)
-    shifts, scales = executor.shifts(design.sql_columns)
+    shifts, scales = executor.shifts(design.sql_columns, rows.weight)
     if not est.shifted():
         shifts = np.zeros(design.q)
     params = scaled_params(shifts, scales)
@@ -303,6 +320,7 @@ def written(executor: Executor, est: estimators.Estimator, design: Design, resul
     spec = est.spec
     if not (spec.write_effects or spec.write_residuals):
         return result
+    spec = writeback.checked(spec, executor.engine.source)  # again for callers that did not check (spec files)
     return replace(result, written=writeback.write(executor, est, design, spec, executor.estimates))
 
 

@@ -13,7 +13,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import scipy.special  # t and F tails; scipy.stats alone takes ~0.8 s to import
 
-from . import moments, variance
+from . import instruments, moments, variance
 from .errors import (
     DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError, echo, shown,
 )  # fmt: skip
@@ -69,13 +69,15 @@ def score_values(eq: Equations, sol, kx: int, constant: bool) -> dict:
 
 
 def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equations, sol, rss: float,
-                    n_kept: int, absorbed: int, notes: Notes, period_levels: int = 0) -> variance.Variance:
+                    n_kept: int, absorbed: int, notes: Notes, period_levels: int = 0, meat_map=None) -> variance.Variance:
     """The variance the specification asks for, with its meat from the first pass or a score pass.
 
     ``period_levels``: the kept period-effect columns among the ``n_kept`` (the rest are
     slope terms and the intercept). Cluster variances use one K' for every component
-    (:func:`k_prime`)."""
+    (:func:`k_prime`). ``meat_map``: turns the meat of the design columns' scores into
+    the estimator's (two-stage least squares: :meth:`instruments.TwoStage.meat_map`)."""
     spec = est.spec
+    mapped = meat_map or (lambda m: m)
     n_obs = eq.n_obs
     if spec.variance == "homoskedastic":
         return variance.homoskedastic(sol.inverse, rss, n_obs, n_kept, absorbed)
@@ -91,7 +93,7 @@ def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equa
     dim = len(sol.coef)
     if spec.variance == "hc1":
         meats, _ = executor.meats(request("rows"), params, k, 0)
-        return _embed(variance.hc1(inverse, meats[0], n_obs, n_kept, absorbed), dim)
+        return _embed(variance.hc1(inverse, mapped(meats[0]), n_obs, n_kept, absorbed), dim)
     counted = est.levels_in_k_prime(executor, rows, eq)  # many effects: the estimator counts its own
     if counted is not None:
         kp = n_kept - period_levels + counted
@@ -104,15 +106,15 @@ def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equa
             part, ratio = moments.expanded_meat(row, k, eq.pilot, sol.coef)
             meat, worst = meat + part, max(worst, ratio)
         if worst < EXPANSION_LIMIT:
-            return _embed(variance.cluster(inverse, meat, eq.n_units, n_obs, kp), dim)
+            return _embed(variance.cluster(inverse, mapped(meat), eq.n_units, n_obs, kp), dim)
         notes.add(None, "the one-pass cluster meat cancelled too many digits; scores were recomputed in a second pass")
     if len(spec.cluster) == 1:
         by_unit = spec.cluster[0] == spec.unit
         kind = "units" if by_unit else ("groups" if rows.effects or not executor.nested(Nesting(rows), params) else "nested")
         meats, counts = executor.meats(request(kind), params, k, 1)
-        return _embed(variance.cluster(inverse, meats[0], counts[0], n_obs, kp), dim)
+        return _embed(variance.cluster(inverse, mapped(meats[0]), counts[0], n_obs, kp), dim)
     meats, counts = executor.meats(request("groups"), params, k, 2)
-    return _embed(variance.two_way(inverse, tuple(meats), tuple(counts), n_obs, (kp, kp, kp)), dim)
+    return _embed(variance.two_way(inverse, tuple(mapped(m) for m in meats), tuple(counts), n_obs, (kp, kp, kp)), dim)
 
 
 def k_prime(spec, nested_in_units, slopes: int, unit_levels: int, period_levels: int) -> int:
@@ -189,10 +191,16 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         if est.constant:
             zero_var[k - 1] = False
         for j in np.flatnonzero(zero_var):
-            terms_dropped[labels[j]] = "no variation within units"
-    sol = solve_normal(h, g, zero_variation=zero_var, first=np.array(is_effect[:k], dtype=bool))
-    for j in np.flatnonzero(~sol.kept & ~zero_var):
-        terms_dropped[labels[j]] = "collinear with the period effects" if sol.by_first[j] else "collinear with other terms"
+            terms_dropped[labels[j]] = est.no_variation
+    iv = None
+    if design.endogenous:  # two-stage least squares from the same cross-products (instruments.py)
+        sol, iv = instruments.two_stage(eq.total, design.endogenous, design.excluded, zero_var,
+                                        np.array(is_effect[:k], dtype=bool), labels)
+        terms_dropped.update({labels[j]: why for j, why in iv.dropped.items()})
+    else:
+        sol = solve_normal(h, g, zero_variation=zero_var, first=np.array(is_effect[:k], dtype=bool))
+        for j in np.flatnonzero(~sol.kept & ~zero_var):
+            terms_dropped[labels[j]] = "collinear with the period effects" if sol.by_first[j] else "collinear with other terms"
     if terms_dropped:
         notes.add(DroppedTermsWarning, "Terms left out: " + ", ".join(f"{t} ({w})" for t, w in terms_dropped.items()))
     if not sol.kept.any():
@@ -200,6 +208,9 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
                               + ". Give terms that change within units and are not combinations of each other.")
     coef = sol.coef
     rss = max(float(yy - g @ coef), 0.0)
+    if iv is not None:  # the structural residual y - X b: u'u = (-b, 1)' M (-b, 1)
+        v = np.r_[-coef, 1.0]
+        rss = max(float(v @ eq.total @ v), 0.0)
     tss = yy - eq.total[k - 1, k] ** 2 / eq.total[k - 1, k - 1] if est.constant else yy
     if (est.constant or est.checks_variation) and not tss > NO_VARIATION * max(float(eq.raw_diag[-1]), 1e-300):
         where = {"within": "within units", "first-difference": "between consecutive periods"}.get(est.name, "across rows")
@@ -210,7 +221,10 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     n_kept = int(sol.kept.sum())
     absorbed = est.absorbed(eq)
     period_levels = sum(1 for j in range(k) if sol.kept[j] and is_effect[j] and labels[j] != "(intercept)")
-    var = choose_variance(est, executor, rows, params, eq, sol, rss, n_kept, absorbed, notes, period_levels)
+    var = choose_variance(est, executor, rows, params, eq, sol, rss, n_kept, absorbed, notes, period_levels,
+                          iv.meat_map if iv is not None else None)
+    first_stage = () if iv is None else instruments.first_stages(
+        choose_variance, wald, est, executor, design, rows, params, eq, iv, absorbed, notes, period_levels, is_effect[:k])
     # columns were scaled by powers of two in SQL (solve.py); back to the user's units, with
     # the intercept moved back from the shifted columns:
     # y - c_y = b0' + sum b_j (x_j - c_j), so the intercept is b0' + c_y - c'b
@@ -273,4 +287,6 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=executor.label,
         absorption=est.absorption(eq),
         where=executor.engine.where, warnings=notes.texts, run=run_record(executor.engine.thread_count()),
+        weights=spec.weights or "", instrumented=tuple(labels[j] for j in design.endogenous),
+        instruments=tuple(labels[j] for j in design.excluded), first_stage=first_stage,
     )

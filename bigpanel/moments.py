@@ -218,8 +218,10 @@ def expanded_meat(row: dict, k: int, pilot: np.ndarray, coef: np.ndarray) -> tup
 
 def pooled_matrix(rows: list[dict], q: int, intercept: bool) -> tuple[np.ndarray, np.ndarray, int]:
     """Add chunk sums (n, s_j, p_j_l) in chunk order; return the cross-product over
-    (regressors, [constant], outcome), the raw diagonal, and the row count."""
+    (regressors, [constant], outcome), the raw diagonal, and the row count. In a weighted
+    fit the constant's square is the weight total ``nw``, not the row count."""
     n = sum(int(r["n"] or 0) for r in rows)
+    n_constant = sum(float(r["nw"] or 0.0) for r in rows) if rows and "nw" in rows[0] else n
     s = np.zeros(q)
     p = np.zeros((q, q))
     for r in rows:
@@ -234,5 +236,5 @@ def pooled_matrix(rows: list[dict], q: int, intercept: bool) -> tuple[np.ndarray
     out[q, q] = p[-1, -1]
     out[x, q - 1] = out[q - 1, x] = s[:-1]
     out[q - 1, q] = out[q, q - 1] = s[-1]
-    out[q - 1, q - 1] = n
+    out[q - 1, q - 1] = n_constant
     return out, np.diag(out).copy(), n

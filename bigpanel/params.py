@@ -91,6 +91,15 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("write_residuals", "folder", "Folder to write residuals.parquet into: each used row's keys, fitted value and "
           "residual; within and first-difference fits.",
           empty="Give a folder outside the source's folders."),
+    Param("weights", "column", "Column of analytic weights (finite, at least 0): every sum and variance is weighted, unit "
+          "means are weighted means, rows of weight 0 are left out and counted; a first difference takes the weight of "
+          "its later row."),
+    Param("endogenous", "terms", "Regressors to instrument, written like the regressors (columns, expressions, lag(), "
+          "lead()); they join the regressors and are estimated by two-stage least squares. Needs --instruments.",
+          empty="Give at least one endogenous term, separated by commas."),
+    Param("instruments", "terms", "Excluded instruments for the endogenous terms, written like the regressors; at least "
+          "as many as endogenous terms. The regressors instrument themselves.",
+          empty="Give at least one instrument, separated by commas."),
 )}
 
 MODEL_KEYS = tuple(PARAMETERS)
@@ -102,7 +111,8 @@ SHARED_KEYS = ("unit", "period", "period_step")
 # (bigpanel.batch): ``text`` is one text, ``columns`` a list or comma-separated text,
 # ``mapping`` a table of text values, ``count`` a whole number. ``scope``: "model" when a
 # model (or the defaults) may set it too, on top of the source's value; "setting" for engine
-# settings, which change how a fit runs, never its numbers (they enter no resume key).
+# settings (fields of source.Engine), which change how a fit runs, never its numbers (they
+# enter no resume key). Every other key is passed to open_source under its own name.
 SOURCE_PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("path", "text", "Parquet file, folder or glob; CSV file or glob; or a DuckDB file (relative to the spec file)."),
     Param("table", "text", "Table or view in the DuckDB file."),
@@ -110,6 +120,7 @@ SOURCE_PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("where", "text", "SQL predicate keeping rows, e.g. \"region = 'north'\".", scope="model"),
     Param("csv_types", "mapping", "Override detected CSV column types: a table of column = \"TYPE\"."),
     Param("csv_nulls", "columns", "Extra CSV tokens read as missing values, e.g. [\"NA\", \".\"]."),
+    Param("csv_options", "mapping", "CSV reader options as a table, e.g. delim = \";\", decimal_separator = \",\"."),
     Param("threads", "count", "DuckDB worker threads (default: all cores).", minimum=1, maximum=1024, scope="setting"),
     Param("memory_limit", "text", "DuckDB memory limit, e.g. \"2GB\"; past it DuckDB spills to disk.", scope="setting"),
     Param("temp_directory", "text", "Folder for DuckDB's spill files.", scope="setting"),
@@ -140,7 +151,7 @@ def check_source(name: str, value: Any) -> Any:
         return [v.strip() for v in (value.split(",") if isinstance(value, str) else value) if v.strip()]
     if p.kind == "mapping":
         if not isinstance(value, dict) or not all(isinstance(v, str) and v.strip() for v in value.values()):
-            raise InputError(f"Option '{name}' must be a table of column = \"TYPE\" pairs; got {echo(repr(value), 60)}.")
+            raise InputError(f"Option '{name}' must be a table of text values; got {echo(repr(value), 60)}. {p.help}")
         return {str(k): v.strip() for k, v in value.items()}
     if p.kind == "count":
         if isinstance(value, bool) or not isinstance(value, int) or not p.minimum <= value <= p.maximum:

@@ -93,7 +93,7 @@ class ScanPlan:
         groups: dict[bool, SharedScan] = {}
         alone = []
         for i, (est, design) in enumerate(prepared):
-            if not est.shares:
+            if not est.shares or est.spec.weights or est.spec.endogenous:  # weighted and instrumented models run alone
                 alone.append(i)
                 continue
             groups.setdefault(est.differenced, SharedScan(est.differenced)).add(i, est, design)

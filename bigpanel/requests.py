@@ -21,17 +21,23 @@ class Rows:
 
     ``differenced``: first differences of consecutive periods within units;
     ``demeaned``: unit means subtracted in SQL (two passes, for data whose unit means
-    dwarf their spread)."""
+    dwarf their spread); ``weight``: the weight column (quoted) of a weighted fit: every
+    sum carries it, unit means are weighted, rows of weight 0 are left out."""
 
     columns: tuple[tuple[str, int], ...]
     clusters: tuple[str, ...] = ()
     differenced: bool = False
     demeaned: bool = False
     effects: tuple[tuple[str, ...], ...] = ()  # absorbed effects' key columns (many effects: bigpanel.sweeps)
+    weight: str | None = None
 
     @property
     def q(self) -> int:
         return len(self.columns)
+
+    @property
+    def weighted(self) -> bool:
+        return self.weight is not None
 
     @property
     def has_lags(self) -> bool:

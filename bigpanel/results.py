@@ -94,11 +94,15 @@ class FitResult:
     # files written back (bigpanel.writeback): {"effects": {column: path}, "normalisation": text,
     # "residuals": path}; empty when nothing was asked for
     written: dict = field(default_factory=dict)
+    weights: str = ""  # the column of analytic weights ("" when unweighted)
+    instrumented: tuple[str, ...] = ()  # terms estimated by two-stage least squares
+    instruments: tuple[str, ...] = ()  # their excluded instruments
+    first_stage: tuple = ()  # instruments.FirstStage per instrumented term
 
     def to_dict(self) -> dict:
         out = json_ready(self)
         out["variance"]["factor_rule"] = self.variance.factor_rule
-        out["cautions"] = list(CAUTIONS)
+        out["cautions"] = list(CAUTIONS + _extra_cautions(self))
         return out
 
     def to_json(self, indent: int | None = 2) -> str:
@@ -158,7 +162,7 @@ def _variance_words(v: VarianceSummary) -> str:
 
 
 def _header(r: "FitResult") -> list[str]:
-    lines = [f"{TITLES[r.estimator]} of {r.outcome}"]
+    lines = [f"{TITLES[r.estimator]} of {r.outcome}" + (", two-stage least squares" if r.instrumented else "")]
     lines += _wrapped("data", r.source + (f", rows where {r.where}" if r.where else ""))
     sample = f"{r.n_obs:,} rows, {r.n_units:,} units"
     if r.n_periods:
@@ -172,6 +176,12 @@ def _header(r: "FitResult") -> list[str]:
     lines += _wrapped("sample", sample)
     if r.absorption.get("path") == "iterative":
         lines += _wrapped("effects", _absorption_words(r.absorption))
+    if r.weights:
+        zero = r.rows_dropped.get("zero_weight", 0)
+        lines += _wrapped("weights", f"{r.weights} (analytic; weighted sums and unit means"
+                          + (f"; {zero:,} rows of weight 0 left out)" if zero else ")"))
+    if r.instrumented:
+        lines += _wrapped("iv terms", f"{', '.join(r.instrumented)}; excluded instruments: {', '.join(r.instruments)}")
     lines += _wrapped("variance", _variance_words(r.variance))
     return lines + [""]
 
@@ -214,6 +224,12 @@ def _footer(r: "FitResult", notes: bool) -> list[str]:
     else:
         joint = "not available" + (f" ({r.f_unavailable})" if r.f_unavailable else "")
     lines += _wrapped("", f"slopes jointly zero: {joint}")
+    for s in r.first_stage:
+        if math.isfinite(s.f_stat):
+            test = f"F = {_stat(s.f_stat)} on {_count(s.df[0])} and {_count(s.df[1])} df, p {_p_words(s.p_value)}"
+        else:
+            test = "not available" + (f" ({s.unavailable})" if s.unavailable else "")
+        lines += _wrapped("", f"first stage of {s.term}: excluded instruments jointly zero, {test}")
     lines += _wrapped("", f"share of variation explained ({r.r_squared_kind} R-squared): {r.r_squared:.4f}")
     dropped = {k: n for k, n in r.rows_dropped.items() if n}
     if dropped or r.singletons_dropped:
@@ -232,9 +248,19 @@ def _footer(r: "FitResult", notes: bool) -> list[str]:
     for w in r.warnings if notes else ():
         lines += _wrapped("", f"note: {w}")
     lines += ["", "  Read these estimates as causal effects only if:"]
-    for caution in CAUTIONS:
+    for caution in CAUTIONS + _extra_cautions(r):
         lines += _wrapped("", "- " + caution, hang=2)
     return lines
+
+
+IV_CAUTION = ("The excluded instruments must be unrelated to the error (excluded) and move the instrumented terms "
+              "(relevant: see each first-stage F).")
+WEIGHTS_CAUTION = ("Weights change what is estimated: with effects that differ across rows, a weighted fit averages "
+                   "them with the weights.")
+
+
+def _extra_cautions(r: "FitResult") -> tuple[str, ...]:
+    return (IV_CAUTION,) * bool(r.instrumented) + (WEIGHTS_CAUTION,) * bool(r.weights)
 
 
 def run_record(threads: int) -> dict:

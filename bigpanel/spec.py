@@ -75,6 +75,40 @@ def _outcome_sql(text: str) -> str:
         return sqlbuild.quote_ident(text.strip())
 
 
+def _instrument_terms(endogenous, instruments, terms: tuple[Term, ...]) -> tuple[tuple[Term, ...], tuple[Term, ...]]:
+    """Checked endogenous terms and excluded instruments: both or neither, no term twice,
+    none among the regressors, no ``levels()``; at least as many instruments as endogenous
+    terms (else the model is not identified)."""
+    params.check("endogenous", endogenous)
+    params.check("instruments", instruments)
+    if endogenous is None and instruments is None:
+        return (), ()
+    if endogenous is None or instruments is None:
+        given, missing = ("endogenous", "instruments") if instruments is None else ("instruments", "endogenous")
+        raise InputError(f"Option '{given}' is given without '{missing}'. Two-stage least squares needs both: "
+                         "--endogenous \"T1, T2\" --instruments \"Z1, Z2\".")
+    endog, instr = _terms(endogenous), _terms(instruments)
+    regressors = {t.text for t in terms}
+    seen: set[str] = set()
+    for name, group in (("endogenous", endog), ("instruments", instr)):
+        for t in group:
+            if t.kind == "levels":
+                raise InputError(f"Option '{name}' has the term '{echo(t.text)}'; levels() is not supported there yet. "
+                                 "Write the indicators as expressions, e.g. CAST(region = 'north' AS DOUBLE).")
+            if t.text in regressors:
+                raise InputError(f"Option '{name}' repeats the regressor '{echo(t.text)}'. A regressor instruments "
+                                 "itself; list each term in one option only.")
+            if t.text in seen:
+                raise InputError(f"Option '{name}' repeats '{echo(t.text)}', listed already as endogenous or instrument. "
+                                 "List each term once.")
+            seen.add(t.text)
+    if len(instr) < len(endog):
+        raise InputError(f"Option 'instruments' gives {len(instr)} excluded instrument{'s' if len(instr) != 1 else ''} for "
+                         f"{len(endog)} endogenous terms, so the model is not identified (under-identified); give at "
+                         "least as many instruments as endogenous terms.")
+    return endog, instr
+
+
 @dataclass(frozen=True)
 class FitSpec:
     """A checked model specification (see :func:`bigpanel.fit` for the meaning of each field)."""
@@ -95,6 +129,9 @@ class FitSpec:
     effects_iterations: int = 1000
     write_effects: str | None = None  # folders the fit writes its effects / residuals into (bigpanel.writeback)
     write_residuals: str | None = None
+    weights: str | None = None  # column of analytic weights (bigpanel.weights)
+    endogenous: tuple[Term, ...] = ()  # instrumented terms (bigpanel.instruments)
+    instruments: tuple[Term, ...] = ()  # excluded instruments
 
     @classmethod
     def build(
@@ -114,13 +151,18 @@ class FitSpec:
         effects_iterations: int | None = None,
         write_effects: str | None = None,
         write_residuals: str | None = None,
+        weights: str | None = None,
+        endogenous: str | list[str] | None = None,
+        instruments: str | list[str] | None = None,
     ) -> "FitSpec":
         estimator = params.check("estimator", estimator)
         outcome = params.check("outcome", outcome)
-        params.check("regressors", regressors)
+        no_regressors = regressors is None or (isinstance(regressors, (str, list, tuple)) and not params.as_list(regressors))
+        if not (no_regressors and endogenous):  # an instrumented model may have no other regressor
+            params.check("regressors", regressors)
         unit, period = params.check("unit", unit), params.check("period", period)
-        terms = _terms(regressors)
-        if not terms:
+        terms = _terms(regressors) if not no_regressors else ()
+        if not terms and not endogenous:
             raise InputError("Option 'regressors' is empty. Give at least one term, separated by commas.")
         texts = [t.text for t in terms]
         if len(set(texts)) != len(texts):
@@ -175,12 +217,25 @@ class FitSpec:
         if write_residuals is not None and estimator == "pooled":
             raise InputError("Option 'write_residuals' applies to within and first-difference fits, not pooled ones. "
                              "Use --estimator within or first-difference, or leave out --write-residuals.")
-        return cls(
+        weights = params.check("weights", weights)
+        endog, instr = _instrument_terms(endogenous, instruments, terms)
+        if weights is not None and (write_effects is not None or write_residuals is not None):
+            raise InputError("Options 'write_effects' and 'write_residuals' do not take 'weights' yet (the effects written "
+                             "would be unweighted means); fit without --weights to write them, or leave them out.")
+        spec = cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, variance=variance, cluster=clus, intercept=bool(intercept), period_step=None if period_step is None else int(period_step),
             absorbed_levels=absorbed_levels, effects_tolerance=effects_tolerance, effects_iterations=effects_iterations,
-            write_effects=write_effects, write_residuals=write_residuals,
+            write_effects=write_effects, write_residuals=write_residuals, weights=weights, endogenous=endog,
+            instruments=instr,
         )
+        if spec.many_effects and (weights is not None or endog):
+            given = "'weights'" if not endog else ("'endogenous' and 'instruments'" if weights is None
+                                                    else "'weights', 'endogenous' and 'instruments'")
+            raise InputError(f"Option 'effects' names effects beyond the unit and the period ({echo(', '.join(eff))}), "
+                             f"which are removed by iteration, and that path does not take {given} yet; keep to unit and "
+                             "period effects, or leave those options out.")
+        return spec
 
     @property
     def effect_columns(self) -> tuple[tuple[str, ...], ...]:
@@ -197,6 +252,11 @@ class FitSpec:
         return self.period in self.effects
 
     @property
+    def all_terms(self) -> tuple[Term, ...]:
+        """The regressors, then the endogenous terms and the excluded instruments."""
+        return self.terms + self.endogenous + self.instruments
+
+    @property
     def needs_order(self) -> bool:
         """True when rows must be ordered within units (differences or lags)."""
-        return self.estimator == "first-difference" or any(t.kind == "lag" for t in self.terms)
+        return self.estimator == "first-difference" or any(t.kind == "lag" for t in self.all_terms)

@@ -246,7 +246,7 @@ def _z(j: int) -> str:
 
 def design_rows_sql(
     source: str, unit: str, period: str, clusters: list[str], columns: list[tuple[str, int]], step: int,
-    period_sql: str | None = None, effects: Sequence[Sequence[str]] = (),
+    period_sql: str | None = None, effects: Sequence[Sequence[str]] = (), weight: str | None = None,
 ) -> str:
     """Select the unit, period, clusters and shifted design columns of every row.
 
@@ -255,11 +255,14 @@ def design_rows_sql(
     lead) reads it |K|*step periods later. ``period_sql``: the period as a slot on its
     regular grid (:func:`period_slot_sql`) instead of the column. ``effects``: the key
     columns of each absorbed effect (many effects, :mod:`bigpanel.sweeps`), as k_e<i>_<m>.
+    ``weight``: the weight column (quoted), carried as ``k_w`` (the row's own weight, never lagged).
     """
     period_sql = period_sql or quote_ident(period)
     items = [f"{quote_ident(unit)} AS k_unit", f"{period_sql} AS k_period"]
     items += [f"{quote_ident(c)} AS k_c{i}" for i, c in enumerate(clusters)]
     items += [f"{quote_ident(c)} AS {name}" for e, keys in enumerate(effects) for c, name in zip(keys, effect_keys(e, len(keys)))]
+    if weight is not None:
+        items.append(f"CAST({weight} AS DOUBLE) AS k_w")
     for j, (expr, lag) in enumerate(columns):
         value = f"CAST(({expr}) AS DOUBLE)"
         if lag:
@@ -273,10 +276,11 @@ def design_rows_sql(
     return render("design_rows", source=source, columns=", ".join(items))
 
 
-def differenced_rows_sql(rows: str, n_clusters: int, q: int, streaming: bool = False) -> str:
+def differenced_rows_sql(rows: str, n_clusters: int, q: int, streaming: bool = False, weighted: bool = False) -> str:
     """Difference every design column within units. ``streaming`` differences rows in
-    their scan order (no sort): only for one-thread chunks of unit- and period-sorted files."""
-    keys = ["k_unit", "k_period"] + [f"k_c{i}" for i in range(n_clusters)]
+    their scan order (no sort): only for one-thread chunks of unit- and period-sorted files.
+    ``weighted``: a difference carries the weight ``k_w`` of its later row (README)."""
+    keys = ["k_unit", "k_period"] + [f"k_c{i}" for i in range(n_clusters)] + (["k_w"] if weighted else [])
     diffs = ", ".join(f"{_z(j)} - lag({_z(j)}) OVER w AS {_z(j)}" for j in range(q))
     window = "" if streaming else "PARTITION BY k_unit ORDER BY k_period"
     return render("differenced_rows", rows=f"({rows})", keys=", ".join(keys), diffs=diffs, window=window)
@@ -322,41 +326,46 @@ def effect_rows_sql(rows: str, valid: str, effects: Sequence[Sequence[str]], clu
                   joins="".join(joins))
 
 
-def valid_predicate(q: int, differenced: bool, step: int) -> str:
+def valid_predicate(q: int, differenced: bool, step: int, weighted: bool = False) -> str:
     """A unit, all design columns finite (and, for differences, the previous row the unit's
     previous period). z * 0 is 0 for a finite z and NaN for an infinite or NaN one (NULL
     stays NULL), so one comparison tests every column: cheaper than one isfinite() per column."""
     terms = ["k_unit IS NOT NULL", "(" + " + ".join(f"{_z(j)} * 0" for j in range(q)) + ") = 0"]
+    if weighted:  # rows of weight 0 are left out (and counted: row_counts_sql)
+        terms.append("k_w > 0")
     if differenced:
         terms.insert(0, f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)}")
     return " AND ".join(terms)
 
 
-def _moment_aggregates(q: int, total: str) -> list[str]:
-    aggs = ["count(*) AS n"]
-    aggs += [f"{total}({_z(j)}) AS s{j}" for j in range(q)]
-    aggs += [f"{total}({_z(j)} * {_z(l)}) AS p{j}_{l}" for j in range(q) for l in range(j, q)]
+def _moment_aggregates(q: int, total: str, weighted: bool = False) -> list[str]:
+    """n (rows), sums s_j and products p_j_l; ``weighted``: every sum carries the row's
+    weight k_w, and nw is the weight total (what the algebra uses where it counts rows)."""
+    w = "k_w * " if weighted else ""
+    aggs = ["count(*) AS n"] + ([f"{total}(k_w) AS nw"] if weighted else [])
+    aggs += [f"{total}({w}{_z(j)}) AS s{j}" for j in range(q)]
+    aggs += [f"{total}({w}{_z(j)} * {_z(l)}) AS p{j}_{l}" for j in range(q) for l in range(j, q)]
     return aggs
 
 
-def unit_moments_sql(used: str, q: int, total: str = "sum") -> str:
+def unit_moments_sql(used: str, q: int, total: str = "sum", weighted: bool = False) -> str:
     """Per-unit n, sums s_j and products p_j_l (j <= l) of the q design columns.
 
     ``total`` is ``sum``, or ``fsum`` (compensated, order-independent) when the query
     runs on several threads and the result must not depend on their timing.
     """
-    aggs = _moment_aggregates(q, total) + ["min(k_period) AS t_lo", "max(k_period) AS t_hi"]
+    aggs = _moment_aggregates(q, total, weighted) + ["min(k_period) AS t_lo", "max(k_period) AS t_hi"]
     return render("unit_moments", rows=f"({used})", aggregates=", ".join(aggs))
 
 
-def pooled_moments_sql(used: str, q: int, total: str = "sum") -> str:
-    aggs = _moment_aggregates(q, total) + ["count(DISTINCT k_unit) AS n_units", "min(k_period) AS t_min",
+def pooled_moments_sql(used: str, q: int, total: str = "sum", weighted: bool = False) -> str:
+    aggs = _moment_aggregates(q, total, weighted) + ["count(DISTINCT k_unit) AS n_units", "min(k_period) AS t_min",
                                            "max(k_period) AS t_max"]
     return render("pooled_moments", rows=f"({used})", aggregates=", ".join(aggs))
 
 
-def period_moments_sql(used: str, q: int, total: str = "sum") -> str:
-    aggs = _moment_aggregates(q, total) + ["count(DISTINCT k_unit) AS n_units"]
+def period_moments_sql(used: str, q: int, total: str = "sum", weighted: bool = False) -> str:
+    aggs = _moment_aggregates(q, total, weighted) + ["count(DISTINCT k_unit) AS n_units"]
     return render("period_moments", rows=used, aggregates=", ".join(aggs))
 
 
@@ -368,11 +377,13 @@ def _w(j: int, l: int) -> str:
     return f"w{min(j, l)}_{max(j, l)}"
 
 
-def transformed_entry(j: int, l: int, q: int, mode: str) -> str:
+def transformed_entry(j: int, l: int, q: int, mode: str, count: str = "n") -> str:
     """SQL for entry (j, l) of a unit's transformed cross-product over (regressors,
-    [constant], outcome), from its moments n, s_*, p_*_* (see moments.py)."""
+    [constant], outcome), from its moments n, s_*, p_*_* (see moments.py); ``count`` is
+    the unit's row count ``n``, or its weight total ``nw`` in a weighted fit (weighted
+    unit means: S - s s'/nw with weighted sums)."""
     if mode == "within":
-        return f"({_p(j, l)} - s{j} * s{l} / n)"
+        return f"({_p(j, l)} - s{j} * s{l} / {count})"
     if mode == "plain":
         return _p(j, l)
     const = q - 1  # index of the constant in the intercept layout; the outcome follows it
@@ -382,19 +393,20 @@ def transformed_entry(j: int, l: int, q: int, mode: str) -> str:
 
     a, b = col(j), col(l)
     if a is None and b is None:
-        return "n"
+        return count
     if a is None or b is None:
         return f"s{a if b is None else b}"
     return _p(a, b)
 
 
-def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum") -> str:
+def unit_pass_sql(units: str, q: int, mode: str, expand: bool, total: str = "sum", weighted: bool = False) -> str:
     """Sums over units of the transformed cross-products and, with ``expand``, of the
     products that give the unit-cluster meat for any coefficient vector (moments.py)."""
     dim = q + (1 if mode == "constant" else 0)
     k = dim - 1
     keep = "n > 1" if mode == "within" else "n > 0"
-    entries = ["t_lo", "t_hi"] + [f"{transformed_entry(j, l, q, mode)} AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
+    count = "nw" if weighted else "n"
+    entries = ["t_lo", "t_hi"] + [f"{transformed_entry(j, l, q, mode, count)} AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
     entries += [f"p{j}_{j} AS raw{j}" for j in range(q)]
     sums = [f"{total}({_w(j, l)}) AS {_w(j, l)}" for j in range(dim) for l in range(j, dim)]
     sums += [f"{total}(raw{j}) AS r{j}" for j in range(q)]
@@ -418,12 +430,14 @@ def stream_rows_sql(used: str, q: int) -> str:
 
 
 def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dialect = DUCKDB,
-                   required: Sequence[str] = ()) -> str:
+                   required: Sequence[str] = (), weighted: bool = False) -> str:
     """Rows by reason; ``required``: key columns (absorbed effects') whose missing value drops a row."""
     finite = " AND ".join([f"{dialect.is_finite(_z(j))}" for j in range(q)] + [f"{k} IS NOT NULL" for k in required])
     usable = f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)} AND " if differenced else ""
     counts = ["count(*) AS n_rows",
               f"count(*) FILTER (WHERE k_unit IS NULL OR ({usable}NOT coalesce({finite}, false))) AS missing"]
+    if weighted:  # usable rows (or differences) whose weight is 0
+        counts.append(f"count(*) FILTER (WHERE k_unit IS NOT NULL AND {usable}coalesce({finite}, false) AND k_w = 0) AS zero_weight")
     if differenced:  # rows without a unit are counted as missing above, and only there
         counts += [
             "count(*) FILTER (WHERE k_unit IS NOT NULL AND k_prev IS NULL) AS first_of_unit",
@@ -452,7 +466,7 @@ def period_join_sql(n_periods: int, k: int) -> str:
     return f"LEFT JOIN (VALUES {rows}) AS pe({names}) ON r.k_period = pe.k_period"
 
 
-def adjusted_columns(q: int, intercept: bool, periods: bool) -> str:
+def adjusted_columns(q: int, intercept: bool, periods: bool, weighted: bool = False) -> str:
     """a_j = z_j - Gamma_t,j (regressor net of its period-effect projection) and the raw
     residual e = y - x'b - gamma_t - b_one, from shifted design columns."""
     k = q - 1
@@ -463,6 +477,8 @@ def adjusted_columns(q: int, intercept: bool, periods: bool) -> str:
     if intercept:
         cols.append("1.0 AS a_one")
         resid += " - $b_one"
+    if weighted:
+        cols.append("r.k_w AS k_w")
     return ", ".join(cols) + f", {resid} AS e"
 
 
@@ -471,23 +487,26 @@ def _a_names(q: int, intercept: bool) -> list[str]:
 
 
 def centered_ctes(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int,
-                  total: str = DUCKDB.compensated) -> str:
+                  total: str = DUCKDB.compensated, weighted: bool = False) -> str:
     """CTEs ending in ``centered``: per row x~_j AS x_j and u~ AS u (unit-demeaned under
-    within, after removing period effects), with the unit and cluster keys."""
+    within, after removing period effects), with the unit and cluster keys. ``weighted``:
+    weighted unit means, and u~ carries the row's weight (u = w u~), so that sums of
+    x u and u u x x are the weighted scores and the HC1 meat sum w^2 u~^2 x~ x~'."""
     keys = ["k_unit", "k_period"] + [f"k_c{i}" for i in range(n_clusters)]
     names = _a_names(q, intercept)
     adjusted = (f"adjusted AS (SELECT {', '.join('r.' + k for k in keys)}, "
-                f"{adjusted_columns(q, intercept, n_periods > 0)} FROM used AS r {period_join_sql(n_periods, q - 1)})")
+                f"{adjusted_columns(q, intercept, n_periods > 0, weighted)} FROM used AS r {period_join_sql(n_periods, q - 1)})")
     parts = [f"used AS ({used})", adjusted]
+    w, count, u = ("k_w * ", f"{total}(k_w)", "k_w * ") if weighted else ("", "count(*)", "")
     if demean:
-        means = ", ".join(f"{total}({a}) / count(*) AS m_{a}" for a in names)
-        parts.append(f"means AS (SELECT k_unit, {means}, {total}(e) / count(*) AS m_e FROM adjusted "
+        means = ", ".join(f"{total}({w}{a}) / {count} AS m_{a}" for a in names)
+        parts.append(f"means AS (SELECT k_unit, {means}, {total}({w}e) / {count} AS m_e FROM adjusted "
                      "GROUP BY k_unit HAVING count(*) > 1)")
         xs = ", ".join(f"{a} - m_{a} AS x{i}" for i, a in enumerate(names))
-        parts.append(f"centered AS (SELECT {', '.join(keys)}, {xs}, e - m_e AS u FROM adjusted JOIN means USING (k_unit))")
+        parts.append(f"centered AS (SELECT {', '.join(keys)}, {xs}, {u}(e - m_e) AS u FROM adjusted JOIN means USING (k_unit))")
     else:
         xs = ", ".join(f"{a} AS x{i}" for i, a in enumerate(names))
-        parts.append(f"centered AS (SELECT {', '.join(keys)}, {xs}, e AS u FROM adjusted)")
+        parts.append(f"centered AS (SELECT {', '.join(keys)}, {xs}, {u}e AS u FROM adjusted)")
     return ",\n".join(parts)
 
 
@@ -495,7 +514,8 @@ def used_rows_sql(rows: str, valid: str) -> str:
     return f"SELECT * FROM ({rows}) AS r WHERE {valid}"
 
 
-def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int, dialect: Dialect = DUCKDB) -> str:
+def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int, dialect: Dialect = DUCKDB,
+                       weighted: bool = False) -> str:
     """Meat for each cluster set (one-way: c0; two-way: c0, c1 and their intersection).
 
     It runs over all rows on several threads, so every sum is compensated (``fsum``):
@@ -508,23 +528,30 @@ def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_perio
         sets, key = "GROUPING SETS ((k_c0))", "GROUPING(k_c0) AS gid"
     else:
         sets, key = "GROUPING SETS ((k_c0), (k_c1), (k_c0, k_c1))", "GROUPING(k_c0, k_c1) AS gid"
-    centered = centered_ctes(used, q, intercept, demean, n_periods, n_clusters)
+    centered = centered_ctes(used, q, intercept, demean, n_periods, n_clusters, weighted=weighted)
     return render("cluster_scores", centered=centered, sets_key=key, sets=sets, scores=scores, outer=outer)
 
 
-def residual_moments_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, dialect: Dialect = DUCKDB) -> str:
+def residual_moments_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, dialect: Dialect = DUCKDB,
+                         weighted: bool = False) -> str:
     k = q - 1 + (1 if intercept else 0)
     sums = ", ".join(f"{dialect.compensated}(u * u * x{i} * x{j}) AS h{i}_{j}" for i in range(k) for j in range(i, k))
-    return render("residual_moments", centered=centered_ctes(used, q, intercept, demean, n_periods, 0), sums=sums)
+    return render("residual_moments", centered=centered_ctes(used, q, intercept, demean, n_periods, 0, weighted=weighted), sums=sums)
 
 
-def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, by_unit: bool, total: str) -> str:
-    """Cluster scores from per-unit sums (clusters that are units or unions of units)."""
+def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, by_unit: bool, total: str,
+                    weighted: bool = False) -> str:
+    """Cluster scores from per-unit sums (clusters that are units or unions of units);
+    ``weighted``: sums carry the row's weight (a unit's score sum w a e - (sum w a)(sum w e)/sum w)."""
     names = _a_names(q, intercept)
     k = len(names)
-    unit_sums = ", ".join(f"{total}({a} * e) AS ae{i}, {total}({a}) AS sa{i}" for i, a in enumerate(names))
+    w = "k_w * " if weighted else ""
+    unit_sums = ", ".join(f"{total}({w}{a} * e) AS ae{i}, {total}({w}{a}) AS sa{i}" for i, a in enumerate(names))
+    if weighted:
+        unit_sums += f", {total}(k_w) AS nw"
     if demean:
-        scores = ", ".join(f"ae{i} - sa{i} * se / n AS e{i}" for i in range(k))
+        count = "nw" if weighted else "n"
+        scores = ", ".join(f"ae{i} - sa{i} * se / {count} AS e{i}" for i in range(k))
     else:
         scores = ", ".join(f"ae{i} AS e{i}" for i in range(k))
     outer = ", ".join(f"{total}(e{i} * e{j}) AS o{i}_{j}" for i in range(k) for j in range(i, k))
@@ -535,11 +562,11 @@ def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods:
         summed = ", ".join(f"{total}(e{i}) AS e{i}" for i in range(k))
         final = f"SELECT CAST(g AS VARCHAR) AS g, {summed} FROM scores GROUP BY g ORDER BY g"
         pick = "min(k_c0)"
-    adjusted = adjusted_columns(q, intercept, n_periods > 0)
+    adjusted = adjusted_columns(q, intercept, n_periods > 0, weighted)
     if not by_unit:
         adjusted = "r.k_c0, " + adjusted
     return render("unit_scores", used=used, adjusted=adjusted, period_join=period_join_sql(n_periods, q - 1),
-                  pick=pick, sum_e=f"{total}(e)", unit_sums=unit_sums, scores=scores, final=final,
+                  pick=pick, sum_e=f"{total}({w}e)", unit_sums=unit_sums, scores=scores, final=final,
                   keep="n > 1" if demean else "true")
 
 
@@ -568,19 +595,31 @@ def distinct_values_sql(source: str, expr: str, limit: int) -> str:
     return f"SELECT DISTINCT CAST(({expr}) AS VARCHAR) AS v FROM {source} AS src WHERE ({expr}) IS NOT NULL ORDER BY v LIMIT {int(limit)}"
 
 
-def demeaned_rows_sql(used: str, q: int, n_clusters: int) -> str:
+def demeaned_rows_sql(used: str, q: int, n_clusters: int, weighted: bool = False) -> str:
     """Used rows with every design column minus its unit mean (two passes: the means
-    are a GROUP BY joined back), for data whose unit means dwarf their spread."""
-    keys = "k_unit, k_period" + "".join(f", k_c{i}" for i in range(n_clusters))
-    cols = ", ".join(f"{_z(j)} - avg({_z(j)}) OVER (PARTITION BY k_unit) AS {_z(j)}" for j in range(q))
+    are a GROUP BY joined back), for data whose unit means dwarf their spread;
+    ``weighted``: weighted unit means."""
+    keys = "k_unit, k_period" + "".join(f", k_c{i}" for i in range(n_clusters)) + (", k_w" if weighted else "")
+    if weighted:
+        cols = ", ".join(f"{_z(j)} - sum(k_w * {_z(j)}) OVER (PARTITION BY k_unit) / sum(k_w) OVER (PARTITION BY k_unit) "
+                         f"AS {_z(j)}" for j in range(q))
+    else:
+        cols = ", ".join(f"{_z(j)} - avg({_z(j)}) OVER (PARTITION BY k_unit) AS {_z(j)}" for j in range(q))
     return f"SELECT {keys}, {cols} FROM ({used}) AS r"
 
 
-def probe_sql(rows: str, q: int, dialect: Dialect = DUCKDB) -> str:
+def probe_sql(rows: str, q: int, dialect: Dialect = DUCKDB, weighted: bool = False) -> str:
     """Means and largest magnitudes of the finite values of the design columns over ``rows``
     (built on the source's first rows): the shift subtracted and the scale multiplied by
-    before accumulating."""
-    means = ", ".join(f"avg({_z(j)}) FILTER (WHERE {dialect.is_finite(_z(j))}) AS a{j}, "
+    before accumulating. ``weighted``: weighted means over the rows of positive weight."""
+    if weighted:
+        def mean(j):
+            keep = f"{dialect.is_finite(_z(j))} AND k_w > 0"
+            return f"sum(k_w * {_z(j)}) FILTER (WHERE {keep}) / sum(k_w) FILTER (WHERE {keep})"
+    else:
+        def mean(j):
+            return f"avg({_z(j)}) FILTER (WHERE {dialect.is_finite(_z(j))})"
+    means = ", ".join(f"{mean(j)} AS a{j}, "
                       f"max(abs({_z(j)})) FILTER (WHERE {dialect.is_finite(_z(j))}) AS m{j}" for j in range(q))
     return f"SELECT {means} FROM ({rows}) AS head"
 
@@ -908,6 +947,20 @@ def grouping_id(keys: Sequence[str], grouped: Sequence[str]) -> int:
     for key in keys:
         out = (out << 1) | (0 if key in grouped else 1)
     return out
+
+
+# ---------------------------------------------------------------- weights
+
+
+def bad_weights_sql(source: str, unit: str, period: str, weight: str, limit: int) -> tuple[str, str]:
+    """The count of rows whose weight (checked column ``weight``, quoted) is negative,
+    missing or not finite, and a query for the first ``limit`` of them (unit, period, weight)."""
+    value = f"CAST({weight} AS DOUBLE)"
+    bad = f"{value} IS NULL OR NOT isfinite({value}) OR {value} < 0"
+    count = f"SELECT count(*) AS n_bad FROM {source} AS src WHERE {bad}"
+    rows = (f"SELECT {quote_ident(unit)} AS k_unit, {quote_ident(period)} AS k_period, {value} AS k_w "
+            f"FROM {source} AS src WHERE {bad} LIMIT {int(limit)}")
+    return count, rows
 
 
 # ---------------------------------------------------------------- write-back (bigpanel.writeback)

@@ -334,6 +334,8 @@ def _pcg(copy: Copy, x: list[np.ndarray], r: list[np.ndarray], raw: np.ndarray, 
     measure is below ``tolerance`` (the recursion's estimate) or after ``budget`` sweeps."""
     inv = _inverse_counts(copy)
     scale = np.where(raw > 0, raw, 1.0)
+    x = [v.copy() for v in x]  # updated in place below: memory stays a few arrays per effect
+    r = [v.copy() for v in r]
     zr = [ri * w for ri, w in zip(r, inv)]
     p = [v.copy() for v in zr]
     rz = _dot(r, zr)
@@ -343,14 +345,17 @@ def _pcg(copy: Copy, x: list[np.ndarray], r: list[np.ndarray], raw: np.ndarray, 
         done += 1
         pw = _dot(p, w)
         with np.errstate(divide="ignore", invalid="ignore"):
-            step = np.where(pw > 0, rz / pw, 0.0)
-        x = [xi + step[:, None] * pi for xi, pi in zip(x, p)]
-        r = [ri - step[:, None] * wi for ri, wi in zip(r, w)]
-        zr = [ri * v for ri, v in zip(r, inv)]
+            step = np.where(pw > 0, rz / pw, 0.0)[:, None]
+        for xi, pi, ri, wi, zi, v in zip(x, p, r, w, zr, inv):
+            xi += step * pi
+            ri -= step * wi
+            np.multiply(ri, v, out=zi)
         rz_new = _dot(r, zr)
         with np.errstate(divide="ignore", invalid="ignore"):
-            beta = np.where(rz > 0, rz_new / rz, 0.0)
-        p = [zi + beta[:, None] * pi for zi, pi in zip(zr, p)]
+            beta = np.where(rz > 0, rz_new / rz, 0.0)[:, None]
+        for pi, zi in zip(p, zr):
+            pi *= beta
+            pi += zi
         rz = np.maximum(rz_new, 0.0)
     return x, done
 
@@ -378,8 +383,11 @@ def solve(copy: Copy, tolerance: float = DEFAULT_TOLERANCE, max_iterations: int 
 # ---------------------------------------------------------------- degrees of freedom
 
 
-def _components(copy: Copy, a: int, b: int) -> int:
-    """Connected components of the graph between the levels (with rows) of effects a and b."""
+def level_groups(copy: Copy, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
+    """Connected groups of the graph between the levels of effects a and b (two levels
+    linked when they share a row): a group number per level of a and per level of b.
+    Chunk by chunk: each chunk's edges join the groups found so far (repeated edges are
+    harmless, so they are not sorted out: sorting cost more than the graph)."""
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
@@ -387,12 +395,18 @@ def _components(copy: Copy, a: int, b: int) -> int:
     n = la + lb
     labels = np.arange(n)
     for chunk in copy.store.chunks([f"i{a}", f"i{b}"], size=4 * CHUNK_ROWS):
-        u, v = labels[chunk[f"i{a}"]], labels[la + chunk[f"i{b}"]]  # repeated edges are harmless
+        u, v = labels[chunk[f"i{a}"]], labels[la + chunk[f"i{b}"]]
         graph = coo_matrix((np.ones(len(u), dtype=np.int8), (u, v)), shape=(n, n))
         _, comp = connected_components(graph, directed=False)
         labels = comp[labels]
-    active = np.r_[copy.counts[a] > 0, copy.counts[b] > 0]
-    return int(np.count_nonzero(np.bincount(labels[active], minlength=n)))
+    return labels[:la], labels[la:]
+
+
+def _components(copy: Copy, a: int, b: int) -> int:
+    """Connected components of the graph between the levels (with rows) of effects a and b."""
+    ga, gb = level_groups(copy, a, b)
+    active = np.r_[ga[copy.counts[a] > 0], gb[copy.counts[b] > 0]]
+    return int(np.count_nonzero(np.bincount(active, minlength=len(ga) + len(gb))))
 
 
 def _rank(copy: Copy, subset: Sequence[int]) -> int:

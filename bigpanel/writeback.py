@@ -312,20 +312,12 @@ def _centre(copy, values: list[np.ndarray], first: int) -> None:
 def _pair_groups(copy, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
     """Connected groups of the graph between the levels of effects ``a`` and ``b`` (a
     level of each linked when they share a row): a group number per level of ``a`` and
-    per level of ``b``. Read chunk by chunk from the fit's scratch copy, labels merged as
-    the chunks come."""
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import connected_components
+    per level of ``b`` (:func:`bigpanel.sweeps.level_groups`, which the redundancy count
+    uses too; chunk by chunk, edges not sorted: numpy 2.4's ``unique`` took 20 s on 3M
+    values here, against 0.17 s for a sort)."""
+    from .sweeps import level_groups
 
-    la = copy.n_levels[a]
-    n = la + copy.n_levels[b]
-    labels = np.arange(n)
-    for chunk in copy.store.chunks([f"i{a}", f"i{b}"]):
-        pairs = np.unique(labels[chunk[f"i{a}"].astype(np.int64)] * n + labels[la + chunk[f"i{b}"].astype(np.int64)])
-        graph = coo_matrix((np.ones(len(pairs), dtype=np.int8), (pairs // n, pairs % n)), shape=(n, n))
-        _, component = connected_components(graph, directed=False)
-        labels = component[labels]
-    return labels[:la], labels[la:]
+    return level_groups(copy, a, b)
 
 
 def _estimate_params(slopes, columns, intercept: float, periods) -> dict:

@@ -66,6 +66,15 @@ def dummies(values: pd.Series, drop_first: bool) -> np.ndarray:
     return pd.get_dummies(values, drop_first=drop_first, dtype=float).to_numpy()
 
 
+def effect_block(df: pd.DataFrame, estimator: str, period_effects: bool) -> np.ndarray:
+    """The dense columns an estimator's effects take: unit dummies (within) or a constant,
+    then period dummies but the first."""
+    parts = [dummies(df["unit"], drop_first=False) if estimator == "within" else np.ones((len(df), 1))]
+    if period_effects:
+        parts.append(dummies(df["period"], drop_first=True))
+    return np.hstack(parts)
+
+
 def codes(values: pd.Series) -> np.ndarray:
     return pd.factorize(values)[0]
 

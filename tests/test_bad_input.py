@@ -85,6 +85,12 @@ CASES = [
          "Option 'period_step' must be a whole number from 1 to 2**53 (9,007,199,254,740,992), got 99999999999999999999. Give the distance between consecutive periods.", 2),
     Case("bigpanel fit depots.parquet $FIT --period-step abc",
          "Error: Invalid value for '--period-step': … integer", 2, usage=True),
+    Case("bigpanel fit depots.parquet $FIT --weights depot_kind",
+         "Option 'weights' names column 'depot_kind' in depots.parquet, which has type VARCHAR, not a number; give a numeric column of non-negative weights.", 2),
+    Case("bigpanel fit depots.parquet $FIT --endogenous promo",
+         "Option 'endogenous' is given without 'instruments'. Two-stage least squares needs both: --endogenous \"T1, T2\" --instruments \"Z1, Z2\".", 2),
+    Case("bigpanel fit depots.parquet $FIT --endogenous promo,month --instruments depot",
+         "Option 'instruments' gives 1 excluded instrument for 2 endogenous terms, so the model is not identified (under-identified); give at least as many instruments as endogenous terms.", 2),
     Case("bigpanel fit depots.parquet $FIT --threads 0",
          "Option --threads must be a whole number from 1 to …, got 0. Give a count up to the machine's cores, or leave it out to use all cores.", 2),
     # DuckDB aborts the whole process (std::bad_alloc) on such a count if it gets it: isolated in a subprocess

@@ -379,3 +379,34 @@ def test_projection_gives_the_effects_and_residuals_of_the_dummy_variable_fit(pa
     firm = next(v for v in proj.effects if v.effect.label == "firm")
     assert firm.levels.column_names == ["k_e1_0"] and len(firm.value) == len(firm.rows) == firm.levels.num_rows
     assert proj.solution.converged
+
+
+def test_the_same_numbers_on_any_thread_count(panel):
+    # Rows reach the scratch copy on one thread, in the files' order, and every sum after
+    # is taken in that order: the JSON is byte-identical but for run.threads (DUCKDB-NOTES:
+    # users rerunning a job expect identical numbers).
+    _, path = panel
+    texts = []
+    for threads in (1, 3):
+        res = bigpanel.fit(path, "y", "x1, x2", "worker", "year", effects="worker,firm,year", cluster="worker,year",
+                           engine=bigpanel.Engine(threads=threads))
+        out = res.to_dict()
+        out.pop("run")
+        texts.append(str(out))
+    assert texts[0] == texts[1]
+
+
+def test_terms_the_effects_explain_are_left_out_by_name(panel, tmp_path):
+    # Common practice (ESTIMATION.md: effects take priority): a term constant within
+    # workers, and one that is a firm value plus a year trend, lie in the effects' span.
+    df, _ = panel
+    df = df.assign(worker_kind=(df.worker % 7) * 1.3, firm_year=df.firm * 0.5 + df.year * 0.1)
+    path = write_parquet(df, tmp_path / "spanned.parquet")
+    res = bigpanel.fit(path, "y", "x1, worker_kind, firm_year, x2", "worker", "year", effects="worker,firm,year",
+                       variance="homoskedastic")
+    assert [c.term for c in res.coefficients] == ["x1", "x2"]
+    assert res.terms_dropped == {"worker_kind": "no variation left once the effects are absorbed",
+                                 "firm_year": "no variation left once the effects are absorbed"}
+    plain = bigpanel.fit(path, "y", "x1, x2", "worker", "year", effects="worker,firm,year", variance="homoskedastic")
+    np.testing.assert_allclose([c.estimate for c in res.coefficients], [c.estimate for c in plain.coefficients],
+                               rtol=1e-9)

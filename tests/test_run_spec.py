@@ -445,3 +445,69 @@ def test_write_atomic_keeps_the_old_file_when_writing_fails(tmp_path, monkeypatc
         write_atomic(target, '{"new": true}\n')
     assert json.loads(target.read_text()) == {"old": True}
     assert [p.name for p in tmp_path.iterdir()] == ["manifest.json"]
+
+
+def test_a_subset_run_keeps_the_other_models_results_usable(depots, tmp_path):
+    spec = write_spec(tmp_path, depots, '[models.a]\nregressors = ["vans"]\n[models.b]\nregressors = ["promo"]\n')
+    bigpanel.run_spec(spec, out=tmp_path / "out")
+    before = (tmp_path / "out" / "models" / "a.json").stat().st_mtime_ns
+    part = bigpanel.run_spec(spec, out=tmp_path / "out", models="b")
+    assert part.models["a"]["status"] == "skipped" and part.models["a"]["reason"] == "not chosen by --models"
+    assert part.models["a"]["file"] == "models/a.json" and part.models["b"]["status"] == "done"
+    assert (tmp_path / "out" / "models" / "a.json").stat().st_mtime_ns == before
+    assert "| a | b |" in (tmp_path / "out" / "comparison.md").read_text()
+    again = bigpanel.run_spec(spec, out=tmp_path / "out", resume=True)
+    assert {n: e["status"] for n, e in again.models.items()} == {"a": "skipped", "b": "skipped"}
+
+
+def test_several_sources_in_one_spec(depots, tmp_path):
+    """A Parquet source and a CSV copy of its rows (with 'NA' for missing promo values):
+    the same model on each gives the same numbers (pandas wrote the CSV)."""
+    import pandas as pd
+
+    df = pd.concat([pd.read_parquet(f) for f in sorted(panel(depots).glob("*.parquet"))])
+    df = df[df["depot"] <= 200]
+    df.to_csv(tmp_path / "depots.csv", index=False, na_rep="NA")
+    spec = tmp_path / "two.toml"
+    spec.write_text(f"""
+[sources.files]
+path = "{panel(depots)}"
+where = "depot <= 200"
+unit = "depot"
+period = "month"
+[sources.text]
+path = "depots.csv"
+csv_nulls = ["NA"]
+csv_options = {{ delim = "," }}
+unit = "depot"
+period = "month"
+[defaults]
+outcome = "parcels"
+regressors = ["staff_hours", "vans", "promo"]
+[models.on_files]
+source = "files"
+[models.on_text]
+source = "text"
+""")
+    report = bigpanel.run_spec(spec, out=tmp_path / "out")
+    assert report.exit_code == 0 and set(report.scans) == {"files", "text"}
+    a, b = (json.loads((tmp_path / "out" / "models" / f"{n}.json").read_text()) for n in ("on_files", "on_text"))
+    assert a["n_obs"] == b["n_obs"] == len(df)
+    for x, y in zip(a["coefficients"], b["coefficients"]):
+        np.testing.assert_allclose(x["estimate"], y["estimate"], rtol=1e-9)  # CSV text round-trips doubles to ~1e-15
+        np.testing.assert_allclose(x["std_error"], y["std_error"], rtol=1e-9)
+    assert [f["path"] for f in report.manifest["inputs"]["text"]] == [str(tmp_path / "depots.csv")]
+
+
+def test_effect_columns_are_checked_and_folders_read_relative_to_the_spec(depots, tmp_path, monkeypatch):
+    spec = write_spec(tmp_path, depots, '[models.a]\nregressors = ["staff_hours"]\neffects = ["depot", "month", "regon"]\n')
+    with pytest.raises(SpecError, match="model 'a', key 'effects': Column 'regon' not found in demo-depots. "
+                                        "Did you mean 'region'"):
+        bigpanel.run_spec(spec, out=tmp_path / "out")
+    spec = write_spec(tmp_path, depots, '[models.a]\nregressors = ["staff_hours"]\nwrite_effects = "effects"\n')
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    report = bigpanel.run_spec(spec, out=tmp_path / "out")
+    assert report.exit_code == 0 and (tmp_path / "effects" / "effect_depot.parquet").is_file()
+    assert not (elsewhere / "effects").exists()

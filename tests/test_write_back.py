@@ -217,6 +217,23 @@ def test_fit_many_writes_each_models_files(tmp_path, panel, source):
     np.testing.assert_allclose(both["residual"], both["ref"], rtol=0, atol=TOL)
 
 
+def test_spec_file_writes_relative_to_itself(tmp_path, panel, source):
+    """A spec file's model takes write_residuals too, relative to the spec file like its
+    source path (statsmodels LSDV as the reference)."""
+    spec = tmp_path / "jobs" / "spec.toml"
+    spec.parent.mkdir()
+    spec.write_text(f'[source]\npath = "{source}"\nunit = "unit"\nperiod = "period"\n\n'
+                    '[models.main]\noutcome = "y"\nregressors = ["x1", "x2"]\nwrite_residuals = "rows"\n')
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        done = bigpanel.run_spec(spec, tmp_path / "run")
+    assert done.exit_code == 0
+    res = _read(tmp_path / "jobs" / "rows" / "residuals.parquet")
+    ols = _dummy_ols(panel, ["unit"])
+    both = panel.assign(ref=ols.resid).merge(res, on=["unit", "period"], validate="one_to_one")
+    np.testing.assert_allclose(both["residual"], both["ref"], rtol=0, atol=TOL)
+
+
 def _digest(folder: Path) -> dict:
     return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
             for p in sorted(folder.rglob("*")) if p.is_file()}
@@ -377,6 +394,33 @@ def test_many_effects_disconnected_firms_centred_per_group(tmp_path):
     ols = _worker_dummy_ols(df, [["worker"], ["firm"], ["year"]])
     res = df.assign(ref=ols.fittedvalues).merge(_read(r.written["residuals"]), on=["worker", "year"])
     np.testing.assert_allclose(res["fitted"], res["ref"], rtol=0, atol=TOL)
+
+
+def test_groups_of_many_levels_read_in_chunks():
+    """The connected groups of two effects' levels, read chunk by chunk, against scipy's
+    connected_components on the whole graph at once; 120,000 levels, so that label * levels
+    passes 2**31 (a 32-bit product overflowed at this size)."""
+    from types import SimpleNamespace
+
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    from bigpanel.writeback import _pair_groups
+
+    rng = np.random.default_rng(4)
+    n_a, n_b, n_rows = 120_000, 400, 300_000
+    a = np.sort(rng.integers(0, n_a, n_rows)).astype(np.int32)  # sorted, as by unit: later chunks' levels unseen at first
+    b = (a // 200 + rng.integers(0, 2, n_rows) * (rng.random(n_rows) < 0.01)).astype(np.int32) % n_b
+    chunks = [{"i0": a[i:i + 40_000], "i1": b[i:i + 40_000]} for i in range(0, n_rows, 40_000)]
+    copy = SimpleNamespace(n_levels=[n_a, n_b], store=SimpleNamespace(chunks=lambda names: iter(chunks)))
+    hub, own = _pair_groups(copy, 0, 1)
+    graph = coo_matrix((np.ones(n_rows), (a.astype(np.int64), n_a + b.astype(np.int64))), shape=(n_a + n_b,) * 2)
+    _, whole = connected_components(graph, directed=False)
+    labels = np.r_[hub, own]
+    seen = np.r_[np.bincount(a, minlength=n_a) > 0, np.bincount(b, minlength=n_b) > 0]
+    # the same partition of the levels with rows: equal labels exactly when scipy's are equal
+    pairs = set(zip(labels[seen].tolist(), whole[seen].tolist()))
+    assert len(pairs) == len(set(labels[seen].tolist())) == len(set(whole[seen].tolist()))
 
 
 def test_cell_effect_written_with_both_columns(tmp_path):

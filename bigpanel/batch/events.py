@@ -68,16 +68,19 @@ def remove_handler(handler: logging.Handler) -> None:
 
 class Progress:
     """A one-line progress display on a terminal (off unless :meth:`enable` was called
-    with a terminal stream). Updated from worker threads; drawn at most 10 times a second."""
+    with a terminal stream): the pass over a source, its chunks, rows per second and the
+    time left. Chunk starts come from worker threads; a ticker thread redraws twice a
+    second while a pass runs, so the elapsed time moves during a long single query."""
 
     def __init__(self) -> None:
         self.stream: TextIO | None = None
-        self._lock = threading.Lock()
+        self._lock = threading.RLock()
         self._shown = 0
-        self._last = 0.0
+        self._active = False
+        self._ticker: threading.Thread | None = None
         self.title = ""
         self.total_rows: int | None = None
-        self.chunks = 0
+        self.chunks = 1
         self.started_chunks = 0
         self.started = 0.0
 
@@ -86,7 +89,7 @@ class Progress:
         return self.stream is not None
 
     def disable(self) -> None:
-        self.clear()
+        self.end()
         self.stream = None
 
     def begin(self, title: str, chunks: int, total_rows: int | None) -> None:
@@ -94,8 +97,11 @@ class Progress:
             return
         with self._lock:
             self.title, self.chunks, self.total_rows = title, max(chunks, 1), total_rows
-            self.started_chunks, self.started = 0, time.monotonic()
-        self._draw(force=True)
+            self.started_chunks, self.started, self._active = 0, time.monotonic(), True
+            if self._ticker is None or not self._ticker.is_alive():
+                self._ticker = threading.Thread(target=self._tick, name="bigpanel-progress", daemon=True)
+                self._ticker.start()
+        self._draw()
 
     def chunk_started(self) -> None:
         if self.stream is None:
@@ -104,36 +110,47 @@ class Progress:
             self.started_chunks += 1
         self._draw()
 
-    def _draw(self, force: bool = False) -> None:
+    def end(self) -> None:
+        with self._lock:
+            self._active = False
+        self.clear()
+
+    def _tick(self) -> None:
+        while self.stream is not None:
+            time.sleep(0.5)
+            if self._active:
+                self._draw()
+
+    def _draw(self) -> None:
         stream = self.stream
         if stream is None:
             return
         with self._lock:
-            t = time.monotonic()
-            if not force and t - self._last < 0.1:
+            if not self._active:
                 return
-            self._last = t
-            elapsed = t - self.started
-            # a chunk is counted as done when the next one starts (one per worker in flight)
+            elapsed = time.monotonic() - self.started
+            # a chunk counts as done when a later one starts (one per worker in flight)
             done = max(self.started_chunks - 1, 0) / self.chunks
-            parts = [self.title, f"chunk {min(self.started_chunks, self.chunks)}/{self.chunks}", f"{elapsed:.0f} s"]
+            parts = [f"{self.title}:", f"chunk {max(min(self.started_chunks, self.chunks), 1)}/{self.chunks}",
+                     f"{elapsed:.0f} s"]
             if done > 0 and elapsed > 0:
                 if self.total_rows:
                     parts.append(f"{self.total_rows * done / elapsed / 1e6:.1f}M rows/s")
                 parts.append(f"about {elapsed * (1 - done) / done:.0f} s left")
-            line = "  ".join(parts)[:120]
+            line = " ".join(parts)[:120]
             stream.write("\r" + line.ljust(self._shown))
             stream.flush()
             self._shown = len(line)
 
     def clear(self) -> None:
         stream = self.stream
-        if stream is None or not self._shown:
+        if stream is None:
             return
         with self._lock:
-            stream.write("\r" + " " * self._shown + "\r")
-            stream.flush()
-            self._shown = 0
+            if self._shown:
+                stream.write("\r" + " " * self._shown + "\r")
+                stream.flush()
+                self._shown = 0
 
 
 PROGRESS = Progress()

@@ -190,11 +190,15 @@ class RecordingEngine:
     def run_alone(self, sql, params=None):
         self._recorder.add(sql)
         self._begin(1)
-        return self._inner.run_alone(sql, params)
+        events.PROGRESS.chunk_started()
+        try:
+            return self._inner.run_alone(sql, params)
+        finally:
+            events.PROGRESS.end()
 
     def _begin(self, n_chunks: int) -> None:
         self._scan += 1
-        events.PROGRESS.begin(f"{self._title} query {self._scan}", n_chunks, self._inner.row_count())
+        events.PROGRESS.begin(f"{self._title}, pass {self._scan}", n_chunks, self._inner.row_count())
 
     def _recorded(self, make_sql):
         def make(chunk):
@@ -206,11 +210,17 @@ class RecordingEngine:
 
     def run_chunks(self, chunks, make_sql, params):
         self._begin(len(chunks))
-        return self._inner.run_chunks(chunks, self._recorded(make_sql), params)
+        try:
+            return self._inner.run_chunks(chunks, self._recorded(make_sql), params)
+        finally:
+            events.PROGRESS.end()
 
     def fold_chunks(self, chunks, make_sql, params, fold):
         self._begin(len(chunks))
-        return self._inner.fold_chunks(chunks, self._recorded(make_sql), params, fold)
+        try:
+            return self._inner.fold_chunks(chunks, self._recorded(make_sql), params, fold)
+        finally:
+            events.PROGRESS.end()
 
 
 # ---------------------------------------------------------------- one run
@@ -307,7 +317,7 @@ class _Run:
         log(logging.INFO, "run_started", f"Running {len(self.chosen)} of {len(self.spec.models)} models of "
             f"{self.spec.label} into {self.folder}.", spec=str(self.spec.path), folder=str(self.folder),
             models=self.chosen)
-        previous = self._previous() if self.resume else {}
+        previous = self._previous()
         self._fingerprints()
         self.manifest = self._manifest()
         entries = self.manifest["models"]
@@ -317,9 +327,13 @@ class _Run:
                              "seconds": None, "rows_used": None, "error": None}
             if name not in self.chosen:
                 entries[name].update(status="skipped", reason="not chosen by --models")
+                old = previous.get(name, {})
+                if old.get("key") == key and old.get("status") in ("done", "skipped") and old.get("file") \
+                        and _parses(self.folder / old["file"]):  # an earlier result of the same model stays usable
+                    entries[name].update(file=old["file"], rows_used=old.get("rows_used"), finished=old.get("finished"))
         todo = []
         for name in self.chosen:
-            old = previous.get(name, {})
+            old = previous.get(name, {}) if self.resume else {}
             file = self.models_folder / f"{name}.json"
             if old.get("status") in ("done", "skipped") and old.get("key") == entries[name]["key"] and old.get("file") \
                     and _parses(file):
@@ -474,7 +488,7 @@ class _Run:
         for filename, text in files.items():
             write_atomic(self.folder / filename, text)
         self.manifest["comparison"] = sorted(files)
-        log(logging.INFO, "comparison_written", f"Comparison tables of {len(pairs)} models written.", models=len(pairs))
+        log(logging.INFO, "comparison_written", f"Comparison tables of {len(pairs)} model{'s' if len(pairs) != 1 else ''} written.", models=len(pairs))
 
 
 def _message(exc: BaseException) -> str:

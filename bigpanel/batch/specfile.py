@@ -22,7 +22,7 @@ import re
 import tomllib
 from collections.abc import Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from .. import params
@@ -142,8 +142,12 @@ def read_spec(path) -> tuple[RunSpec, list[str]]:
         if not isinstance(table, dict):
             problems.append(f"{label}, {where}: must be a table ([models.{name}]) of model keys.")
             continue
-        entry = _model(label, name, table, defaults, sources, model_keys, problems)
+        entry = _model(path, name, table, defaults, sources, model_keys, problems)
         if entry is not None:
+            folders = {k: _resolve(path, getattr(entry.spec, k)) for k in ("write_effects", "write_residuals")
+                       if getattr(entry.spec, k)}  # written-back folders, like paths, relative to the spec file
+            if folders:
+                entry = replace(entry, spec=replace(entry.spec, **folders))
             out.models[name] = entry
             out.broken.discard(name)
     return out, problems
@@ -208,10 +212,11 @@ def _exists(path: str) -> bool:
     return os.path.exists(path)
 
 
-def _model(label: str, name: str, table: dict, defaults: dict, sources: dict, model_keys: tuple,
+def _model(spec_path: Path, name: str, table: dict, defaults: dict, sources: dict, model_keys: tuple,
            problems: list[str]) -> ModelEntry | None:
     from ..spec import FitSpec
 
+    label = spec_path.name
     where = _where("model", name)
     before = len(problems)
     unknown = [key for key in table if key not in model_keys]
@@ -246,6 +251,8 @@ def _model(label: str, name: str, table: dict, defaults: dict, sources: dict, mo
             continue
         try:
             params.check(key, merged[key])
+            if params.PARAMETERS[key].kind == "folder":  # a folder a fit writes: relative to the spec file too
+                merged[key] = _resolve(spec_path, merged[key])
             values[key] = merged[key]
         except InputError as exc:
             origin = "" if key in table else (" (from the source)" if key in source.shared else " (from [defaults])")
@@ -279,10 +286,12 @@ def open_entry(source: SourceEntry, model_where: str | None = None, engine_overr
     from ..source import Engine, open_source
 
     o = source.options
-    settings = {k: o[k] for k in params.SOURCE_PARAMETERS if params.SOURCE_PARAMETERS[k].scope == "setting" and k in o}
+    settings = {k: v for k, v in o.items() if not params.affects_result(k)}  # Engine's fields
     settings.update({k: v for k, v in (engine_overrides or {}).items() if v is not None})
-    return open_source(o.get("path"), table=o.get("table"), query=o.get("query"), where=combined_where(source, model_where),
-                       csv_types=o.get("csv_types"), csv_nulls=o.get("csv_nulls"), engine=Engine(**settings))
+    # every other source option is an argument of open_source by the same name
+    given = {k: v for k, v in o.items() if params.affects_result(k) and k != "path"}
+    given["where"] = combined_where(source, model_where)
+    return open_source(o.get("path"), **given, engine=Engine(**settings))
 
 
 @contextmanager
@@ -357,6 +366,9 @@ def _model_columns(label: str, m: ModelEntry, engine, numeric_expression) -> lis
     column("period", spec.period)
     for c in spec.cluster:
         column("cluster", c)
+    for e in spec.effects:
+        if e not in (spec.unit, spec.period):
+            column("effects", e)
     for term in spec.terms:
         if term.kind == "levels":
             column("regressors", term.expr)

@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .. import moments
+from .. import moments, sqlbuild
 from ..design import Design
 from ..requests import CrossProducts, Rows
 from ..spec import FitSpec
@@ -62,6 +62,7 @@ class Estimator:
     absorbs_units = False  # unit effects absorbed: counted in the df, scores demeaned
     demeaned_retry = False  # redo the pass with unit means subtracted when digits cancel
     checks_variation = False  # terms without variation within units are dropped by name
+    no_variation = "no variation within units"  # why such a term was left out
     r2_kind = ""
     expands = False  # the unit-cluster meat can be expanded in the first pass
     shares = False  # the first request can be served by a shared scan (bigpanel.plan)
@@ -74,7 +75,8 @@ class Estimator:
         return design
 
     def rows(self, design: Design) -> Rows:
-        return Rows(design.sql_columns, tuple(self.spec.cluster), self.differenced)
+        weight = sqlbuild.quote_ident(self.spec.weights) if self.spec.weights else None
+        return Rows(design.sql_columns, tuple(self.spec.cluster), self.differenced, weight=weight)
 
     @property
     def constant(self) -> bool:

@@ -26,6 +26,7 @@ class ManyEffects(Within):
     demeaned_retry = False  # rows are absorbed one by one, no one-pass formula to lose digits
     expands = False
     shares = False  # the many-effects fold runs alone
+    no_variation = "no variation left once the effects are absorbed"
 
     def extend_design(self, executor, design: Design) -> Design:
         return design  # the period, if listed, is absorbed like every other effect

@@ -71,8 +71,9 @@ class Pooled(Estimator):
                 if row["all_periods"]:
                     units += int(row["n_units"])
                     continue
-                acc = by_period.setdefault(row["period"], {"n": 0, "s": np.zeros(q), "p": np.zeros((q, q))})
+                acc = by_period.setdefault(row["period"], {"n": 0, "nw": 0.0, "s": np.zeros(q), "p": np.zeros((q, q))})
                 acc["n"] += int(row["n"])
+                acc["nw"] += float(row["nw"] if "nw" in row else row["n"])  # weight total (weighted fits)
                 acc["s"] += [row[f"s{j}"] for j in range(q)]
                 acc["p"] += moments.symmetric(row, "p", q)
         if not by_period:
@@ -93,7 +94,7 @@ class Pooled(Estimator):
                 full[c, z_index] += r["s"]
                 full[z_index, c] += r["s"]
                 for c2 in cols:
-                    full[c, c2] += r["n"]
+                    full[c, c2] += r["nw"]
         n_obs = sum(by_period[v]["n"] for v in values)
         raw = np.r_[np.diag(full)[:kx + e], full[ys, ys]]
         eq = Equations(full, raw, n_obs, units, t_min=min(values), t_max=max(values))

@@ -89,6 +89,45 @@ def _bigpanel(estimator, effects=None, fold="as shipped"):
     return run
 
 
+def within_weighted(files, settings):
+    """Weighted within (analytic weights: the depot's vans in service; months without vans
+    weigh 0 and are left out), unit clusters."""
+    import bigpanel
+
+    engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                             temp_directory=settings.temp_directory)
+    result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS, UNIT, PERIOD, variance="cluster", cluster=UNIT,
+                          weights="vans", engine=engine)
+    return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
+            "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
+
+
+def within_instrumented(files, settings):
+    """Within by two-stage least squares: staff_hours instrumented by last month's staff
+    hours (one excluded instrument, a lag), unit clusters, with its first-stage F."""
+    import bigpanel
+
+    engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                             temp_directory=settings.temp_directory)
+    result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS[1:], UNIT, PERIOD, variance="cluster",
+                          cluster=UNIT, endogenous=REGRESSORS[0], instruments=f"lag({REGRESSORS[0]})", engine=engine)
+    return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
+            "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
+
+
+def within_lag_regressor(files, settings):
+    """Within with last month's staff hours added as a regressor (no instrument): the same
+    columns and lag window as ``within-iv``, so the two differ by the two-stage work alone."""
+    import bigpanel
+
+    engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                             temp_directory=settings.temp_directory)
+    result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS + [f"lag({REGRESSORS[0]})"], UNIT, PERIOD,
+                          variance="cluster", cluster=UNIT, engine=engine)
+    return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
+            "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
+
+
 def _couriers(effects: str, write: bool = False):
     """A fit on the couriers panel (courier, depot and year effects available), clustered by
     courier; ``write``: effects and residuals written back into a folder beside the panel's."""
@@ -144,6 +183,40 @@ def fit_many_ten(files, settings):
     first = results[0]
     return {"coefficients": [first.coef(term).estimate for term in REGRESSORS],
             "std_errors": [first.coef(term).std_error for term in REGRESSORS], "scans": results.scans}
+
+
+def run_spec_ten(files, settings):
+    """fit_many_ten's ten models as a spec file run by bigpanel.run_spec into a fresh folder:
+    the batch run's own costs (spec and schema checks, lock, JSON, manifest and comparison
+    files) on top of the shared scans."""
+    import json
+    import tempfile
+
+    import bigpanel
+
+    def toml(value):
+        return json.dumps(value)  # a JSON string or list of strings is valid TOML
+
+    lines = [f"[source]\npath = {toml(str(Path(files[0]).parent))}\nunit = {toml(UNIT)}\nperiod = {toml(PERIOD)}\n"]
+    for key, value in (("threads", settings.threads), ("memory_limit", settings.memory_limit),
+                       ("temp_directory", settings.temp_directory)):
+        if value is not None:
+            lines.append(f"{key} = {toml(value)}\n")
+    specs = [("within", REGRESSORS[:i], "cluster") for i in (5, 1, 2, 3, 4)]
+    specs += [("pooled", REGRESSORS[:i], se) for i, se in ((5, "homoskedastic"), (4, "hc1"), (3, "cluster"),
+                                                           (2, "homoskedastic"), (1, "hc1"))]
+    for j, (estimator, terms, se) in enumerate(specs):
+        lines.append(f"\n[models.m{j}]\noutcome = {toml(OUTCOME)}\nregressors = {toml(terms)}\n"
+                     f"estimator = {toml(estimator)}\nvariance = {toml(se)}\n"
+                     + (f"cluster = {toml([UNIT])}\n" if se == "cluster" else ""))
+    with tempfile.TemporaryDirectory(prefix="bench-run-") as folder:
+        spec = Path(folder) / "family.toml"
+        spec.write_text("".join(lines))
+        report = bigpanel.run_spec(spec, out=Path(folder) / "out")
+        first = json.loads((Path(folder) / "out" / "models" / "m0.json").read_text())
+    by_term = {c["term"]: c for c in first["coefficients"]}
+    return {"coefficients": [by_term[t]["estimate"] for t in REGRESSORS],
+            "std_errors": [by_term[t]["std_error"] for t in REGRESSORS], "scans": report.scans["source"]}
 
 
 def _cluster_sandwich(xtx, meat, coef, n_obs, n_clusters):
@@ -233,12 +306,20 @@ CASES = {case.name: case for case in [
     Case("pooled-homoskedastic", "bigpanel", pooled_iid, _BP, "bigpanel pooled, homoskedastic errors (the fixed cost of a fit)"),
     Case("fit-many-10", "bigpanel", fit_many_ten, _BP,
          "bigpanel fit_many: 5 within (unit clusters) and 5 pooled models, shared scans"),
+    Case("run-spec-10", "bigpanel", run_spec_ten, _BP,
+         "bigpanel run_spec: fit-many-10's models from a spec file, with the run folder's files"),
     Case("pooled-sql-fold", "bigpanel", _bigpanel("pooled", fold="sql"), _BP,
          "bigpanel pooled, unit clusters, unit fold summed in SQL"),
     Case("within-sql-fold", "bigpanel", _bigpanel("within", fold="sql"), _BP,
          "bigpanel within, unit clusters, unit fold summed in SQL"),
     Case("first-difference-sql-fold", "bigpanel", _bigpanel("first-difference", fold="sql"), _BP,
          "bigpanel first differences, unit clusters, unit fold summed in SQL"),
+    Case("within-weighted", "bigpanel", within_weighted, _BP,
+         "bigpanel weighted within (weights: vans), unit clusters"),
+    Case("within-iv", "bigpanel", within_instrumented, _BP,
+         "bigpanel within, staff_hours instrumented by lag(staff_hours), unit clusters and first-stage F"),
+    Case("within-lag", "bigpanel", within_lag_regressor, _BP,
+         "bigpanel within with lag(staff_hours) as a regressor (within-iv's columns, no instrument), unit clusters"),
     Case("couriers-within", "bigpanel", _couriers("courier"), _BP,
          "couriers: within (courier effects), courier clusters", "couriers"),
     Case("couriers-within-write", "bigpanel", _couriers("courier", write=True), _BP,
