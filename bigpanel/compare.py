@@ -29,7 +29,6 @@ import io
 import json
 import math
 import os
-import tempfile
 from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
 
@@ -395,12 +394,7 @@ def write_files(folder: Path, files: Mapping[str, str]) -> None:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise InputError(f"Folder '{echo(folder)}' cannot be created ({exc.strerror}). Give a folder you can write.") from None
+    from .batch.files import write_atomic
+
     for name, text in files.items():
-        fd, temp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=folder)
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8", newline="") as handle:
-                handle.write(text)
-            os.replace(temp, folder / name)
-        except BaseException:
-            Path(temp).unlink(missing_ok=True)
-            raise
+        write_atomic(folder / name, text)
