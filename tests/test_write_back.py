@@ -398,8 +398,9 @@ def test_many_effects_disconnected_firms_centred_per_group(tmp_path):
 
 def test_groups_of_many_levels_read_in_chunks():
     """The connected groups of two effects' levels, read chunk by chunk, against scipy's
-    connected_components on the whole graph at once; 120,000 levels, so that label * levels
-    passes 2**31 (a 32-bit product overflowed at this size)."""
+    connected_components on the whole graph at once; 120,000 levels read sorted, so that
+    later chunks meet levels labelled late (a 32-bit label times the level count overflowed
+    at 1M couriers in an earlier version)."""
     from types import SimpleNamespace
 
     from scipy.sparse import coo_matrix
@@ -412,7 +413,7 @@ def test_groups_of_many_levels_read_in_chunks():
     a = np.sort(rng.integers(0, n_a, n_rows)).astype(np.int32)  # sorted, as by unit: later chunks' levels unseen at first
     b = (a // 200 + rng.integers(0, 2, n_rows) * (rng.random(n_rows) < 0.01)).astype(np.int32) % n_b
     chunks = [{"i0": a[i:i + 40_000], "i1": b[i:i + 40_000]} for i in range(0, n_rows, 40_000)]
-    copy = SimpleNamespace(n_levels=[n_a, n_b], store=SimpleNamespace(chunks=lambda names: iter(chunks)))
+    copy = SimpleNamespace(n_levels=[n_a, n_b], store=SimpleNamespace(chunks=lambda names, size=None: iter(chunks)))
     hub, own = _pair_groups(copy, 0, 1)
     graph = coo_matrix((np.ones(n_rows), (a.astype(np.int64), n_a + b.astype(np.int64))), shape=(n_a + n_b,) * 2)
     _, whole = connected_components(graph, directed=False)
