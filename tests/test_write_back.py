@@ -398,8 +398,9 @@ def test_many_effects_disconnected_firms_centred_per_group(tmp_path):
 
 def test_groups_of_many_levels_read_in_chunks():
     """The connected groups of two effects' levels, read chunk by chunk, against scipy's
-    connected_components on the whole graph at once; 120,000 levels, so that label * levels
-    passes 2**31 (a 32-bit product overflowed at this size)."""
+    connected_components on the whole graph at once; 120,000 levels read sorted, so that
+    later chunks meet levels labelled late (a 32-bit label times the level count overflowed
+    at 1M couriers in an earlier version)."""
     from types import SimpleNamespace
 
     from scipy.sparse import coo_matrix
