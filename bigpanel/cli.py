@@ -177,6 +177,9 @@ def fit_command(
     period_step: Annotated[Optional[int], _model_option("period_step")] = None,
     absorbed_levels: Annotated[LevelCount, _model_option("absorbed_levels")] = LevelCount(
         PARAMETERS["absorbed_levels"].default),
+    test: Annotated[Optional[list[str]], typer.Option(PARAMETERS["test"].option, metavar="RESTRICTIONS",
+                                                       help=PARAMETERS["test"].help)] = None,
+    serial_test: Annotated[bool, _model_option("serial_test")] = False,
     table: TableOpt = None,
     query: QueryOpt = None,
     where: WhereOpt = None,
@@ -187,7 +190,7 @@ def fit_command(
     temp_directory: TempDirectoryOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
-    """Estimate a pooled, within or first-difference regression with cluster-robust inference."""
+    """Estimate a pooled, within, first-difference, between or random-effects regression with cluster-robust inference."""
     from .fit import fit
 
     src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types, csv_nulls=csv_null,
@@ -196,7 +199,8 @@ def fit_command(
         warnings.simplefilter("always", BigpanelWarning)
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
                      variance=variance.value if variance else None, cluster=cluster, intercept=False if no_intercept else None,
-                     period_step=period_step, absorbed_levels=absorbed_levels.value)
+                     period_step=period_step, absorbed_levels=absorbed_levels.value, test=test or None,
+                     serial_test=serial_test)
     for w in caught:  # each note once, on stderr (the table below leaves them out)
         if issubclass(w.category, BigpanelWarning):
             typer.echo(f"note: {w.message}", err=True)

@@ -25,6 +25,7 @@ from .design import Design, build_design
 from .engine import DuckDBEngine
 from .errors import BigpanelWarning, EstimationError, InputError
 from .execute import Executor, Keys
+from .hypotheses import restrictions
 from .inference import MAX_EXPANDED, Notes, finish
 from .params import check_keys
 from .plan import ScanPlan, member_params, prefill
@@ -54,6 +55,8 @@ def fit(
     engine: Engine | None = None,
     csv_nulls=None,
     absorbed_levels: str | None = None,
+    test=None,
+    serial_test: bool | None = None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
@@ -71,7 +74,10 @@ def fit(
         missing across a gap) and ``levels(COLUMN[, 'BASE'])``.
     unit, period : str
         Unit and period columns. First differences and lags need whole-number periods.
-    estimator : {"pooled", "within", "first-difference"}
+    estimator : {"pooled", "within", "first-difference", "between", "random-effects"}
+        ``between``: least squares on unit means; ``random-effects``: generalized least
+        squares with Swamy-Arora variance components (a per-unit theta on unbalanced
+        panels), reported with its test against within.
     effects : str or list of str, optional
         Fixed effects: within defaults to the unit and may add the period; for first
         differences, the period adds period intercepts to the differenced equation.
@@ -91,13 +97,20 @@ def fit(
         How absorbed effect levels count in K' of the cluster small-sample factor, one K'
         for every component of a two-way variance: "not-nested" (default) leaves out the
         effects nested in a cluster dimension; "all" counts every level (dummy variables).
+    test : str or list of str, optional
+        Joint Wald tests of linear restrictions, one text per test, restrictions separated
+        by commas: ``"grant = 0, lag(grant) = 0"``; reported under ``tests.joint`` with the
+        chosen variance (:mod:`bigpanel.hypotheses`).
+    serial_test : bool, optional
+        Within and first differences: test the errors for serial correlation (one more
+        scan; ``tests.serial_correlation``).
     table, query, csv_types, engine
         As in :func:`bigpanel.open_source`.
     csv_nulls : str or list of str, optional
         Extra CSV tokens read as missing (``"NA,."``); empty fields always are.
     """
     spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step,
-                         absorbed_levels)
+                         absorbed_levels, test=test, serial_test=serial_test)
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     notes = Notes([])
     try:
@@ -235,6 +248,8 @@ def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators
     est = estimators.select(spec, executor.engine)
     executor.use_periods(spec.needs_order or isinstance(est, estimators.UnitPeriod))
     design = est.extend_design(executor, design)
+    for text in spec.tests:  # test names checked before any scan
+        restrictions(text, design.labels + (["(intercept)"] if est.constant else []))
     if spec.needs_order:
         if any(t.kind == "lag" for t in spec.terms):
             executor.duplicates(only_if_any=True)

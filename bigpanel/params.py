@@ -14,7 +14,7 @@ from typing import Any
 
 from .errors import InputError, echo
 
-ESTIMATORS = ("pooled", "within", "first-difference")
+ESTIMATORS = ("pooled", "within", "first-difference", "between", "random-effects")
 VARIANCES = ("homoskedastic", "hc1", "cluster")
 # How absorbed effect levels enter K' of the cluster small-sample factor (ESTIMATION.md):
 # "not-nested" leaves out the effects nested in at least one cluster dimension, "all"
@@ -27,7 +27,8 @@ class Param:
     """One model parameter.
 
     ``kind`` is one of ``expression`` (a SQL scalar expression or column), ``terms`` (a list
-    of terms, or one text split at top-level commas), ``column``, ``columns`` (a list, or
+    of terms, or one text split at top-level commas), ``restrictions`` (one text or a list of
+    texts, each one joint test: restrictions separated by top-level commas), ``column``, ``columns`` (a list, or
     comma-separated text), ``choice`` (one of ``choices``), ``flag`` (True/False/None) and
     ``count`` (a whole number of at least ``minimum``).
     """
@@ -56,7 +57,9 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
           empty="Give at least one term, separated by commas."),
     Param("unit", "column", "Column identifying the unit (depot, store, worker, ...).", required=True),
     Param("period", "column", "Column identifying the period (whole numbers for differences and lags).", required=True),
-    Param("estimator", "choice", "pooled, within or first-difference.", default="within", choices=ESTIMATORS),
+    Param("estimator", "choice", "pooled, within, first-difference, between (least squares on unit means) or "
+          "random-effects (generalized least squares with Swamy-Arora variance components).", default="within",
+          choices=ESTIMATORS),
     Param("effects", "columns", "Fixed effects: within defaults to the unit (add the period with --effects UNIT,PERIOD); "
           "first-difference takes the period for period intercepts."),
     Param("variance", "choice", "Variance: homoskedastic, hc1 or cluster (default: cluster for within and first-difference, homoskedastic for "
@@ -68,6 +71,11 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
           "for every component of a two-way variance): not-nested (default; effects nested in a cluster dimension are "
           "left out) or all (every level, as a dummy-variable fit counts them).", default="not-nested",
           choices=LEVEL_COUNTS),
+    Param("test", "restrictions", "A joint Wald test of linear restrictions on the terms, written with term names "
+          "and numbers: \"grant = 0, lag(grant) = 0\" or \"2*x = z + 1\" (repeat the option for several tests).",
+          flag="--test"),
+    Param("serial_test", "flag", "Test the within or first-difference errors for serial correlation (one more scan "
+          "over the rows, so on request).", default=False, flag="--serial-test"),
     Param("period_step", "count", "Distance between consecutive whole-number periods (default: the panel's detected "
           "step: the gcd of the gaps, or for dates a day, week, month, quarter or year).", minimum=1, maximum=2**53,
           empty="Give the distance between consecutive periods."),
@@ -92,7 +100,7 @@ def check(name: str, value: Any) -> Any:
     if value is None:
         if p.required:
             raise InputError(f"Option '{name}' is missing. {p.empty or p.help}")
-        return p.default if p.kind != "columns" else ()
+        return p.default if p.kind not in ("columns", "restrictions") else ()
     if p.kind in ("expression", "column"):
         if not isinstance(value, str) or not value.strip():
             raise InputError(f"Option '{name}' is empty. {p.empty or p.help}")
@@ -104,6 +112,13 @@ def check(name: str, value: Any) -> Any:
         if p.kind == "terms" and not items:
             raise InputError(f"Option '{name}' is empty. {p.empty}")
         return items
+    if p.kind == "restrictions":
+        texts = [value] if isinstance(value, str) else value
+        if not isinstance(texts, (list, tuple)) or not all(isinstance(t, str) for t in texts):
+            raise InputError(f"Option '{name}' must be text or a list of text; got {type(value).__name__}.")
+        if not all(t.strip() for t in texts):
+            raise InputError(f"Option '{name}' is empty. {p.help}")
+        return tuple(t.strip() for t in texts)
     if p.kind == "choice":
         if value not in p.choices:
             raise InputError(f"Option '{name}' must be one of {', '.join(p.choices)}; got '{echo(value)}'.")

@@ -82,6 +82,8 @@ class FitSpec:
     intercept: bool
     period_step: int | None = None  # None: the panel's detected step
     absorbed_levels: str = "not-nested"
+    tests: tuple[str, ...] = ()  # joint Wald tests, each restrictions separated by commas (hypotheses.py)
+    serial_test: bool = False  # the serial-correlation test of within and first-difference errors
 
     @classmethod
     def build(
@@ -97,6 +99,8 @@ class FitSpec:
         intercept: bool | None = None,
         period_step: int | None = None,
         absorbed_levels: str | None = None,
+        test: str | list[str] | None = None,
+        serial_test: bool | None = None,
     ) -> "FitSpec":
         estimator = params.check("estimator", estimator)
         outcome = params.check("outcome", outcome)
@@ -123,8 +127,12 @@ class FitSpec:
                 raise InputError(f"Option 'effects' names '{echo(e)}': effects on columns other than the unit '{echo(unit)}' and the period '{echo(period)}' are not supported yet.")
         if estimator == "first-difference" and unit in eff:
             raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for first differences, which already remove it. Use --effects {echo(period)} for period intercepts.")
+        unit_means = estimator in ("between", "random-effects")
+        if unit_means and eff:
+            raise InputError(f"Option 'effects' is given for the {estimator} estimator, which models the unit effect itself. "
+                             f"Leave out --effects; for period intercepts add the term levels({echo(period)}).")
         if variance is None:
-            variance = "homoskedastic" if estimator == "pooled" and not cluster else "cluster"
+            variance = "homoskedastic" if estimator in ("pooled", "between") and not cluster else "cluster"
         variance = params.check("variance", variance)
         clus = params.check("cluster", cluster)
         if variance == "cluster" and not clus:
@@ -136,6 +144,13 @@ class FitSpec:
             raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported, so give one or two.")
         if len(set(clus)) != len(clus):
             raise InputError(f"Option 'cluster' names '{echo(clus[0])}' twice. Give two different columns for two-way clustering, or one.")
+        if unit_means and (variance == "hc1" and estimator == "random-effects" or clus not in ((), (unit,))):
+            raise InputError(f"The {estimator} estimator takes variance homoskedastic or cluster by the unit '{echo(unit)}'"
+                             f"{' (or hc1)' if estimator == 'between' else ''}; got {echo(variance)}"
+                             f"{' by ' + echo(', '.join(clus)) if clus else ''}. Use --variance cluster without --cluster.")
+        if unit_means and intercept is False:
+            raise InputError(f"Option 'intercept' cannot be dropped for the {estimator} estimator: its unit effect has a mean, "
+                             "which the intercept estimates. Leave out --no-intercept.")
         if intercept is None:
             intercept = estimator != "within"
         intercept = params.check("intercept", intercept)
@@ -143,10 +158,19 @@ class FitSpec:
             raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects already remove it.")
         period_step = params.check("period_step", period_step)
         absorbed_levels = params.check("absorbed_levels", absorbed_levels)
+        tests = params.check("test", test)
+        from .hypotheses import check_syntax  # parsed here, matched to the terms once the design is known
+
+        for text in tests:
+            check_syntax(text)
+        serial_test = bool(params.check("serial_test", serial_test))
+        if serial_test and estimator not in ("within", "first-difference"):
+            raise InputError(f"Option 'serial_test' applies to within and first-difference fits, not {estimator}. "
+                             "Leave out --serial-test, or use --estimator within or first-difference.")
         return cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, variance=variance, cluster=clus, intercept=bool(intercept), period_step=None if period_step is None else int(period_step),
-            absorbed_levels=absorbed_levels,
+            absorbed_levels=absorbed_levels, tests=tests, serial_test=serial_test,
         )
 
     @property

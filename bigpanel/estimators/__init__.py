@@ -5,12 +5,15 @@ from __future__ import annotations
 from ..design import integer_period
 from ..spec import FitSpec
 from .base import Equations, Estimator
+from .between import Between
 from .first_difference import FirstDifference
 from .pooled import Pooled
+from .random_effects import ErrorComponents
 from .unit_period import UnitPeriod
 from .within import Within
 
-__all__ = ["Equations", "Estimator", "FirstDifference", "Pooled", "UnitPeriod", "Within", "select"]
+__all__ = ["Between", "Equations", "Estimator", "FirstDifference", "Pooled", "ErrorComponents", "UnitPeriod", "Within",
+           "select"]
 
 
 def select(spec: FitSpec, engine) -> Estimator:
@@ -22,4 +25,8 @@ def select(spec: FitSpec, engine) -> Estimator:
         return Within(spec)
     if spec.estimator == "first-difference":
         return FirstDifference(spec)
+    if spec.estimator == "between":
+        return Between(spec)
+    if spec.estimator == "random-effects":
+        return ErrorComponents(spec)
     return Pooled(spec)

@@ -44,6 +44,8 @@ class Equations:
     extra_effect: list = field(default_factory=list)
     effect_values: list = field(default_factory=list)  # every period with an effect (base included)
     effect_rows: np.ndarray | None = None  # each period's indicator row over the extra columns
+    components: dict = field(default_factory=dict)  # random effects: sigma_u, sigma_e, theta range (reported)
+    parts: dict = field(default_factory=dict)  # an estimator's own algebra kept for its variance and tests
 
     def cancellation(self) -> float:
         """Largest ratio of raw to transformed sum of squares (digits lost by one pass)."""
@@ -94,6 +96,14 @@ class Estimator:
     def constant_in_scores(self) -> bool:
         """The constant is a score column (not absorbed into period effects)."""
         return self.constant
+
+    def own_variance(self, executor, rows: Rows, params: dict, eq: Equations, sol, rss: float, n_kept: int, notes):
+        """A variance of the estimator's own (between, random effects), or None for the common choice."""
+        return None
+
+    def extra_tests(self, executor, rows: Rows, params: dict, eq: Equations, sol, var, notes) -> dict:
+        """Tests the estimator reports with every fit (``FitResult.tests``), by key."""
+        return {}
 
     # ---- moments
     def first_pass(self, design: Design, pilot: np.ndarray | None = None) -> CrossProducts:
