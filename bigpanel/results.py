@@ -196,27 +196,29 @@ def _test_lines(r: "FitResult") -> list[str]:
     if not t:
         return []
     lines = [""]
-    for j in t.get("joint", []):
-        lines += _wrapped("test", f"{j['hypothesis']}: {_f_words(j)}", hang=2)
+    for j in t.get("joint", []):  # the restrictions, then the statistics on a line of their own
+        lines += _wrapped("test", j["hypothesis"]) + _wrapped(" ", _f_words(j), hang=2)
     h = t.get("hausman")
     if h:
         words = (f"chi-square {_stat(h['statistic'])} on {h['df']} df, p {_p_words(h['p_value'])}" if h["statistic"] is not None
                  else "not available (" + h["unavailable"] + ")")
         lines += _wrapped("test", f"random effects against within on {', '.join(h['terms']) or 'no common terms'} "
-                          f"(Hausman, homoskedastic errors): {words}", hang=2)
+                          "(Hausman; assumes homoskedastic errors)", hang=2) + _wrapped(" ", words, hang=2)
     m = t.get("unit_means")
     if m:
-        lines += _wrapped("test", f"unit means of the time-varying terms jointly zero in the correlated random effects "
-                          f"regression ({m['variance']} variance; a rejection favours within): {_f_words(m)}", hang=2)
+        lines += _wrapped("test", f"unit means of the time-varying terms jointly zero in the correlated random-effects "
+                          f"regression ({m['variance']} variance; a rejection favours within)", hang=2)
+        lines += _wrapped(" ", _f_words(m), hang=2)
     sc = t.get("serial_correlation")
     if sc:
+        lines += _wrapped("test", "serial correlation: differenced residuals regressed on their lag within units "
+                          "(-0.5 without serial correlation in the level errors)", hang=2)
         if sc["coefficient"] is None:
-            words = "not available (" + sc["unavailable"] + ")"
+            lines += _wrapped(" ", "not available (" + sc["unavailable"] + ")", hang=2)
         else:
-            words = (f"differenced residuals on their lag: {_num(sc['coefficient'])} (std. error {_num(sc['std_error'])}; "
-                     f"-0.5 without serial correlation), t = {_t(sc['t_stat'])} on {_count(sc['df'])} df, "
-                     f"p {_p_words(sc['p_value'])}. {sc['reading']}")
-        lines += _wrapped("test", f"serial correlation: {words}", hang=2)
+            lines += _wrapped(" ", f"coefficient {_num(sc['coefficient'])}, std. error {_num(sc['std_error'])}, "
+                              f"t = {_t(sc['t_stat'])} on {_count(sc['df'])} df, p {_p_words(sc['p_value'])}", hang=2)
+            lines += _wrapped(" ", sc["reading"], hang=2)
     return lines
 
 

@@ -147,7 +147,7 @@ def test_size_and_power_in_a_small_simulation():
 def test_serial_test_reading_and_refusals(panel_file):
     res = bigpanel.fit(panel_file, "y", "x1, x2", "unit", "period", serial_test=True)
     sc = res.tests["serial_correlation"]
-    assert sc["reading"] and "serial correlation: differenced residuals on their lag" in res.table()
+    assert sc["reading"] and "serial correlation: differenced residuals regressed on their lag" in res.table()
     assert "serial_correlation" not in bigpanel.fit(panel_file, "y", "x1, x2", "unit", "period").tests  # on request
     with pytest.raises(InputError) as err:
         bigpanel.fit(panel_file, "y", "x1, x2", "unit", "period", estimator="pooled", serial_test=True)

@@ -40,6 +40,7 @@ from .base import Equations
 from .between import Between, unit_sizes
 
 NO_VARIATION = 1e-11  # as inference.NO_VARIATION: within/raw sum of squares of a time-invariant term
+CANCELLATION_LIMIT = 1e6  # as fit.CANCELLATION_LIMIT: raw/within sum of squares above which 6 digits are lost
 
 
 class ErrorComponents(Between):
@@ -60,6 +61,11 @@ class ErrorComponents(Between):
         with np.errstate(divide="ignore", invalid="ignore"):
             still = (np.diag(wx) <= NO_VARIATION * np.maximum(u.raw[:kx], 1e-300)) | (np.diag(wx) <= 0)
         within = solve_normal(wx, w_all[:kx, k], zero_variation=still)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            lost = np.where(~still, u.raw[:kx] / np.diag(wx), 1.0)
+        if lost.size and np.nanmax(lost) > CANCELLATION_LIMIT:  # no demeaned retry: it would lose the between part
+            executor.notes.append("the within part of the random-effects sums lost more than 6 digits to the terms' unit "
+                                  "means (one pass); center the terms (subtract a typical value) for more accurate components")
         k_within = int(within.kept.sum())
         df_e = n_obs - n_units - k_within
         if df_e <= 0:
