@@ -238,19 +238,17 @@ LEVEL = 0.05  # the level at which the text reads the test
 
 def serial_correlation(est, executor, design, rows, params: dict, eq, sol) -> dict:
     """Regress the differenced residuals e_t on their lag e_{t-1} within units (pairs of
-    consecutive periods, so each unit needs three in a row) with an intercept; with
-    serially uncorrelated level errors the slope is -0.5 (Wooldridge, Econometric Analysis
-    of Cross Section and Panel Data, section 10.6). The t statistic of slope + 0.5 uses a
+    consecutive periods, so each unit needs three in a row) with an intercept. The level
+    residual y - x'b is formed per row and differenced in one window per unit: for first
+    differences its difference is the differenced equation's residual (less its intercept).
+    With serially uncorrelated level errors the slope is -0.5 (Wooldridge, Econometric
+    Analysis of Cross Section and Panel Data, section 10.6). The t statistic of slope + 0.5 uses a
     variance clustered by unit (CR1, G - 1 df). One scan (``serial_pass.sql``)."""
     from .requests import Rows
 
     k = rows.q - 1
-    cols = list(rows.columns)
-    later = [(sql, lag + 1) for sql, lag in cols]
-    test_rows = Rows(tuple(cols[:k] + later[:k] + [cols[k], later[k]]), (), differenced=True)
-    origin = list(range(k)) * 2 + [k, k]
-    values = {f"s{i}": params[f"s{j}"] for i, j in enumerate(origin)} | {f"d{i}": params[f"d{j}"] for i, j in enumerate(origin)}
-    values |= {f"b{j}": float(sol.coef[j]) for j in range(k)}
+    test_rows = Rows(rows.columns, (), differenced=False)  # levels: the residual is differenced in the pass
+    values = {key: v for key, v in params.items() if key[0] in "sd"} | {f"b{j}": float(sol.coef[j]) for j in range(k)}
     n_periods = 0
     if eq.effect_rows is not None:
         e = eq.effect_rows.shape[1]

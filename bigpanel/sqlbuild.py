@@ -552,32 +552,34 @@ SERIAL_SUMS = ("n", "a", "b", "c", "d", "ee")  # per unit: count, sum l, sum l*l
 
 
 def serial_pass_sql(used: str, k: int, step: int, intercept: bool, n_periods: int, within: bool, total: str = "sum") -> str:
-    """The serial-correlation test's sums (``serial_pass.sql``). ``used`` holds the
-    differences at t of the k regressors (z0..), at t-1 (z{k}..), then of the outcome at t
-    and t-1. Residual terms: ``$b_one`` (``intercept``), or with ``n_periods`` period values
-    the effect $g_i of period $t_i: differenced (within: h(t) = g(t) - g(t-1)) or as they
-    are (first differences: the differenced equation's period intercepts)."""
-    def resid(y: int, first: int, at: int) -> str:
-        out = f"r.{_z(y)}" + "".join(f" - $b{j} * r.{_z(first + j)}" for j in range(k))
-        if n_periods:
-            out += f" - coalesce(pe{at}.g, 0)" + (f" + coalesce(pe{at + 1}.g, 0)" if within else "")
-        elif intercept:
-            out += " - $b_one"
-        return out
-
-    joins = ""
-    if n_periods:
-        values = ", ".join(f"($t{i}, $g{i})" for i in range(n_periods))
-        joins = " ".join(f"LEFT JOIN (VALUES {values}) AS pe{a}(k_period, g) ON r.k_period - {a * int(step)} = pe{a}.k_period"
-                         for a in range(3 if within else 2))
+    """The serial-correlation test's sums (``serial_pass.sql``) from the used rows in levels
+    (k regressors, outcome last): one window per unit over the level residual, whatever
+    the number of terms. Period terms: within with unit and period effects subtracts the
+    effect $g_i of period $t_i from the level residual; first differences subtract the
+    differenced equation's intercept ``$b_one`` or its period intercepts from e and l."""
+    step = int(step)
+    level = f"r.{_z(k)}" + "".join(f" - $b{j} * r.{_z(j)}" for j in range(k))
+    values = ", ".join(f"($t{i}, $g{i})" for i in range(n_periods))
+    level_join = joins = ""
+    current, previous = "r.r - r.r1", "r.r1 - r.r2"
+    if n_periods and within:
+        level += " - coalesce(pe.g, 0)"
+        level_join = f"LEFT JOIN (VALUES {values}) AS pe(k_period, g) ON r.k_period = pe.k_period"
+    elif n_periods:
+        joins = " ".join(f"LEFT JOIN (VALUES {values}) AS pe{a}(k_period, g) ON r.k_period - {a * step} = pe{a}.k_period"
+                         for a in range(2))
+        current, previous = current + " - coalesce(pe0.g, 0)", previous + " - coalesce(pe1.g, 0)"
+    elif intercept:
+        current, previous = current + " - $b_one", previous + " - $b_one"
     sums = {"n": "count(*)", "a": f"{total}(l)", "b": f"{total}(l * l)", "c": f"{total}(e)", "d": f"{total}(l * e)",
             "ee": f"{total}(e * e)"}
     per_unit = ", ".join(f"{v} AS {name}" for name, v in sums.items())
     names = list(SERIAL_SUMS)
     outer = [f"{total}({a}) AS t_{a}" for a in names]
     outer += [f"{total}({a} * {b}) AS x_{a}_{b}" for i, a in enumerate(names[:-1]) for b in names[i:-1]]
-    return render("serial_pass", used=used, joins=joins, current=resid(2 * k, 0, 0), previous=resid(2 * k + 1, k, 1),
-                  per_unit=per_unit, outer=", ".join(outer))
+    return render("serial_pass", used=used, level=level, level_join=level_join,
+                  window="PARTITION BY k_unit ORDER BY k_period", step=str(step), current=current, previous=previous,
+                  joins=joins, per_unit=per_unit, outer=", ".join(outer))
 
 
 def twoway_pass_sql(used: str, q: int, first: int, last: int, total: str = "sum") -> str:
