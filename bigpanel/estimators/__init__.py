@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from ..design import integer_period
 from ..spec import FitSpec
+from .many_effects import ManyEffects
 from .base import Equations, Estimator
 from .between import Between
 from .first_difference import FirstDifference
@@ -12,14 +13,17 @@ from .random_effects import ErrorComponents
 from .unit_period import UnitPeriod
 from .within import Within
 
-__all__ = ["Between", "Equations", "Estimator", "FirstDifference", "Pooled", "ErrorComponents", "UnitPeriod", "Within",
-           "select"]
+__all__ = ["Between", "Equations", "ErrorComponents", "Estimator", "FirstDifference", "ManyEffects", "Pooled", "UnitPeriod",
+           "Within", "select"]
 
 
 def select(spec: FitSpec, engine) -> Estimator:
     """The estimator for ``spec`` (unit and period effects on whole-number periods take
-    the exact two-way path; on other periods, indicator columns inside within)."""
+    the exact two-way path; on other periods, indicator columns inside within; any other
+    effect makes every effect absorbed by iteration)."""
     if spec.estimator == "within":
+        if spec.many_effects:  # effects beyond the unit and the period: absorbed by iteration
+            return ManyEffects(spec)
         if spec.period_effects and integer_period(engine, spec):
             return UnitPeriod(spec)
         return Within(spec)

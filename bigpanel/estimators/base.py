@@ -44,6 +44,7 @@ class Equations:
     extra_effect: list = field(default_factory=list)
     effect_values: list = field(default_factory=list)  # every period with an effect (base included)
     effect_rows: np.ndarray | None = None  # each period's indicator row over the extra columns
+    absorption: object = None  # many effects: the bigpanel.sweeps.Absorption behind the equations
     components: dict = field(default_factory=dict)  # random effects: sigma_u, sigma_e, theta range (reported)
     parts: dict = field(default_factory=dict)  # an estimator's own algebra kept for its variance and tests
 
@@ -96,6 +97,23 @@ class Estimator:
     def constant_in_scores(self) -> bool:
         """The constant is a score column (not absorbed into period effects)."""
         return self.constant
+
+    def levels_in_k_prime(self, executor, rows: Rows, eq: Equations) -> int | None:
+        """Absorbed levels counted in K' of the cluster factor; None: the unit and period
+        rule of :func:`bigpanel.inference.k_prime`."""
+        return None
+
+    def accumulation(self, eq: Equations) -> str | None:
+        """How the cross-product was accumulated, when the estimator says (else the fit's default)."""
+        return None
+
+    def absorption(self, eq: Equations) -> dict:
+        """How the effects were absorbed (the result's ``absorption``): the path and its method."""
+        if not self.absorbs_units:
+            return {}
+        if self.spec.period_effects:
+            return {"path": "exact", "method": "unit effects by per-unit sums, period effects as indicator columns (no iteration)"}
+        return {"path": "exact", "method": "unit effects by per-unit sums (no iteration)"}
 
     def own_variance(self, executor, rows: Rows, params: dict, eq: Equations, sol, rss: float, n_kept: int, notes):
         """A variance of the estimator's own (between, random effects), or None for the common choice."""
