@@ -136,3 +136,13 @@ def test_cli_takes_repeated_tests(panel_file, capsys):
     at = next(i for i, line in enumerate(lines) if line == "  test      x1 = 0, x2 = 0")
     assert lines[at + 1].startswith("            F = ")
     assert at > next(i for i, line in enumerate(lines) if line.startswith("  x2 "))  # below the coefficients
+
+
+def test_fit_many_models_and_spec_keys_take_tests(panel_file):
+    # the parameter table gives fit_many (and spec files) the same key: a shared-scan model's
+    # test equals its own fit's (sums in another order: agreement to rounding)
+    alone = bigpanel.fit(panel_file, "y", "x1, x2", "unit", "period", test="x1 = 2*x2")
+    many = bigpanel.fit_many(panel_file, [dict(outcome="y", regressors="x1, x2", test=["x1 = 2*x2"]),
+                                          dict(outcome="y", regressors="x1", estimator="pooled")], "unit", "period")
+    assert many[0].tests["joint"][0]["f"] == pytest.approx(alone.tests["joint"][0]["f"], rel=1e-9)
+    assert "joint" not in many[1].tests
