@@ -185,6 +185,9 @@ def fit_command(
     weights: Annotated[Optional[str], _model_option("weights")] = None,
     endogenous: Annotated[Optional[str], _model_option("endogenous")] = None,
     instruments: Annotated[Optional[str], _model_option("instruments")] = None,
+    test: Annotated[Optional[list[str]], typer.Option(PARAMETERS["test"].option, metavar="RESTRICTIONS",
+                                                       help=PARAMETERS["test"].help)] = None,
+    serial_test: Annotated[bool, _model_option("serial_test")] = False,
     table: TableOpt = None,
     query: QueryOpt = None,
     where: WhereOpt = None,
@@ -195,7 +198,7 @@ def fit_command(
     temp_directory: TempDirectoryOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
-    """Estimate a pooled, within or first-difference regression with cluster-robust inference."""
+    """Estimate a pooled, within, first-difference, between or random-effects regression with cluster-robust inference."""
     from .fit import fit
 
     src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types, csv_nulls=csv_null,
@@ -207,7 +210,8 @@ def fit_command(
                      period_step=period_step, absorbed_levels=absorbed_levels.value,
                      effects_tolerance=effects_tolerance, effects_iterations=effects_iterations,
                      write_effects=write_effects, write_residuals=write_residuals, weights=weights,
-                     endogenous=endogenous, instruments=instruments)
+                     endogenous=endogenous, instruments=instruments, test=test or None,
+                     serial_test=serial_test)
     for w in caught:  # each note once, on stderr (the table below leaves them out)
         if issubclass(w.category, BigpanelWarning):
             typer.echo(f"note: {w.message}", err=True)

@@ -312,6 +312,8 @@ class Executor:
             make = lambda c: sqlbuild.pooled_moments_sql(used(c), q, total, weighted)  # noqa: E731
         elif request.fold == "period":
             make = lambda c: sqlbuild.period_moments_sql(used(c), q, total, weighted)  # noqa: E731
+        elif request.fold == "unit-size":  # between and random effects (estimators/between.py)
+            make = lambda c: sqlbuild.unit_size_pass_sql(sqlbuild.unit_moments_sql(used(c), q, total), q, total)  # noqa: E731
         elif request.fold == "unit+period":
             first, last = self.period_range()
             make = lambda c: sqlbuild.twoway_pass_sql(used(c), q, first, last, total)  # noqa: E731
@@ -473,6 +475,34 @@ class Executor:
             self._meats[req] = (meats, counts)
 
     # ------------------------------------------------------------------ scores
+    def serial_sums(self, rows: Rows, k: int, intercept: bool, n_periods: int, within: bool, params: dict) -> dict:
+        """One scan: the serial-correlation test's sums over units (``serial_pass.sql``),
+        added over chunks."""
+        total = moments.sum_function(self.chunks())
+
+        def make(c):
+            return sqlbuild.serial_pass_sql(self.used_sql(rows, c), k, self.keys.step, intercept, n_periods, within, total)
+
+        out: dict = {}
+        for table in self.run_chunked(make, params):
+            for key, v in table[0].items():
+                out[key] = out.get(key, 0) + (v or 0)
+        return out
+
+    def unit_mean_meats(self, rows: Rows, modes: Sequence[str], values: dict, params: dict) -> tuple[list[np.ndarray], int]:
+        """One scan: the meats, clustered by unit, of the score sets ``modes`` of the
+        estimators on unit means (``unit_mean_scores.sql``), and the number of units."""
+        total = moments.sum_function(self.chunks())
+        k = rows.q - 1
+
+        def make(c):
+            return sqlbuild.unit_mean_scores_sql(self.used_sql(rows, c, streaming=self.streaming), rows.q, modes, total)
+
+        found = [t[0] for t in self.run_chunked(make, {**params, **values})]
+        dims = [2 * k + 1 if mode == "means" else k + 1 for mode in modes]
+        meats = [sum(moments.symmetric(r, f"o{m}_", d) for r in found) for m, d in enumerate(dims)]
+        return meats, sum(int(r["n_groups"]) for r in found)
+
     def meats(self, request: Scores, params: dict, k: int, n_clusters: int) -> tuple[list[np.ndarray], list[int]]:
         """Meats over the k score columns, with the number of clusters of each."""
         if request in self._meats:

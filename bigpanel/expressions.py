@@ -273,6 +273,26 @@ def parse_terms(value: str | Iterable[str] | None, option: str = "regressors") -
 
 
 @_not_too_deep
+def expression_trees(text: str, what: str) -> list[dict]:
+    """DuckDB's parse trees (locations left out) of a comma-separated list of expressions
+    that is never run, only read (the restrictions of a joint test, hypotheses.py)."""
+    text = str(text).strip()
+    if not text:
+        raise InputError(f"{what} is empty. Give restrictions such as \"x = 0, z = 0\".")
+    return [_strip_locations(item) for item in _select_items(text, what)]
+
+
+def label_tree(label: str) -> dict | None:
+    """The parse tree (locations left out) of a term's label, or None when the label is not
+    one SQL expression (the tree a restriction's part is compared with, hypotheses.py)."""
+    try:
+        items = _select_items(label, "Term")
+    except (InputError, RecursionError):
+        return None
+    return _strip_locations(items[0]) if len(items) == 1 else None
+
+
+@_not_too_deep
 def query_sql(text: str) -> str:
     """Check a source query (exactly one SELECT statement) and render it from its tree."""
     text = str(text).strip()

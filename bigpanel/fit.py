@@ -25,6 +25,7 @@ from .design import Design, build_design
 from .engine import open_engine
 from .errors import BigpanelWarning, EstimationError, InputError
 from .execute import Executor, Keys
+from .hypotheses import restrictions
 from .inference import MAX_EXPANDED, Notes, finish
 from .params import check_keys
 from .plan import ScanPlan, member_params, prefill
@@ -62,6 +63,8 @@ def fit(
     weights: str | None = None,
     endogenous=None,
     instruments=None,
+    test=None,
+    serial_test: bool | None = None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
@@ -79,7 +82,10 @@ def fit(
         missing across a gap) and ``levels(COLUMN[, 'BASE'])``.
     unit, period : str
         Unit and period columns. First differences and lags need whole-number periods.
-    estimator : {"pooled", "within", "first-difference"}
+    estimator : {"pooled", "within", "first-difference", "between", "random-effects"}
+        ``between``: least squares on unit means; ``random-effects``: generalized least
+        squares with Swamy-Arora variance components (a per-unit theta on unbalanced
+        panels), reported with its test against within.
     effects : str or list of str, optional
         Fixed effects: within defaults to the unit and may add the period (an exact path)
         and any number of other columns, or ``cell(A, B)`` for one effect per combination
@@ -108,6 +114,13 @@ def fit(
         (default 1e-10). A fit that does not reach it warns and says so in the result.
     effects_iterations : int, optional
         Many effects: most iterations, each one pass over the scratch copy (default 1000).
+    test : str or list of str, optional
+        Joint Wald tests of linear restrictions, one text per test, restrictions separated
+        by commas: ``"grant = 0, lag(grant) = 0"``; reported under ``tests.joint`` with the
+        chosen variance (:mod:`bigpanel.hypotheses`).
+    serial_test : bool, optional
+        Within and first differences: test the errors for serial correlation (one more
+        scan; ``tests.serial_correlation``).
     table, query, csv_types, engine
         As in :func:`bigpanel.open_source`.
     csv_nulls : str or list of str, optional
@@ -133,7 +146,7 @@ def fit(
     spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step,
                          absorbed_levels, effects_tolerance, effects_iterations, write_effects=write_effects,
                          write_residuals=write_residuals, weights=weights, endogenous=endogenous,
-                         instruments=instruments)
+                         instruments=instruments, test=test, serial_test=serial_test)
     src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
     spec = writeback.checked(spec, src)
     notes = Notes([])
@@ -283,6 +296,8 @@ def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators
     est = estimators.select(spec, executor.engine)
     executor.use_periods(spec.needs_order or isinstance(est, estimators.UnitPeriod))
     design = est.extend_design(executor, design)
+    for text in spec.tests:  # test names checked before any scan
+        restrictions(text, design.labels + (["(intercept)"] if est.constant else []))
     if spec.needs_order:
         if any(t.kind == "lag" for t in spec.all_terms):
             executor.duplicates(only_if_any=True)

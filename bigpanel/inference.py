@@ -13,14 +13,14 @@ from dataclasses import dataclass, replace
 import numpy as np
 import scipy.special  # t and F tails; scipy.stats alone takes ~0.8 s to import
 
-from . import instruments, moments, variance
+from . import hypotheses, instruments, moments, variance
 from .errors import (
     DroppedRowsWarning, DroppedTermsWarning, EstimationError, FewClustersWarning, InputError, echo, shown,
 )  # fmt: skip
 from .estimators.base import Equations, Estimator
 from .requests import Nesting, Rows, Scores
 from .results import Coefficient, FitResult, VarianceSummary, run_record
-from .solve import overflowing_columns, solve_normal, unscale
+from .solve import overflowing_columns, solve_normal, unscale, unscale_rows
 
 MAX_EXPANDED = 8  # largest model whose unit-cluster meat is summed in the first pass (k^4/4 sums)
 EXPANSION_LIMIT = 1e6  # largest-term/result ratio above which the expanded meat is recomputed
@@ -79,6 +79,9 @@ def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equa
     spec = est.spec
     mapped = meat_map or (lambda m: m)
     n_obs = eq.n_obs
+    own = est.own_variance(executor, rows, params, eq, sol, rss, n_kept, notes)
+    if own is not None:  # between and random effects (their own observations and scores)
+        return own
     if spec.variance == "homoskedastic":
         return variance.homoskedastic(sol.inverse, rss, n_obs, n_kept, absorbed)
     constant = est.constant_in_scores()
@@ -236,8 +239,10 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         c_all = est.intercept_shifts(shifts)
         c = np.r_[c_all[: k - 1], 0.0]
         estimate, std_error, overflow = unscale(coef, var.vcov, col_scale, y_scale, k - 1, c, c_all[-1])
+        to_user = unscale_rows(k, col_scale, y_scale, k - 1, c)
     else:
         estimate, std_error, overflow = unscale(coef, var.vcov, col_scale, y_scale)
+        to_user = unscale_rows(k, col_scale, y_scale)
     overflow = [j for j in overflow if sol.kept[j] and not is_effect[j]]
     if overflow:
         raise _too_large([labels[j] for j in overflow], "its estimate or standard error is beyond a double's range")
@@ -253,6 +258,18 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
                                  float(estimate[j] - crit * se), float(estimate[j] + crit * se)))
     slopes = [j for j in range(k) if sol.kept[j] and not is_effect[j] and labels[j] != "(intercept)"]
     f_stat, f_p, f_missing = wald(var, coef, slopes)
+    shown_at = [j for j in range(k) if sol.kept[j] and not is_effect[j]]  # the reported coefficients
+    with np.errstate(over="ignore", invalid="ignore"):
+        cov = (to_user @ var.vcov @ to_user.T)[np.ix_(shown_at, shown_at)]
+    names = [labels[j] for j in shown_at]
+    tests = {}
+    if spec.tests:
+        tests["joint"] = [hypotheses.wald(text, hypotheses.restrictions(text, labels), names,
+                                          estimate[shown_at], cov, var.df, var.n_clusters, terms_dropped)
+                          for text in spec.tests]
+    tests.update(est.extra_tests(executor, rows, params, eq, sol, var, notes))
+    if spec.serial_test and executor.collecting is None:  # not while fit_many plans its score scan
+        tests["serial_correlation"] = hypotheses.serial_correlation(est, executor, design, rows, params, eq, sol)
     if var.n_clusters is not None:
         g_min = var.n_clusters if isinstance(var.n_clusters, int) else min(var.n_clusters)
         if g_min < FEW_CLUSTERS:
@@ -286,6 +303,7 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         f_p_value=f_p, f_unavailable=f_missing, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=eq.singletons,
         absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=executor.label,
         absorption=est.absorption(eq),
+        covariance={"terms": names, "matrix": cov.tolist()}, tests=tests, error_components=dict(eq.components),
         where=executor.engine.where, warnings=notes.texts,
         run=run_record(executor.engine.thread_count()) | getattr(executor.engine, "run_facts", dict)(),
         weights=spec.weights or "", instrumented=tuple(labels[j] for j in design.endogenous),

@@ -15,7 +15,7 @@ from typing import Any
 
 from .errors import InputError, echo
 
-ESTIMATORS = ("pooled", "within", "first-difference")
+ESTIMATORS = ("pooled", "within", "first-difference", "between", "random-effects")
 VARIANCES = ("homoskedastic", "hc1", "cluster")
 # How absorbed effect levels enter K' of the cluster small-sample factor (ESTIMATION.md):
 # "not-nested" leaves out the effects nested in at least one cluster dimension, "all"
@@ -28,7 +28,8 @@ class Param:
     """One model parameter.
 
     ``kind`` is one of ``expression`` (a SQL scalar expression or column), ``terms`` (a list
-    of terms, or one text split at top-level commas), ``column``, ``columns`` (a list, or
+    of terms, or one text split at top-level commas), ``restrictions`` (one text or a list of
+    texts, each one joint test: restrictions separated by top-level commas), ``column``, ``columns`` (a list, or
     comma-separated text), ``choice`` (one of ``choices``), ``flag`` (True/False/None),
     ``count`` (a whole number of at least ``minimum``), ``number`` (a real number within ``bounds``)
     and ``folder`` (a folder to write into, checked against the source when the fit starts:
@@ -61,7 +62,9 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
           empty="Give at least one term, separated by commas."),
     Param("unit", "column", "Column identifying the unit (depot, store, worker, ...).", required=True),
     Param("period", "column", "Column identifying the period (whole numbers for differences and lags).", required=True),
-    Param("estimator", "choice", "pooled, within or first-difference.", default="within", choices=ESTIMATORS),
+    Param("estimator", "choice", "pooled, within, first-difference, between (least squares on unit means) or "
+          "random-effects (generalized least squares with Swamy-Arora variance components).", default="within",
+          choices=ESTIMATORS),
     Param("effects", "columns", "Fixed effects, comma-separated: within defaults to the unit and takes any number of "
           "columns besides (each with any number of levels), and cell(A, B) for one effect per combination of levels "
           "(e.g. --effects worker,firm,year or depot,cell(region, month)); the unit and the period alone run exactly, "
@@ -82,6 +85,11 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("effects_iterations", "count", "Most iterations (each one pass over the rows) when absorbing many effects "
           "(default 1000); a fit that stops short of the tolerance says so.", default=1000, minimum=1,
           maximum=1_000_000, empty="Give a whole number of iterations such as 1000."),
+    Param("test", "restrictions", "A joint Wald test of linear restrictions on the terms, written with term names "
+          "and numbers: \"grant = 0, lag(grant) = 0\" or \"2*x = z + 1\" (repeat the option for several tests).",
+          flag="--test"),
+    Param("serial_test", "flag", "Test the within or first-difference errors for serial correlation (one more scan "
+          "over the rows, so on request).", default=False, flag="--serial-test"),
     Param("period_step", "count", "Distance between consecutive whole-number periods (default: the panel's detected "
           "step: the gcd of the gaps, or for dates a day, week, month, quarter or year).", minimum=1, maximum=2**53,
           empty="Give the distance between consecutive periods."),
@@ -178,7 +186,7 @@ def check(name: str, value: Any) -> Any:
     if value is None:
         if p.required:
             raise InputError(f"Option '{name}' is missing. {p.empty or p.help}")
-        return p.default if p.kind != "columns" else ()
+        return p.default if p.kind not in ("columns", "restrictions") else ()
     if p.kind == "folder":
         if not isinstance(value, (str, os.PathLike)) or not str(os.fspath(value)).strip():
             raise InputError(f"Option '{name}' must name a folder; got {echo(repr(value), 40)}. {p.empty}")
@@ -194,6 +202,13 @@ def check(name: str, value: Any) -> Any:
         if p.kind == "terms" and not items:
             raise InputError(f"Option '{name}' is empty. {p.empty}")
         return items
+    if p.kind == "restrictions":
+        texts = [value] if isinstance(value, str) else value
+        if not isinstance(texts, (list, tuple)) or not all(isinstance(t, str) for t in texts):
+            raise InputError(f"Option '{name}' must be text or a list of text; got {type(value).__name__}.")
+        if not all(t.strip() for t in texts):
+            raise InputError(f"Option '{name}' is empty. {p.help}")
+        return tuple(t.strip() for t in texts)
     if p.kind == "choice":
         if value not in p.choices:
             raise InputError(f"Option '{name}' must be one of {', '.join(p.choices)}; got '{echo(value)}'.")

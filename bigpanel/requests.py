@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-FOLDS = ("rows", "unit", "period", "unit+period", "sweeps")
+FOLDS = ("rows", "unit", "period", "unit+period", "sweeps", "unit-size")
 LAYOUTS = ("plain", "constant", "within")
 SCORE_KINDS = ("rows", "units", "nested", "groups")
 
@@ -50,8 +50,9 @@ class CrossProducts:
 
     ``fold``: ``rows`` (n, sums and products over all rows), ``unit`` (per-unit sums
     folded into the transformed cross-product in SQL), ``period`` (per-period sums) or
-    ``unit+period`` (per-unit, per-presence-pattern and per-period sums) or ``sweeps``
-    (the rows' effects absorbed by iteration, :mod:`bigpanel.sweeps`).
+    ``unit+period`` (per-unit, per-presence-pattern and per-period sums), ``sweeps``
+    (the rows' effects absorbed by iteration, :mod:`bigpanel.sweeps`) or ``unit-size`` (within
+    and between sums of the units of each row count: between, random effects).
     ``layout`` of the unit fold: ``within`` (S_i - s_i s_i'/n_i), ``plain`` or
     ``constant`` (a constant column before the outcome).
     ``pilot``: coefficients around which the unit-cluster meat is expanded (unit fold).

@@ -15,6 +15,19 @@ CAUTIONS = (
     "Cluster-robust errors assume independence across clusters and enough clusters (about 40 or more).",
 )
 
+# Added for the estimators that keep the unit effect in the error (between, random effects).
+ESTIMATOR_CAUTIONS = {
+    "between": ("The between estimate compares units only: it assumes the unit effect is unrelated to the "
+                "regressors."),
+    "random-effects": ("Random effects assumes the unit effect is unrelated to the regressors in every period; the "
+                       "Hausman and unit-means tests below check it, and a rejection points to within."),
+}
+
+
+def cautions(estimator: str) -> list[str]:
+    """The cautions printed with a fit of ``estimator``."""
+    return list(CAUTIONS) + ([ESTIMATOR_CAUTIONS[estimator]] if estimator in ESTIMATOR_CAUTIONS else [])
+
 
 @dataclass(frozen=True)
 class Coefficient:
@@ -98,11 +111,14 @@ class FitResult:
     instrumented: tuple[str, ...] = ()  # terms estimated by two-stage least squares
     instruments: tuple[str, ...] = ()  # their excluded instruments
     first_stage: tuple = ()  # instruments.FirstStage per instrumented term
+    covariance: dict = field(default_factory=dict)  # {"terms": [...], "matrix": [[...]]} of the reported coefficients
+    tests: dict = field(default_factory=dict)  # joint, hausman, unit_means, serial_correlation (hypotheses.py; README)
+    error_components: dict = field(default_factory=dict)  # random effects: sigma_u, sigma_e, theta_min, theta_max, ...
 
     def to_dict(self) -> dict:
         out = json_ready(self)
         out["variance"]["factor_rule"] = self.variance.factor_rule
-        out["cautions"] = list(CAUTIONS + _extra_cautions(self))
+        out["cautions"] = cautions(self.estimator) + list(_extra_cautions(self))
         return out
 
     def to_json(self, indent: int | None = 2) -> str:
@@ -126,12 +142,13 @@ class FitResult:
         label too long for its column is shortened and written out in full below the
         table), then the fit statistics in words and the cautions. ``notes=False`` leaves
         out the notes (the command line prints each on stderr, once)."""
-        return "\n".join(_header(self) + _term_rows(self.coefficients) + _footer(self, notes))
+        return "\n".join(_header(self) + _term_rows(self.coefficients) + _test_lines(self) + _footer(self, notes))
 
 
 WIDTH = 100  # the widest line of FitResult.table()
 TITLES = {"pooled": "Pooled least squares", "within": "Within estimator (fixed effects)",
-          "first-difference": "First differences"}
+          "first-difference": "First differences", "between": "Between estimator (least squares on unit means)",
+          "random-effects": "Random effects (generalized least squares, Swamy-Arora components)"}
 _NUMBERS = (("estimate", 12), ("std. error", 11), ("t", 8), ("p", 8), ("low", 12), ("high", 12))
 # a term's label may take what the number columns leave of WIDTH (indent 2, gaps of 2)
 TERM_WIDTH = WIDTH - 2 - sum(w + 2 for _, w in _NUMBERS)
@@ -183,6 +200,11 @@ def _header(r: "FitResult") -> list[str]:
     if r.instrumented:
         lines += _wrapped("iv terms", f"{', '.join(r.instrumented)}; excluded instruments: {', '.join(r.instruments)}")
     lines += _wrapped("variance", _variance_words(r.variance))
+    c = r.error_components
+    if c:
+        lines += _wrapped("unit part", f"sd of the unit effect {_num(c['sigma_u'])}, of the remaining error "
+                          f"{_num(c['sigma_e'])}; theta from {c['theta_min']:.4f} to {c['theta_max']:.4f} "
+                          "(the share of each unit's mean taken out)")
     return lines + [""]
 
 
@@ -193,6 +215,46 @@ def _absorption_words(a: dict) -> str:
     kind = "exact" if a["redundancies_exact"] else "lower bound"
     return (f"absorbed by iteration: {effects}; {a['iterations']:,} sweeps, remaining level means {a['achieved']:.2g} "
             f"against tolerance {a['tolerance']:.2g}, {status}; {a['redundancies']:,} redundant levels ({kind})")
+
+
+def _test_lines(r: "FitResult") -> list[str]:
+    """The tests below the coefficients, in words (hypotheses.py computes them)."""
+    t = r.tests
+    if not t:
+        return []
+    lines = [""]
+    for j in t.get("joint", []):  # the restrictions, then the statistics on a line of their own
+        lines += _wrapped("test", j["hypothesis"]) + _wrapped(" ", _f_words(j), hang=2)
+    h = t.get("hausman")
+    if h:
+        words = (f"chi-square {_stat(h['statistic'])} on {h['df']} df, p {_p_words(h['p_value'])}" if h["statistic"] is not None
+                 else "not available (" + h["unavailable"] + ")")
+        lines += _wrapped("test", f"random effects against within on {', '.join(h['terms']) or 'no common terms'} "
+                          "(Hausman; assumes homoskedastic errors)", hang=2) + _wrapped(" ", words, hang=2)
+    m = t.get("unit_means")
+    if m:
+        lines += _wrapped("test", f"unit means of the time-varying terms jointly zero in the correlated random-effects "
+                          f"regression ({m['variance']} variance; a rejection favours within)", hang=2)
+        lines += _wrapped(" ", _f_words(m), hang=2)
+    sc = t.get("serial_correlation")
+    if sc:
+        lines += _wrapped("test", "serial correlation: differenced residuals regressed on their lag within units "
+                          "(-0.5 without serial correlation in the level errors)", hang=2)
+        if sc["coefficient"] is None:
+            lines += _wrapped(" ", "not available (" + sc["unavailable"] + ")", hang=2)
+        else:
+            lines += _wrapped(" ", f"coefficient {_num(sc['coefficient'])}, std. error {_num(sc['std_error'])}, "
+                              f"t = {_t(sc['t_stat'])} on {_count(sc['df'])} df, p {_p_words(sc['p_value'])}", hang=2)
+            lines += _wrapped(" ", sc["reading"], hang=2)
+    return lines
+
+
+def _f_words(j: dict) -> str:
+    if j.get("f") is None:
+        return "not available (" + (j.get("unavailable") or "no statistic") + ")"
+    q, df = j["df"]
+    return (f"F = {_stat(j['f'])} on {_count(q)} and {_count(df)} df, p {_p_words(j['p_value'])}; "
+            f"chi-square {_stat(j['chi_square'])} on {_count(q)} df, p {_p_words(j['p_value_chi_square'])}")
 
 
 def _term_rows(coefficients) -> list[str]:
@@ -248,7 +310,7 @@ def _footer(r: "FitResult", notes: bool) -> list[str]:
     for w in r.warnings if notes else ():
         lines += _wrapped("", f"note: {w}")
     lines += ["", "  Read these estimates as causal effects only if:"]
-    for caution in CAUTIONS + _extra_cautions(r):
+    for caution in cautions(r.estimator) + list(_extra_cautions(r)):
         lines += _wrapped("", "- " + caution, hang=2)
     return lines
 
@@ -284,8 +346,8 @@ def _p(p: float) -> str:
     return "<0.0001" if p < 1e-4 else f"{p:.4f}"
 
 
-def _p_words(p: float) -> str:
-    if not math.isfinite(p):
+def _p_words(p: float | None) -> str:
+    if p is None or not math.isfinite(p):
         return "not available"
     return "< 0.0001" if p < 1e-4 else f"= {p:.4f}"
 

@@ -127,6 +127,23 @@ def overflowing_columns(total: np.ndarray) -> list[int]:
     return [int(j) for j in np.flatnonzero(bad.any(axis=0))]
 
 
+def unscale_rows(k: int, scales: np.ndarray, y_scale: float, intercept: int | None = None,
+                 shifts: np.ndarray | None = None) -> np.ndarray:
+    """The matrix M of :func:`unscale`: estimates in the user's units are M b' (plus the
+    outcome's shift for the intercept), and their covariance is M V' M'."""
+    with np.errstate(over="ignore"):
+        factor = np.asarray(scales, dtype=float) / y_scale
+    rows = np.diag(factor)
+    if intercept is not None:
+        rows[intercept] = 0.0
+        rows[intercept, intercept] = 1.0 / y_scale
+        if shifts is not None:
+            with np.errstate(over="ignore", invalid="ignore"):
+                others = [j for j in range(k) if j != intercept]
+                rows[intercept, others] = -np.asarray(shifts, dtype=float)[others] * factor[others]
+    return rows
+
+
 def unscale(coef: np.ndarray, vcov: np.ndarray, scales: np.ndarray, y_scale: float, intercept: int | None = None,
             shifts: np.ndarray | None = None, y_shift: float = 0.0) -> tuple[np.ndarray, np.ndarray, list[int]]:
     """Estimates and standard errors in the user's units, from a fit on shifted, scaled
@@ -140,16 +157,7 @@ def unscale(coef: np.ndarray, vcov: np.ndarray, scales: np.ndarray, y_scale: flo
     Also returns the indices whose estimate or standard error a double cannot hold.
     """
     k = len(coef)
-    with np.errstate(over="ignore"):
-        factor = np.asarray(scales, dtype=float) / y_scale
-    rows = np.diag(factor)
-    if intercept is not None:
-        rows[intercept] = 0.0
-        rows[intercept, intercept] = 1.0 / y_scale
-        if shifts is not None:
-            with np.errstate(over="ignore", invalid="ignore"):
-                others = [j for j in range(k) if j != intercept]
-                rows[intercept, others] = -np.asarray(shifts, dtype=float)[others] * factor[others]
+    rows = unscale_rows(k, scales, y_scale, intercept, shifts)
     estimate = np.zeros(k)
     std_error = np.zeros(k)
     with np.errstate(over="ignore", invalid="ignore"):

@@ -132,6 +132,8 @@ class FitSpec:
     weights: str | None = None  # column of analytic weights (bigpanel.weights)
     endogenous: tuple[Term, ...] = ()  # instrumented terms (bigpanel.instruments)
     instruments: tuple[Term, ...] = ()  # excluded instruments
+    tests: tuple[str, ...] = ()  # joint Wald tests, each restrictions separated by commas (hypotheses.py)
+    serial_test: bool = False  # the serial-correlation test of within and first-difference errors
 
     @classmethod
     def build(
@@ -154,6 +156,8 @@ class FitSpec:
         weights: str | None = None,
         endogenous: str | list[str] | None = None,
         instruments: str | list[str] | None = None,
+        test: str | list[str] | None = None,
+        serial_test: bool | None = None,
     ) -> "FitSpec":
         estimator = params.check("estimator", estimator)
         outcome = params.check("outcome", outcome)
@@ -187,8 +191,12 @@ class FitSpec:
                                  f"period '{echo(period)}' need the within estimator. Use --estimator within.")
         if estimator == "first-difference" and unit in eff:
             raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for first differences, which already remove it. Use --effects {echo(period)} for period intercepts.")
+        unit_means = estimator in ("between", "random-effects")
+        if unit_means and eff:
+            raise InputError(f"Option 'effects' is given for the {estimator} estimator, which models the unit effect itself. "
+                             f"Leave out --effects; for period intercepts add the term levels({echo(period)}).")
         if variance is None:
-            variance = "homoskedastic" if estimator == "pooled" and not cluster else "cluster"
+            variance = "homoskedastic" if estimator in ("pooled", "between") and not cluster else "cluster"
         variance = params.check("variance", variance)
         clus = params.check("cluster", cluster)
         if variance == "cluster" and not clus:
@@ -200,6 +208,13 @@ class FitSpec:
             raise InputError(f"Option 'cluster' names {len(clus)} columns; one- and two-way clustering are supported, so give one or two.")
         if len(set(clus)) != len(clus):
             raise InputError(f"Option 'cluster' names '{echo(clus[0])}' twice. Give two different columns for two-way clustering, or one.")
+        if unit_means and (variance == "hc1" and estimator == "random-effects" or clus not in ((), (unit,))):
+            raise InputError(f"The {estimator} estimator takes variance homoskedastic or cluster by the unit '{echo(unit)}'"
+                             f"{' (or hc1)' if estimator == 'between' else ''}; got {echo(variance)}"
+                             f"{' by ' + echo(', '.join(clus)) if clus else ''}. Use --variance cluster without --cluster.")
+        if unit_means and intercept is False:
+            raise InputError(f"Option 'intercept' cannot be dropped for the {estimator} estimator: its unit effect has a mean, "
+                             "which the intercept estimates. Leave out --no-intercept.")
         if intercept is None:
             intercept = estimator != "within"
         intercept = params.check("intercept", intercept)
@@ -214,20 +229,40 @@ class FitSpec:
         if write_effects is not None and estimator != "within":
             raise InputError(f"Option 'write_effects' needs the within estimator: {estimator} fits estimate no unit "
                              "effects to write. Use --estimator within, or leave out --write-effects.")
-        if write_residuals is not None and estimator == "pooled":
-            raise InputError("Option 'write_residuals' applies to within and first-difference fits, not pooled ones. "
+        if write_residuals is not None and estimator not in ("within", "first-difference"):
+            raise InputError(f"Option 'write_residuals' applies to within and first-difference fits, not {estimator} ones. "
                              "Use --estimator within or first-difference, or leave out --write-residuals.")
         weights = params.check("weights", weights)
         endog, instr = _instrument_terms(endogenous, instruments, terms)
         if weights is not None and (write_effects is not None or write_residuals is not None):
             raise InputError("Options 'write_effects' and 'write_residuals' do not take 'weights' yet (the effects written "
                              "would be unweighted means); fit without --weights to write them, or leave them out.")
+        tests = params.check("test", test)
+        from .hypotheses import check_syntax  # parsed here, matched to the terms once the design is known
+
+        for text in tests:
+            check_syntax(text)
+        serial_test = bool(params.check("serial_test", serial_test))
+        if serial_test and estimator not in ("within", "first-difference"):
+            raise InputError(f"Option 'serial_test' applies to within and first-difference fits, not {estimator}. "
+                             "Leave out --serial-test, or use --estimator within or first-difference.")
+        if serial_test and any(e not in (unit, period) for e in eff):
+            raise InputError(f"Option 'serial_test' takes effects on the unit and the period only; {echo(', '.join(eff))} "
+                             "includes others, whose effects do not drop out of the differenced residuals. "
+                             "Leave out --serial-test, or the other effects.")
+        unweighted = "between and random-effects fits" if estimator in ("between", "random-effects") else (
+            "the serial-correlation test" if serial_test else "")
+        if unweighted and (weights is not None or endog):
+            given = "'weights'" if not endog else "'endogenous' and 'instruments'"
+            raise InputError(f"Options {given} are not available for {unweighted} yet; leave them out"
+                             + (", or leave out --serial-test." if serial_test and estimator not in ("between", "random-effects")
+                                else ", or use --estimator within, first-difference or pooled."))
         spec = cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, variance=variance, cluster=clus, intercept=bool(intercept), period_step=None if period_step is None else int(period_step),
             absorbed_levels=absorbed_levels, effects_tolerance=effects_tolerance, effects_iterations=effects_iterations,
             write_effects=write_effects, write_residuals=write_residuals, weights=weights, endogenous=endog,
-            instruments=instr,
+            instruments=instr, tests=tests, serial_test=serial_test,
         )
         if spec.many_effects and (weights is not None or endog):
             given = "'weights'" if not endog else ("'endogenous' and 'instruments'" if weights is None

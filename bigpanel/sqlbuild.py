@@ -575,6 +575,89 @@ def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods:
                   keep="n > 1" if demean else "true")
 
 
+def unit_size_pass_sql(units: str, q: int, total: str = "sum") -> str:
+    """Within and between cross-products, sums and raw squares of the q design columns,
+    summed over the units of each size (``unit_size_pass.sql``)."""
+    pairs = [(j, l) for j in range(q) for l in range(j, q)]
+    sums = [f"{total}({_p(j, l)} - s{j} * s{l} / n) AS {_w(j, l)}" for j, l in pairs]
+    sums += [f"{total}(s{j} * s{l} / n) AS b{j}_{l}" for j, l in pairs]
+    sums += [f"{total}(s{j}) AS m{j}" for j in range(q)] + [f"{total}(p{j}_{j}) AS r{j}" for j in range(q)]
+    return render("unit_size_pass", units=f"({units})", sums=", ".join(sums))
+
+
+UNIT_MEAN_MODES = ("between", "random", "means")  # score sets of unit_mean_scores.sql
+
+
+def unit_mean_scores_sql(used: str, q: int, modes: Sequence[str], total: str = "sum") -> str:
+    """Outer sums over units of the unit scores of each set ``modes[m]`` (parameters
+    ``$b<m>_j``, ``$a<m>``, ``$g<m>_j``; ``$re_e``, ``$re_u``):
+
+    - ``between``: columns (unit means of the regressors, 1) times the unit's mean residual;
+    - ``random``: the quasi-demeaned regression's score, sum_t (z_t - theta zbar)(u_t - theta ubar)
+      = sum z u - lam n zbar ubar over (regressors, constant);
+    - ``means``: the same with the unit means of the regressors as more columns
+      (regressors, means, constant), the correlated random-effects regression.
+    """
+    k = q - 1
+    y = _z(k)
+    residuals = [f"{y}" + "".join(f" - $b{m}_{j} * {_z(j)}" for j in range(k)) + f" AS e{m}" for m in range(len(modes))]
+    unit_sums = ["count(*) AS n"] + [f"{total}({_z(j)}) AS sx{j}" for j in range(k)]
+    weights = ["1 - $re_e / (n * $re_u + $re_e) AS lam"]
+    scores, outer = [], []
+    for m, mode in enumerate(modes):
+        if mode not in UNIT_MEAN_MODES:
+            raise ValueError(mode)
+        unit_sums += [f"{total}({_z(j)} * e{m}) AS xe{m}_{j}" for j in range(k)] + [f"{total}(e{m}) AS se{m}"]
+        fitted = "".join(f" + $g{m}_{j} * sx{j} / n" for j in range(k)) if mode == "means" else ""
+        weights.append(f"se{m} / n - $a{m}{fitted.replace(' + ', ' - ')} AS ub{m}")
+        if mode == "between":
+            cols = [f"sx{j} / n * ub{m}" for j in range(k)] + [f"ub{m}"]
+        else:
+            level = f"($a{m}{fitted})"
+            cols = [f"xe{m}_{j} - sx{j} * {level} - lam * sx{j} * ub{m}" for j in range(k)]
+            if mode == "means":
+                cols += [f"(1 - lam) * sx{j} * ub{m}" for j in range(k)]
+            cols.append(f"(1 - lam) * n * ub{m}")
+        scores += [f"{c} AS f{m}_{i}" for i, c in enumerate(cols)]
+        outer += [f"{total}(f{m}_{i} * f{m}_{l}) AS o{m}_{i}_{l}" for i in range(len(cols)) for l in range(i, len(cols))]
+    return render("unit_mean_scores", used=used, residuals=", ".join(residuals), unit_sums=", ".join(unit_sums),
+                  weights=", ".join(weights), scores=", ".join(scores), outer=", ".join(outer))
+
+
+SERIAL_SUMS = ("n", "a", "b", "c", "d", "ee")  # per unit: count, sum l, sum l*l, sum e, sum l*e, sum e*e
+
+
+def serial_pass_sql(used: str, k: int, step: int, intercept: bool, n_periods: int, within: bool, total: str = "sum") -> str:
+    """The serial-correlation test's sums (``serial_pass.sql``) from the used rows in levels
+    (k regressors, outcome last): one window per unit over the level residual, whatever
+    the number of terms. Period terms: within with unit and period effects subtracts the
+    effect $g_i of period $t_i from the level residual; first differences subtract the
+    differenced equation's intercept ``$b_one`` or its period intercepts from e and l."""
+    step = int(step)
+    level = f"r.{_z(k)}" + "".join(f" - $b{j} * r.{_z(j)}" for j in range(k))
+    values = ", ".join(f"($t{i}, $g{i})" for i in range(n_periods))
+    level_join = joins = ""
+    current, previous = "r.r - r.r1", "r.r1 - r.r2"
+    if n_periods and within:
+        level += " - coalesce(pe.g, 0)"
+        level_join = f"LEFT JOIN (VALUES {values}) AS pe(k_period, g) ON r.k_period = pe.k_period"
+    elif n_periods:
+        joins = " ".join(f"LEFT JOIN (VALUES {values}) AS pe{a}(k_period, g) ON r.k_period - {a * step} = pe{a}.k_period"
+                         for a in range(2))
+        current, previous = current + " - coalesce(pe0.g, 0)", previous + " - coalesce(pe1.g, 0)"
+    elif intercept:
+        current, previous = current + " - $b_one", previous + " - $b_one"
+    sums = {"n": "count(*)", "a": f"{total}(l)", "b": f"{total}(l * l)", "c": f"{total}(e)", "d": f"{total}(l * e)",
+            "ee": f"{total}(e * e)"}
+    per_unit = ", ".join(f"{v} AS {name}" for name, v in sums.items())
+    names = list(SERIAL_SUMS)
+    outer = [f"{total}({a}) AS t_{a}" for a in names]
+    outer += [f"{total}({a} * {b}) AS x_{a}_{b}" for i, a in enumerate(names[:-1]) for b in names[i:-1]]
+    return render("serial_pass", used=used, level=level, level_join=level_join,
+                  window="PARTITION BY k_unit ORDER BY k_period", step=str(step), current=current, previous=previous,
+                  joins=joins, per_unit=per_unit, outer=", ".join(outer))
+
+
 def twoway_pass_sql(used: str, q: int, first: int, last: int, total: str = "sum") -> str:
     """Unit + period effects in one pass: per-unit totals, presence patterns, period sums."""
     moments = ", ".join(_moment_aggregates(q, total) + ["min(k_period) AS t_lo", "max(k_period) AS t_hi"])

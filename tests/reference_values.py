@@ -13,6 +13,19 @@ GRUNFELD_WITHIN = {
     "capital": (0.3101, 0.0174),
 }
 GRUNFELD_PRINTED_DECIMALS = 4
+# The same table, between and Swamy-Arora random-effects rows, printed to 3 decimals;
+# the random-effects row also prints sigma_u and sigma_e to 2 decimals. (from memory)
+GRUNFELD_BETWEEN = {
+    "value": (0.135, 0.029),  # (estimate, standard error)
+    "capital": (0.032, 0.191),
+}
+GRUNFELD_SWAMY_ARORA = {
+    "value": (0.110, 0.010),
+    "capital": (0.308, 0.017),
+}
+GRUNFELD_SWAMY_ARORA_SIGMA = {"sigma_u": 84.20, "sigma_e": 52.77}
+GRUNFELD_TABLE_DECIMALS = 3
+GRUNFELD_SIGMA_DECIMALS = 2
 GRUNFELD_N_FIRMS = 10  # Baltagi's 10 firms: statsmodels' grunfeld data less American Steel
 GRUNFELD_N_YEARS = 20  # 1935-1954
 

@@ -192,7 +192,7 @@ source = "sorce"
         "bad.toml, source 'source' has an unknown key 'wher'. Did you mean 'where'?",
         "bad.toml, [defaults] has an unknown key 'varience'. Did you mean 'variance'?",
         "bad.toml, model 'a' has an unknown key 'regresors'. Did you mean 'regressors'?",
-        "bad.toml, model 'c', key 'estimator': Option 'estimator' must be one of pooled, within, first-difference; got 'fe'.",
+        "bad.toml, model 'c', key 'estimator': Option 'estimator' must be one of pooled, within, first-difference, between, random-effects; got 'fe'.",
         "bad.toml, model 'e', key 'source': 'sorce' is not a source of this file. Did you mean 'source'?",
         "bad.toml, model 'b', key 'regressors': Column 'staf_hours' not found in demo-depots. Did you mean 'staff_hours'?",
         "bad.toml, model 'd', key 'cluster': Column 'regoin' not found in demo-depots. Did you mean 'region'",

@@ -219,7 +219,7 @@ def test_valid_predicate_text(differenced, expected):
 
 
 @pytest.mark.parametrize(("name", "value", "message"), [
-    ("estimator", "fe", "Option 'estimator' must be one of pooled, within, first-difference; got 'fe'."),
+    ("estimator", "fe", "Option 'estimator' must be one of pooled, within, first-difference, between, random-effects; got 'fe'."),
     ("variance", "robust", "Option 'variance' must be one of homoskedastic, hc1, cluster; got 'robust'."),
     ("period_step", 0, "Option 'period_step' must be a whole number from 1 to 2**53 (9,007,199,254,740,992), got 0."),
     ("regressors", "", "Option 'regressors' is empty."),

@@ -6,12 +6,15 @@ from ..design import integer_period
 from ..spec import FitSpec
 from .many_effects import ManyEffects
 from .base import Equations, Estimator
+from .between import Between
 from .first_difference import FirstDifference
 from .pooled import Pooled
+from .random_effects import ErrorComponents
 from .unit_period import UnitPeriod
 from .within import Within
 
-__all__ = ["ManyEffects", "Equations", "Estimator", "FirstDifference", "Pooled", "UnitPeriod", "Within", "select"]
+__all__ = ["Between", "Equations", "ErrorComponents", "Estimator", "FirstDifference", "ManyEffects", "Pooled", "UnitPeriod",
+           "Within", "select"]
 
 
 def select(spec: FitSpec, engine) -> Estimator:
@@ -30,4 +33,8 @@ def select(spec: FitSpec, engine) -> Estimator:
         return Within(spec)
     if spec.estimator == "first-difference":
         return FirstDifference(spec)
+    if spec.estimator == "between":
+        return Between(spec)
+    if spec.estimator == "random-effects":
+        return ErrorComponents(spec)
     return Pooled(spec)

@@ -45,6 +45,8 @@ class Equations:
     effect_values: list = field(default_factory=list)  # every period with an effect (base included)
     effect_rows: np.ndarray | None = None  # each period's indicator row over the extra columns
     absorption: object = None  # many effects: the bigpanel.sweeps.Absorption behind the equations
+    components: dict = field(default_factory=dict)  # random effects: sigma_u, sigma_e, theta range (reported)
+    parts: dict = field(default_factory=dict)  # an estimator's own algebra kept for its variance and tests
 
     def cancellation(self) -> float:
         """Largest ratio of raw to transformed sum of squares (digits lost by one pass)."""
@@ -114,6 +116,14 @@ class Estimator:
         if self.spec.period_effects:
             return {"path": "exact", "method": "unit effects by per-unit sums, period effects as indicator columns (no iteration)"}
         return {"path": "exact", "method": "unit effects by per-unit sums (no iteration)"}
+
+    def own_variance(self, executor, rows: Rows, params: dict, eq: Equations, sol, rss: float, n_kept: int, notes):
+        """A variance of the estimator's own (between, random effects), or None for the common choice."""
+        return None
+
+    def extra_tests(self, executor, rows: Rows, params: dict, eq: Equations, sol, var, notes) -> dict:
+        """Tests the estimator reports with every fit (``FitResult.tests``), by key."""
+        return {}
 
     # ---- moments
     def first_pass(self, design: Design, pilot: np.ndarray | None = None) -> CrossProducts:
