@@ -134,6 +134,14 @@ CASES = {
     "pooled, homoskedastic": dict(regressors="union, married, educ, black, hisp, exper", estimator="pooled"),
     "pooled, hc1, period effects": dict(regressors="union, educ, ln(hours)", estimator="pooled", effects="year", variance="hc1"),
     "pooled, region clusters": dict(regressors="union, educ, sqrt(exper)", estimator="pooled", cluster="region"),
+    "between": dict(regressors="union, married, educ", estimator="between"),
+    "random effects": dict(regressors="union, married, educ, exper", estimator="random-effects"),
+    "within, weighted": dict(regressors="union, married, expersq", weights="hours"),
+    "first differences, weighted, hc1": dict(regressors="union, married", estimator="first-difference", weights="hours",
+                                             variance="hc1"),
+    "within, instrumented": dict(regressors="expersq", endogenous="married", instruments='"union", lag(married)'),
+    "within, joint test and serial test": dict(regressors="union, married, expersq", test=["married = 0, expersq = 0"],
+                                               serial_test=True),
 }
 
 
