@@ -182,6 +182,11 @@ def run(argv: list[str] | None = None) -> int:
             _closing = True  # from here on clean-up runs to its end
     except Interrupted:
         pass
+    except BaseException:
+        if _received is None:
+            raise
+        # a stop that landed inside an import a library guards with its own except clause
+        # comes back as that library's error: the stop is what happened
     close_all()
     remove_all_folders()
     if _received is not None:
