@@ -23,8 +23,11 @@ from panel_cases import unbalanced_panel, write_parquet, write_parquet_parts
 EPS = np.finfo(float).eps
 REGRESSORS = ["x1", "x2"]
 # 15 examples per property: each runs two fits of ~0.2 s on the shared 2-core machine,
-# and the fit tests together must stay under ~60 s.
-SETTINGS = settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+# and the fit tests together must stay under ~60 s. The draws are fixed (derandomize): CI
+# must not pass or fail by luck. Known open case, seed=3489, shape=(4, 3), within, target y:
+# the standard error of x1 moves by 2.3e-14 of itself, beyond the bound below, which accounts
+# for the condition number but not for the cancellation in the residual sum of squares.
+SETTINGS = settings(max_examples=15, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.too_slow])
 
 seeds = st.integers(min_value=0, max_value=2**32 - 1)
 shapes = st.tuples(st.integers(min_value=4, max_value=10), st.integers(min_value=3, max_value=6))
