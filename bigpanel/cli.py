@@ -26,7 +26,7 @@ if TYPE_CHECKING:  # the source module imports DuckDB: only the commands that re
 
 app = typer.Typer(
     name="bigpanel",
-    help="Within and first-difference panel regressions run as SQL over Parquet, CSV and DuckDB files.",
+    help="Panel regressions with fixed effects (within, first differences, between, random effects) run as SQL where the data lives: Parquet, CSV and DuckDB files, or a PostgreSQL warehouse.",
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
@@ -115,7 +115,7 @@ def _use_color() -> bool:
 
 @app.callback()
 def _group() -> None:
-    """Within and first-difference panel regressions run as SQL over Parquet, CSV and DuckDB files."""
+    """Panel regressions with fixed effects (within, first differences, between, random effects) run as SQL where the data lives: Parquet, CSV and DuckDB files, or a PostgreSQL warehouse."""
 
 
 @app.command("checkup")
