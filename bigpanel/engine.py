@@ -46,6 +46,11 @@ class EngineAdapter(Protocol):
         """Refuse anything but one scalar expression; return the SQL rendered from its
         checked parse tree (DuckDB's parser; rendered in this engine's dialect)."""
 
+    def expression(self, sql: str, what: str, text: str) -> str:
+        """A checked expression (the SQL DuckDB rendered from its checked tree) in this
+        engine's dialect, rendered from the same tree; refused when the engine lacks one of
+        its functions."""
+
     def describe_expression(self, expression: str, what: str, text: str) -> str:
         """The type of a checked expression over the source, reading no rows."""
 
@@ -104,6 +109,9 @@ class DuckDBEngine:
 
     def check_expression(self, text: str, what: str) -> str:
         return expression_sql(text, what)
+
+    def expression(self, sql: str, what: str, text: str) -> str:
+        return sql
 
     def describe_expression(self, expression: str, what: str, text: str) -> str:
         return self.session.describe_expression(expression, what, text)

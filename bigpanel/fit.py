@@ -22,14 +22,14 @@ import numpy as np
 
 from . import estimators
 from .design import Design, build_design
-from .engine import DuckDBEngine
+from .engines import open_engine
 from .errors import BigpanelWarning, EstimationError, InputError
 from .execute import Executor, Keys
 from .inference import MAX_EXPANDED, Notes, finish
 from .params import check_keys
 from .plan import ScanPlan, member_params, prefill
 from .results import FitResult
-from .source import Engine, Session, as_source
+from .source import Engine, as_engine, as_source
 from .spec import FitSpec
 
 CANCELLATION_LIMIT = 1e6  # raw/transformed sum of squares above which one pass loses > 6 digits
@@ -51,9 +51,10 @@ def fit(
     table: str | None = None,
     query: str | None = None,
     csv_types: dict | None = None,
-    engine: Engine | None = None,
+    engine: Engine | str | None = None,
     csv_nulls=None,
     absorbed_levels: str | None = None,
+    spark_master: str | None = None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
@@ -92,17 +93,21 @@ def fit(
         for every component of a two-way variance: "not-nested" (default) leaves out the
         effects nested in a cluster dimension; "all" counts every level (dummy variables).
     table, query, csv_types, engine
-        As in :func:`bigpanel.open_source`.
+        As in :func:`bigpanel.open_source`; ``engine`` is also an engine's name:
+        ``"spark"`` runs the plan as Spark SQL (Parquet sources).
+    spark_master : str, optional
+        With ``engine="spark"``: the Spark master URL (default: ``SPARK_MASTER``, else
+        ``spark.master`` in spark-defaults.conf, else local mode).
     csv_nulls : str or list of str, optional
         Extra CSV tokens read as missing (``"NA,."``); empty fields always are.
     """
     spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step,
                          absorbed_levels)
-    src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
+    src = as_source(source, where, table, query, csv_types, as_engine(engine, spark_master), csv_nulls)
     notes = Notes([])
     try:
-        with Session(src) as session:
-            executor = Executor(DuckDBEngine(session), Keys(spec.unit, spec.period, spec.period_step))
+        with open_engine(src) as adapter:
+            executor = Executor(adapter, Keys(spec.unit, spec.period, spec.period_step))
             return estimate(executor, spec, notes)
     finally:
         emit(notes, stacklevel=3)
@@ -125,8 +130,9 @@ def fit_many(
     table: str | None = None,
     query: str | None = None,
     csv_types: dict | None = None,
-    engine: Engine | None = None,
+    engine: Engine | str | None = None,
     csv_nulls=None,
+    spark_master: str | None = None,
 ) -> FitList:
     """Estimate many models on one source, sharing scans.
 
@@ -147,11 +153,11 @@ def fit_many(
         row transform (levels, differences); each model keeps its own sample.
     """
     specs = [_model_spec(m, i, unit, period, period_step) for i, m in enumerate(models)]
-    src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
+    src = as_source(source, where, table, query, csv_types, as_engine(engine, spark_master), csv_nulls)
     notes = [Notes([]) for _ in specs]
     try:
-        with Session(src) as session:
-            executor = Executor(DuckDBEngine(session), Keys(unit, period, specs[0].period_step if specs else None))
+        with open_engine(src) as adapter:
+            executor = Executor(adapter, Keys(unit, period, specs[0].period_step if specs else None))
             prepared = [prepare(executor, spec, n) for spec, n in zip(specs, notes)]
             plan = ScanPlan.build(prepared)
             results: list = [None] * len(specs)
