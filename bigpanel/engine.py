@@ -8,7 +8,8 @@ another SQL engine is a new adapter (DEVELOPERS.md lists what it must provide).
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from typing import Protocol
 
 import duckdb
@@ -79,6 +80,39 @@ class EngineAdapter(Protocol):
     def fold_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict, fold: Callable) -> list:
         """Optional: stream each chunk's rows as Arrow batches into ``fold(batches)`` (one
         thread per chunk, the rows in storage order); results in chunk order."""
+
+
+def open_session(source):
+    """An open session on a source: :class:`~bigpanel.source.Session` (DuckDB), or
+    :class:`~bigpanel.pg.PostgresSession` for a ``postgres`` source (same methods)."""
+    if source.kind == "postgres":
+        from .pg import PostgresSession
+
+        return PostgresSession(source)
+    return Session(source)
+
+
+@contextmanager
+def open_engine(source) -> Iterator["EngineAdapter"]:
+    """The engine adapter for a source, open for the block: DuckDB, PostgreSQL for a
+    ``postgres`` source (:mod:`bigpanel.pg`), or Spark SQL when the source's engine
+    settings name it (:mod:`bigpanel.spark`)."""
+    if source.engine.name == "spark":
+        from .spark import SparkEngine
+
+        spark = SparkEngine(source)
+        try:
+            yield spark
+        finally:
+            spark.close()
+        return
+    with open_session(source) as session:
+        if source.kind == "postgres":
+            from .pg import PostgresEngine
+
+            yield PostgresEngine(session)
+        else:
+            yield DuckDBEngine(session)
 
 
 class DuckDBEngine:

@@ -22,7 +22,7 @@ import numpy as np
 
 from . import estimators
 from .design import Design, build_design
-from .engines import open_engine
+from .engine import open_engine
 from .errors import BigpanelWarning, EstimationError, InputError
 from .execute import Executor, Keys
 from .inference import MAX_EXPANDED, Notes, finish

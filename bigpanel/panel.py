@@ -243,7 +243,9 @@ def inspect_panel(source, unit: str, period: str, columns: Sequence[str] | None 
     if source.engine.name != "duckdb":
         raise InputError(f"The checkup runs on the duckdb engine only; --engine {source.engine.name} is not available "
                          "for it yet. Leave out --engine (the checkup reads the files with DuckDB).")
-    with Session(source) as session:
+    from .engine import open_session
+
+    with open_session(source) as session:
         kinds = _check_arguments(session, unit, period, columns)
         session.check_filter()
         schema = session.columns()

@@ -15,7 +15,7 @@ from typing import Any
 from .errors import InputError, echo
 
 ESTIMATORS = ("pooled", "within", "first-difference")
-ENGINES = ("duckdb", "spark")  # where the SQL runs (bigpanel.engines)
+ENGINES = ("duckdb", "spark")  # where the SQL runs (bigpanel.engine.open_engine)
 VARIANCES = ("homoskedastic", "hc1", "cluster")
 # How absorbed effect levels enter K' of the cluster small-sample factor (ESTIMATION.md):
 # "not-nested" leaves out the effects nested in at least one cluster dimension, "all"

@@ -126,7 +126,7 @@ _SIZE = re.compile(
 class Engine:
     """DuckDB settings: worker threads, memory limit (e.g. ``"4GB"``) and the folder under
     which a private spill folder is made (default: the system's temporary folder); or
-    ``name="spark"``: the plan runs as Spark SQL (:mod:`bigpanel.engines.spark`) on
+    ``name="spark"``: the plan runs as Spark SQL (:mod:`bigpanel.spark`) on
     ``spark_master`` (default: the Spark environment's, else local mode).
 
     The values are checked when the Engine is made, before anything is read.
@@ -215,7 +215,7 @@ class Source:
     Build one with :func:`open_source`; the fields are filled in there.
     """
 
-    kind: str  # parquet | csv | duckdb | query | frame
+    kind: str  # parquet | csv | duckdb | query | frame | postgres
     label: str
     files: tuple[str, ...] = ()
     hive: bool = False
@@ -228,6 +228,7 @@ class Source:
     where: str | None = None
     frame: Any = field(default=None, compare=False, repr=False)
     engine: Engine = Engine()
+    uri: str | None = field(default=None, repr=False, compare=False)  # postgres: URI or env:NAME (bigpanel.pg)
     # SQL rendered from the checked parse trees of ``where`` and ``query`` (what runs)
     where_sql: str | None = field(default=None, init=False, repr=False)
     query_sql: str | None = field(default=None, init=False, repr=False)
@@ -248,6 +249,8 @@ class Source:
             return sqlbuild.csv_relation(list(self.files), dict(self.csv_types), dict(self.csv_options), self.csv_nulls)
         if self.kind == "duckdb" and self.table is not None:
             return sqlbuild.table_relation(_ATTACHED, self.table)
+        if self.kind == "postgres" and self.table is not None:
+            return sqlbuild.table_relation(None, self.table)
         if self.kind == "frame":
             return sqlbuild.quote_ident(_FRAME_VIEW)
         return sqlbuild.query_relation(self.query_sql or "")
@@ -490,6 +493,14 @@ def open_source(
         weakref.finalize(src, shutil.rmtree, folder, True)  # the temporary file lives as long as the Source
     elif not isinstance(source, (str, os.PathLike)):
         src = Source(kind="frame", label=f"in-memory {type(source).__name__}", frame=_as_arrow(source), **common)
+    elif _is_postgres(source):
+        from . import pg
+
+        if not table and not query:
+            raise InputError(f"PostgreSQL source {pg.label(str(source), None, None)} needs a table or a query. "
+                             "Pass --table NAME (or schema.name) or --query SQL.")
+        src = Source(kind="postgres", label=pg.label(str(source), table, query), table=table, query=query,
+                     uri=str(source).strip(), **common)
     else:
         path = str(source)
         lockdown.refuse_remote_source(path)
@@ -534,9 +545,13 @@ def _check_source_options(source: Any, table: str | None, query: str | None, csv
                           csv_nulls: Any = None) -> None:
     """Refuse options that the kind of source would silently ignore."""
     path = str(source).lower() if isinstance(source, (str, os.PathLike)) else None
-    database = path is not None and path.endswith((".duckdb", ".db", ".ddb"))
+    database = path is not None and (path.endswith((".duckdb", ".db", ".ddb")) or _is_postgres(source))
     csv = path is not None and path.endswith((".csv", ".tsv", ".csv.gz", ".tsv.gz", ".txt"))
     given = shown(source) if path is not None else "an in-memory frame"
+    if database and path is not None and _is_postgres(source):
+        from . import pg
+
+        given = pg.label(str(source), None, None)
     if table and not database:
         raise InputError(f"Option --table applies to DuckDB files, but the source is {given}. "
                          "Leave --table out, or give a .duckdb file.")
@@ -549,6 +564,12 @@ def _check_source_options(source: Any, table: str | None, query: str | None, csv
         raise InputError(f"Option --csv-types applies to CSV sources, but the source is {given}. Leave it out.")
     if csv_nulls and not csv:
         raise InputError(f"Option --csv-null applies to CSV sources, but the source is {given}. Leave it out.")
+
+
+def _is_postgres(source: Any) -> bool:
+    """A PostgreSQL URI or env:NAME (bigpanel.pg): a source kind of its own, not a remote file."""
+    return isinstance(source, (str, os.PathLike)) and str(source).strip().lower().startswith(
+        ("postgresql://", "postgres://", "env:"))
 
 
 def _as_arrow(frame: Any):

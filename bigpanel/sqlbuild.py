@@ -76,12 +76,17 @@ class Dialect:
         """The query with this engine's parameter markers, and its parameters."""
         return sql, params
 
+    def presence(self, first: int, last: int) -> tuple[str, str]:
+        """(aggregate per unit, its text of 0s and 1s): the periods a unit is seen in, one
+        character per period from ``first`` to ``last``."""
+        return f"bitstring_agg(k_period, {int(first)}, {int(last)})", f"CAST(pattern AS {self.text_type})"
+
 
 class SparkDialect(Dialect):
     """Spark SQL: backtick identifiers; string literals that read backslash escapes (so a
     backslash is doubled and a quote escaped); ``:name`` parameters; no compensated sum
     (the plain one: Spark's order of summation depends on partitioning, and agreement
-    with DuckDB is to a stated tolerance, DEVELOPERS.md); ``grouping_id``; ``div``."""
+    with DuckDB is to a stated tolerance, DEVELOPERS.md); ``grouping()`` per key; ``div``."""
 
     def quote_ident(self, name: str) -> str:
         return "`" + str(name).replace("`", "``") + "`"
@@ -93,7 +98,9 @@ class SparkDialect(Dialect):
         return f"(({expression}) * 0 = 0)"  # NaN and infinities times 0 are NaN, unequal to 0 in Spark too
 
     def grouping(self, keys: Sequence[str]) -> str:
-        return f"grouping_id({', '.join(keys)})"
+        # grouping_id() must list the columns in GROUP BY's order; bit by bit it need not
+        n = len(keys)
+        return "(" + " + ".join(f"grouping({k}) * {2 ** (n - 1 - i)}" for i, k in enumerate(keys)) + ")"
 
     def whole_division(self, a: str, b: str) -> str:
         return f"({a}) div ({b})"
@@ -105,6 +112,11 @@ class SparkDialect(Dialect):
             "day": f"datediff(CAST({period_value} AS DATE), DATE '1970-01-01')",
             "microsecond": f"unix_micros(CAST({period_value} AS TIMESTAMP))",
         }[mode]
+
+    def presence(self, first: int, last: int) -> tuple[str, str]:
+        # the set of the unit's periods, written out over the grid
+        text = f"array_join(transform(sequence({int(first)}, {int(last)}), t -> IF(array_contains(pattern, t), '1', '0')), '')"
+        return "collect_set(k_period)", text
 
     def bind(self, sql: str, params: dict | None) -> tuple[str, dict | None]:
         """``$name`` markers outside quoted text become ``:name``; only the parameters the
@@ -130,6 +142,11 @@ _MARKER_OR_QUOTED = re.compile(r"'(?:[^'\\]|\\.)*'|\"(?:[^\"\\]|\\.)*\"|`(?:[^`]
 DUCKDB = Dialect()
 SPARK = SparkDialect(name="spark", compensated="sum", param_marker=":", text_type="STRING", materialized="AS",
                      one="CAST(1 AS DOUBLE)")
+# PostgreSQL: builders write DuckDB's SQL for it, and bigpanel.render writes PostgreSQL's
+# text from DuckDB's parse tree of each query (fsum and favg become sum and avg there, which
+# add rows in one order on one process; isfinite a comparison). The dialect tells builders
+# what to leave out: no bitstring_agg (bigpanel.pg.PostgresEngine.twoway_pass), no histogram.
+POSTGRES = Dialect(name="postgres")
 
 
 def quote_ident(name: str, dialect: Dialect = DUCKDB) -> str:
@@ -590,12 +607,7 @@ def twoway_pass_sql(used: str, q: int, first: int, last: int, total: str = "sum"
     totals = unit_pass_sql("SELECT * FROM unit_rows", q, "within", False, total)
     means = ", ".join(f"{total}(s{j} / n) AS m{j}" for j in range(q))
     sums = ", ".join(f"s{j}" for j in range(q))
-    lo, hi = int(first), int(last)
-    if dialect.name == "duckdb":
-        pattern_agg, pattern_text = f"bitstring_agg(k_period, {lo}, {hi})", f"CAST(pattern AS {dialect.text_type})"
-    else:
-        pattern_agg = "collect_set(k_period)"
-        pattern_text = f"array_join(transform(sequence({lo}, {hi}), t -> IF(array_contains(pattern, t), '1', '0')), '')"
+    pattern_agg, pattern_text = dialect.presence(first, last)
     dim = q
     kinds = {
         "total": ["n_units", "n_obs", "singletons", "singleton_rows"]

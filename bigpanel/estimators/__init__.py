@@ -17,7 +17,7 @@ def select(spec: FitSpec, engine) -> Estimator:
     """The estimator for ``spec`` (unit and period effects on whole-number periods take
     the exact two-way path; on other periods, indicator columns inside within)."""
     if spec.estimator == "within":
-        if spec.period_effects and integer_period(engine, spec):
+        if spec.period_effects and integer_period(engine, spec) and getattr(engine, "twoway_pass", True):
             return UnitPeriod(spec)
         return Within(spec)
     if spec.estimator == "first-difference":

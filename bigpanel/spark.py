@@ -31,9 +31,9 @@ import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from .. import moments, sqlbuild
-from ..errors import BigpanelError, InputError, echo, shown, unknown_column
-from ..source import is_integer, is_numeric
+from . import moments, sqlbuild
+from .errors import BigpanelError, InputError, echo, shown, unknown_column
+from .source import is_integer, is_numeric
 
 # Agreement with DuckDB on the same data (coefficients and standard errors, relative to
 # the larger magnitude): Spark's plain sums in partition order against DuckDB's
@@ -204,11 +204,17 @@ class SparkEngine:
                              "Write a comparison, for example \"region = 'north'\" or \"promo > 0\".")
 
     def expression(self, sql: str, what: str, text: str) -> str:
+        from . import render
+
+        node = render.parse_tree("SELECT " + sql)["statements"][0]["node"]["select_list"][0]
+        booleans = frozenset(c for c, t in self.columns().items() if t == "BOOLEAN")
         try:
-            from ..render import render_expression
-        except ImportError:  # until the renderer lands: columns only
-            raise InputError(f"{what} {shown(text)}: expressions are not rendered for Spark yet; name a column.") from None
-        return render_expression(sql, self.dialect, what, text)
+            return render.expression(node, render.SPARK, booleans)
+        except render.Unsupported as exc:
+            reason = f" ({exc.reason})" if exc.reason else ""
+            raise InputError(f"{what} {shown(text or sql)} uses {exc.function}, which Spark does not have{reason}. "
+                             "Rewrite it with functions both engines share (README: Data beyond one machine), "
+                             "or use --engine duckdb.") from None
 
     def where_sql(self) -> str | None:
         if self._where_sql is None and self.source.where_sql:
@@ -238,7 +244,7 @@ class SparkEngine:
     def row_count(self) -> int | None:
         if self.source.where:
             return None
-        from ..source import _parquet
+        from .source import _parquet
 
         return sum(_parquet().read_metadata(f).num_rows for f in self.source.files)
 
@@ -266,7 +272,7 @@ class SparkEngine:
         return table
 
     def _explain(self, exc: BaseException) -> BaseException:
-        from .. import interrupts
+        from . import interrupts
 
         if interrupts.received() is not None:
             return interrupts.Interrupted(interrupts.received())
