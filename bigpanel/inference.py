@@ -261,5 +261,5 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         r_squared=float(r2), r_squared_kind=est.r2_kind, f_stat=f_stat, f_df=(float(len(slopes)), float(var.df)),
         f_p_value=f_p, f_unavailable=f_missing, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=eq.singletons,
         absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=executor.label,
-        where=executor.engine.where, warnings=notes.texts, run=run_record(executor.engine.thread_count()),
+        where=executor.engine.where, warnings=notes.texts, run=run_record(executor.engine.thread_count(), executor.engine.dialect.name),
     )

@@ -76,6 +76,15 @@ PARAMETERS: dict[str, Param] = {p.name: p for p in (
 
 MODEL_KEYS = tuple(PARAMETERS)
 
+# Where the SQL runs, for fit and fit_many (API keywords, CLI options, spec files' source
+# tables); the values reach source.Engine, which checks them.
+ENGINE_PARAMETERS: dict[str, Param] = {p.name: p for p in (
+    Param("engine", "choice", "Where the SQL runs: duckdb (default), or spark: Spark SQL over the Parquet files "
+          "(pip install 'bigpanel[spark]'; only aggregates come back).", default="duckdb", choices=ENGINES),
+    Param("spark_master", "column", "With --engine spark: the Spark master URL, e.g. local[4] or spark://host:7077 "
+          "(default: SPARK_MASTER, else spark.master in spark-defaults.conf, else local mode on every core)."),
+)}
+
 
 def as_list(value: str | Sequence[str] | None) -> tuple[str, ...]:
     if value is None:

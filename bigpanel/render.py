@@ -597,10 +597,11 @@ def _pg_divide(a: str, b: str, user: bool) -> str:
     return f"(CAST({a} AS double precision) / {divisor})"
 
 
-def _arity(name: str, counts: tuple[int, ...], rule: Callable[[list[str]], str]) -> Callable[[list[str]], str]:
+def _arity(name: str, counts: tuple[int, ...], rule: Callable[[list[str]], str],
+           engine: str = "PostgreSQL") -> Callable[[list[str]], str]:
     def checked(args: list[str]) -> str:
         if len(args) not in counts:
-            raise Unsupported(f"{name}() with {len(args)} arguments", "PostgreSQL")
+            raise Unsupported(f"{name}() with {len(args)} arguments", engine)
         return rule(args)
 
     return checked
@@ -718,12 +719,7 @@ def _spark_divide(a: str, b: str, user: bool) -> str:
 
 
 def _spark_arity(name: str, counts: tuple[int, ...], rule: Callable[[list[str]], str]) -> Callable[[list[str]], str]:
-    def checked(args: list[str]) -> str:
-        if len(args) not in counts:
-            raise Unsupported(f"{name}() with {len(args)} arguments", "Spark")
-        return rule(args)
-
-    return checked
+    return _arity(name, counts, rule, "Spark")
 
 
 def _spark_same(name: str, *counts: int, spark_name: str | None = None) -> Callable[[list[str]], str]:

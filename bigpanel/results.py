@@ -87,7 +87,7 @@ class FitResult:
     where: str | None
     warnings: tuple[str, ...] = field(default=())
     f_unavailable: str = ""  # why there is no joint test (f_stat and f_p_value are then NaN)
-    run: dict = field(default_factory=dict)  # how it ran: {"threads": N, "version": "x.y.z"}
+    run: dict = field(default_factory=dict)  # how it ran: {"threads": N, "version": "x.y.z", "engine": "duckdb"}
 
     def to_dict(self) -> dict:
         out = json_ready(self)
@@ -214,13 +214,13 @@ def _footer(r: "FitResult", notes: bool) -> list[str]:
     return lines
 
 
-def run_record(threads: int) -> dict:
+def run_record(threads: int, engine: str = "duckdb") -> dict:
     """The ``run`` entry of a result's JSON: the thread count and the tool's version. The
     numbers do not depend on the threads (moments.plan_chunks); the entry says how the
     run was made, and is the one field that two runs with other threads may differ in."""
     from . import __version__
 
-    return {"threads": int(threads), "version": __version__}
+    return {"threads": int(threads), "version": __version__, "engine": engine}
 
 
 def _num(x: float) -> str:

@@ -146,6 +146,7 @@ class SparkEngine:
     """Spark SQL over the Parquet files of one source (an EngineAdapter, bigpanel/engine.py)."""
 
     dialect = sqlbuild.SPARK
+    received = {"queries": 0, "bytes": 0}  # process-wide: results collected from Spark (Arrow bytes)
 
     def __init__(self, source, session=None):
         if source.kind != "parquet":
@@ -156,8 +157,6 @@ class SparkEngine:
         self.where = source.where
         self.spark = session or spark_session(source.engine.spark_master)
         self.view = f"bigpanel_{uuid.uuid4().hex[:16]}"
-        self.bytes_received = 0  # Arrow bytes of every result collected (aggregates only)
-        self.queries = 0
         self._columns: dict[str, str] | None = None
         self._where_sql: str | None = None
         reader = self.spark.read.option("mergeSchema", "true")  # a column missing from some files reads as NULL
@@ -267,8 +266,8 @@ class SparkEngine:
             table = self.spark.sql(text, args=args).toArrow()
         except Exception as exc:  # noqa: BLE001 - Spark's errors arrive through py4j
             raise self._explain(exc) from None
-        self.queries += 1
-        self.bytes_received += table.nbytes
+        SparkEngine.received["queries"] += 1
+        SparkEngine.received["bytes"] += table.nbytes
         return table
 
     def _explain(self, exc: BaseException) -> BaseException:
