@@ -14,7 +14,9 @@ _PUBLIC = {
     "BigpanelError": "errors", "EstimationError": "errors", "InputError": "errors",
     "Engine": "source", "Source": "source", "open_source": "source",
     "fit": "fit", "fit_many": "fit", "FitList": "fit", "FitResult": "results",
+    "compare_results": "compare",
     "inspect_panel": "panel", "PanelReport": "panel", "ColumnCheck": "panel",
+    "run_spec": "batch", "RunReport": "batch", "RunPlan": "batch", "SpecError": "batch",
 }  # fmt: skip
 __all__ = list(_PUBLIC)
 

@@ -19,7 +19,7 @@ import typer
 
 from . import interrupts
 from .errors import BigpanelError, BigpanelWarning, InputError, echo
-from .params import ENGINE_PARAMETERS, PARAMETERS
+from .params import PARAMETERS, SOURCE_PARAMETERS
 
 if TYPE_CHECKING:  # the source module imports DuckDB: only the commands that read data load it
     from .source import Source
@@ -73,7 +73,7 @@ def _source_from_options(
     from .source import Engine, open_source
 
     engine = Engine(threads=threads, memory_limit=memory_limit, temp_directory=temp_directory,
-                    name=engine_name or ENGINE_PARAMETERS["engine"].default, spark_master=spark_master)
+                    name=engine_name or SOURCE_PARAMETERS["engine"].default, spark_master=spark_master)
     nulls = [token for item in csv_nulls or () for token in item.split(",")] or None
     return open_source(source, table=table, query=query, where=where, csv_types=_parse_csv_types(csv_types), engine=engine,
                        csv_nulls=nulls)
@@ -158,10 +158,10 @@ def checkup_command(
 Estimator = Enum("Estimator", {v.replace("-", "_"): v for v in PARAMETERS["estimator"].choices}, type=str)
 VarianceKind = Enum("VarianceKind", {v: v for v in PARAMETERS["variance"].choices}, type=str)
 LevelCount = Enum("LevelCount", {v.replace("-", "_"): v for v in PARAMETERS["absorbed_levels"].choices}, type=str)
-EngineName = Enum("EngineName", {v: v for v in ENGINE_PARAMETERS["engine"].choices}, type=str)
-EngineOpt = Annotated[Optional[EngineName], typer.Option(ENGINE_PARAMETERS["engine"].option, help=ENGINE_PARAMETERS["engine"].help)]
-SparkMasterOpt = Annotated[Optional[str], typer.Option(ENGINE_PARAMETERS["spark_master"].option,
-                                                       help=ENGINE_PARAMETERS["spark_master"].help)]
+EngineName = Enum("EngineName", {v: v for v in SOURCE_PARAMETERS["engine"].choices}, type=str)
+EngineOpt = Annotated[Optional[EngineName], typer.Option(SOURCE_PARAMETERS["engine"].option, help=SOURCE_PARAMETERS["engine"].help)]
+SparkMasterOpt = Annotated[Optional[str], typer.Option(SOURCE_PARAMETERS["spark_master"].option,
+                                                       help=SOURCE_PARAMETERS["spark_master"].help)]
 
 
 def _model_option(name: str):
@@ -184,6 +184,10 @@ def fit_command(
     period_step: Annotated[Optional[int], _model_option("period_step")] = None,
     absorbed_levels: Annotated[LevelCount, _model_option("absorbed_levels")] = LevelCount(
         PARAMETERS["absorbed_levels"].default),
+    effects_tolerance: Annotated[Optional[float], _model_option("effects_tolerance")] = None,
+    effects_iterations: Annotated[Optional[int], _model_option("effects_iterations")] = None,
+    write_effects: Annotated[Optional[str], _model_option("write_effects")] = None,
+    write_residuals: Annotated[Optional[str], _model_option("write_residuals")] = None,
     table: TableOpt = None,
     query: QueryOpt = None,
     where: WhereOpt = None,
@@ -206,11 +210,66 @@ def fit_command(
         warnings.simplefilter("always", BigpanelWarning)
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,
                      variance=variance.value if variance else None, cluster=cluster, intercept=False if no_intercept else None,
-                     period_step=period_step, absorbed_levels=absorbed_levels.value)
+                     period_step=period_step, absorbed_levels=absorbed_levels.value,
+                     effects_tolerance=effects_tolerance, effects_iterations=effects_iterations,
+                     write_effects=write_effects, write_residuals=write_residuals)
     for w in caught:  # each note once, on stderr (the table below leaves them out)
         if issubclass(w.category, BigpanelWarning):
             typer.echo(f"note: {w.message}", err=True)
     typer.echo(result.to_json() if as_json else result.table(notes=False))
+
+
+@app.command("run")
+def run_command(
+    spec: Annotated[str, typer.Argument(help="The TOML spec file: sources, defaults and one table per model.",
+                                        show_default=False)],
+    out: Annotated[Optional[str], typer.Option("--out", help="The run folder: models/NAME.json, comparison tables, "
+                                               "manifest.json (made if missing).")] = None,
+    dry_run: Annotated[bool, typer.Option("--dry-run", help="Check the spec and print the plan (models, scans, SQL) "
+                                          "without reading rows or writing anything.")] = False,
+    resume: Annotated[bool, typer.Option("--resume", help="Skip models whose spec entry, inputs and tool version are "
+                                         "unchanged since they were done in this folder.")] = False,
+    models: Annotated[Optional[str], typer.Option("--models", help="Run these models only, comma-separated.")] = None,
+    fingerprint: Annotated[bool, typer.Option("--fingerprint", help="Record each input file's SHA-256 in the manifest "
+                                              "(reads every byte once).")] = False,
+    log_json: Annotated[bool, typer.Option("--log-json", help="Write the log to stderr as JSON lines.")] = False,
+    threads: ThreadsOpt = None,
+    memory_limit: MemoryLimitOpt = None,
+    temp_directory: TempDirectoryOpt = None,
+) -> None:
+    """Run every model of a spec file into a folder: shared scans, one JSON per model, comparison
+    tables and a manifest. Exits 0 when every model is done, 1 when some failed (the others are
+    written), 2 for a bad spec or a folder in use."""
+    from .batch import events, run_spec
+
+    if out is None and not dry_run:
+        raise InputError("Option --out is missing. Give the run folder, e.g. --out results/, or use --dry-run.")
+    handler = events.log_handler(json_lines=log_json)
+    try:
+        result = run_spec(spec, out, models=models, resume=resume, dry_run=dry_run, fingerprint=fingerprint,
+                          threads=threads, memory_limit=memory_limit, temp_directory=temp_directory,
+                          progress=not log_json, command=["bigpanel", *sys.argv[1:]])
+    finally:
+        events.remove_handler(handler)
+    if dry_run:
+        typer.echo(result.text())
+        return
+    raise typer.Exit(result.exit_code)
+
+
+@app.command("compare")
+def compare_command(
+    results: Annotated[list[str], typer.Argument(help="JSON files written by 'bigpanel fit --json' (one model each).",
+                                                 show_default=False)],
+    out: Annotated[Optional[str], typer.Option("--out", help="Folder for comparison.md, .tex, .html and .csv "
+                                                             "(default: print the Markdown table).")] = None,
+) -> None:
+    """Put fitted models side by side: terms as rows, models as columns (named after their files)."""
+    from .compare import compare_results
+
+    files = compare_results(results, out=out)
+    if out is None:
+        typer.echo(files["comparison.md"], nl=False)
 
 
 # ---------------------------------------------------------------- entry point

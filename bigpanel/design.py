@@ -68,7 +68,7 @@ _BASE_TEN_LOG = re.compile(r"(?<![\w.])log\s*\(", re.IGNORECASE)
 def check_keys(engine, spec: FitSpec) -> None:
     """Unit, period and cluster columns exist; the filter is a predicate; lags and
     differences have whole-number periods."""
-    engine.require_columns([spec.unit, spec.period, *spec.cluster])
+    engine.require_columns([spec.unit, spec.period, *spec.cluster, *(c for cols in spec.effect_columns for c in cols)])
     engine.check_filter()
     if spec.needs_order:
         from .panel import _period_kind
@@ -114,7 +114,8 @@ def distinct_levels(executor, quoted: str) -> list[str]:
     """The levels of a column (one pass over it, once per executor)."""
     values = executor.distinct(quoted, MAX_LEVELS + 1)
     if len(values) > MAX_LEVELS:
-        raise InputError(f"Column '{quoted.strip(chr(34))}' has more than {MAX_LEVELS} levels. Use it as a fixed effect or group it first.")
+        raise InputError(f"Column '{quoted.strip(chr(34))}' has more than {MAX_LEVELS} levels. Give it as a fixed effect "
+                         "(--effects UNIT,COLUMN takes any number of levels) or group it first.")
     return values
 
 

@@ -77,14 +77,29 @@ class EngineAdapter(Protocol):
     def row_count(self) -> int | None:
         """Rows after the filter when known without a scan (storage metadata), else None."""
 
+    def stream(self, sql: str, params: dict | None = None):
+        """Optional: the rows of one query as Arrow record batches, in one fixed order
+        whatever the thread count (many effects: the rows copied to the scratch folder)."""
+
+    def scratch_folder(self) -> str:
+        """Optional: a new private folder for the run's scratch files, removed with the session."""
+
+    def reader(self, sql: str, params: dict, batch_rows: int):
+        """Optional: a query's rows as a pyarrow RecordBatchReader (the write-back's rows)."""
+
     def fold_chunks(self, chunks: Sequence[moments.Chunk], make_sql: Callable, params: dict, fold: Callable) -> list:
         """Optional: stream each chunk's rows as Arrow batches into ``fold(batches)`` (one
         thread per chunk, the rows in storage order); results in chunk order."""
 
 
 def open_session(source):
-    """An open session on a source: :class:`~bigpanel.source.Session` (DuckDB), or
-    :class:`~bigpanel.pg.PostgresSession` for a ``postgres`` source (same methods)."""
+    """An open session on a source: :class:`~bigpanel.source.Session` (DuckDB),
+    :class:`~bigpanel.pg.PostgresSession` for a ``postgres`` source (same methods), or for
+    the spark engine its adapter itself (:class:`~bigpanel.spark.SparkEngine`)."""
+    if source.engine.name == "spark":
+        from .spark import SparkEngine
+
+        return SparkEngine(source)
     if source.kind == "postgres":
         from .pg import PostgresSession
 
@@ -97,22 +112,19 @@ def open_engine(source) -> Iterator["EngineAdapter"]:
     """The engine adapter for a source, open for the block: DuckDB, PostgreSQL for a
     ``postgres`` source (:mod:`bigpanel.pg`), or Spark SQL when the source's engine
     settings name it (:mod:`bigpanel.spark`)."""
-    if source.engine.name == "spark":
-        from .spark import SparkEngine
-
-        spark = SparkEngine(source)
-        try:
-            yield spark
-        finally:
-            spark.close()
-        return
     with open_session(source) as session:
-        if source.kind == "postgres":
-            from .pg import PostgresEngine
+        yield adapter(session)
 
-            yield PostgresEngine(session)
-        else:
-            yield DuckDBEngine(session)
+
+def adapter(session) -> "EngineAdapter":
+    """The engine adapter on an open session (:func:`open_session`)."""
+    if session.source.engine.name == "spark":  # Spark's session is its adapter
+        return session
+    if session.source.kind == "postgres":
+        from .pg import PostgresEngine
+
+        return PostgresEngine(session)
+    return DuckDBEngine(session)
 
 
 class DuckDBEngine:
@@ -187,8 +199,37 @@ class DuckDBEngine:
 
         return moments.in_parallel(one, chunks, threads)
 
+    def reader(self, sql: str, params: dict, batch_rows: int):
+        """A query's rows as a pyarrow RecordBatchReader on all threads (one SELECT on the
+        locked main connection; the write-back streams them into its writer instance)."""
+        check_select(sql)
+        try:
+            return self.session.con.sql(sql, params=params).to_arrow_reader(batch_rows)
+        except duckdb.Error as exc:
+            raise self.session._explain(exc) from None
+
+    def explain(self, exc: BaseException) -> BaseException:
+        """The error to raise for a DuckDB error met while streaming rows out."""
+        return self.session._explain(exc) if isinstance(exc, duckdb.Error) else exc
+
     def row_count(self) -> int | None:
         if self.source.kind == "parquet" and not self.source.where:
             return sum(pq.read_metadata(f).num_rows for f in self.source.files)
         return None
 
+    def stream(self, sql: str, params: dict | None = None):
+        session = self.session
+        check_select(sql)
+        cur = session.cursor(threads=1)  # one thread: the rows come in the same order on every run
+        try:
+            reader = cur.sql(sql, params=params) if params else cur.sql(sql)
+            yield from reader.to_arrow_reader(STREAM_BATCH_ROWS)
+        except duckdb.Error as exc:
+            raise session._explain(exc) from None
+        finally:
+            cur.close()
+
+    def scratch_folder(self) -> str:
+        import tempfile
+
+        return tempfile.mkdtemp(prefix="effects-", dir=self.session.spill_folder)

@@ -56,8 +56,10 @@ class Executor:
         self._duplicates: list[dict] | None = None
         self._nested: dict = {}
         self._meats: dict = {}
+        self.absorptions: dict = {}  # many effects: Rows -> sweeps.Absorption (scratch copy, solved effects)
         self.collecting: list | None = None  # score requests seen while planning (fit_many)
         self.fold_path = "sql"  # where the last unit fold was summed: "sql" or "numpy"
+        self.estimates: dict | None = None  # the last solved model's estimates in user units (inference.finish)
         self._grid: tuple | None = None  # (kind, panel grid) of the periods after the filter
         self.given_step = keys.step  # None: the step is the panel's detected one
         self.slot_values: dict | None = None  # slot -> period value, when periods are slots
@@ -164,15 +166,27 @@ class Executor:
         chunk = chunk or moments.Chunk()
         source = self.engine.filtered(chunk, k.unit, PROBE_ROWS if head else None)
         sql = sqlbuild.design_rows_sql(source, k.unit, k.period, list(rows.clusters), list(rows.columns), k.step,
-                                       k.period_sql, self.dialect)
+                                       k.period_sql, rows.effects, self.dialect)
         if rows.differenced:
             sql = sqlbuild.differenced_rows_sql(sql, len(rows.clusters), rows.q, streaming and chunk.files is not None and not head)
         return sql
 
     def used_sql(self, rows: Rows, chunk=None, head: bool = False, streaming: bool = False) -> str:
-        valid = sqlbuild.valid_predicate(rows.q, rows.differenced, self.keys.step)
-        used = sqlbuild.used_rows_sql(self.rows_sql(rows, chunk, head, streaming), valid)
+        used = sqlbuild.used_rows_sql(self.rows_sql(rows, chunk, head, streaming), self.valid_sql(rows))
         return sqlbuild.demeaned_rows_sql(used, rows.q, len(rows.clusters)) if rows.demeaned else used
+
+    def valid_sql(self, rows: Rows) -> str:
+        """The predicate of the used rows: a unit, finite design columns (differences: the
+        unit's previous period) and, with absorbed effects, a level of every effect."""
+        valid = sqlbuild.valid_predicate(rows.q, rows.differenced, self.keys.step)
+        if rows.effects:
+            valid += " AND " + sqlbuild.keys_present(self.effect_keys(rows))
+        return valid
+
+    @staticmethod
+    def effect_keys(rows: Rows) -> list[str]:
+        """The key columns of the rows' absorbed effects (many effects)."""
+        return [k for e, cols in enumerate(rows.effects) for k in sqlbuild.effect_keys(e, len(cols))]
 
     # ------------------------------------------------------------------ probes
     def shifts(self, columns: Sequence[tuple[str, int]]) -> tuple[np.ndarray, np.ndarray]:
@@ -181,7 +195,7 @@ class Executor:
         q = len(columns)
         k = self.keys
         head = self.engine.filtered(head=PROBE_ROWS)
-        rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step, k.period_sql, self.dialect)
+        rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step, k.period_sql, dialect=self.dialect)
         zero = {f"s{j}": 0.0 for j in range(q)} | {f"d{j}": 1.0 for j in range(q)}
         row = self.run_once(sqlbuild.probe_sql(rows, q, self.dialect), zero, scan=False)[0]
         scales = np.array([power_of_two_scale(row[f"m{j}"]) for j in range(q)])
@@ -221,7 +235,8 @@ class Executor:
         """Rows by reason, over all rows (differences formed after sorting)."""
         key = (rows.columns, rows.differenced)
         if key not in self._counted:
-            sql = sqlbuild.row_counts_sql(self.rows_sql(rows), rows.q, rows.differenced, self.keys.step, self.dialect)
+            sql = sqlbuild.row_counts_sql(self.rows_sql(rows), rows.q, rows.differenced, self.keys.step, self.dialect,
+                                          required=self.effect_keys(rows))
             self._counted[key] = self.run_once(sql, params)[0]
         return self._counted[key]
 
@@ -288,6 +303,11 @@ class Executor:
         def used(chunk):
             return self.used_sql(rows, chunk, request.head, streaming)
 
+        if request.fold == "sweeps":  # many effects: sweeps over a private scratch copy (sweeps.py)
+            from . import sweeps
+
+            self.scans += 1
+            return [[sweeps.cross_products(self, request, params)]]
         if request.fold == "rows":
             make = lambda c: sqlbuild.pooled_moments_sql(used(c), q, total)  # noqa: E731
         elif request.fold == "period":
@@ -392,27 +412,20 @@ class Executor:
     def shared_moments(self, scan, params: dict) -> dict:
         """One scan: the cross-products of every sample of a shared scan (plan.SharedScan),
         chunk by chunk (unit ranges: every total adds up across chunks, bounds take min/max)."""
-        rows = scan.rows
-
-        total = moments.sum_function(self.chunks(), self.dialect)  # plain sums on one-thread chunks
+        from .plan import pattern_totals
 
         def make(chunk):
-            return sqlbuild.shared_moments_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
-                                               self.keys.step, scan.nesting_checks(), total)
+            return self.shared_moments_sql(scan, chunk)
 
-        parts = [t[0] for t in self.run_chunked(make, params)]
-        out = {}
-        for key in parts[0]:
-            values = [p[key] for p in parts if p[key] is not None]
-            if not values:
-                out[key] = None
-            elif key.startswith(("lo", "tlo", "wtlo")):
-                out[key] = min(values)
-            elif key.startswith(("hi", "thi", "wthi")):
-                out[key] = max(values)
-            else:
-                out[key] = sum(values)
-        return out
+        return pattern_totals(scan, self.run_chunked(make, params))
+
+    def shared_moments_sql(self, scan, chunk=None) -> str:
+        """The SQL of a shared scan's first pass on one chunk (every chunk runs the same
+        text; the unit range is a parameter). Builds text only: a dry run shows it."""
+        rows = scan.rows
+        total = moments.sum_function(self.chunks(), self.dialect)  # plain sums on one-thread chunks
+        return sqlbuild.shared_moments_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
+                                           self.keys.step, scan.nesting_checks(), total)
 
     def shared_meats(self, scan, requests: list, params: dict) -> None:
         """One scan: the meats of every recorded score request (index, Scores, k,
@@ -458,6 +471,10 @@ class Executor:
         """Meats over the k score columns, with the number of clusters of each."""
         if request in self._meats:
             return self._meats[request]
+        if request.rows.effects and self.collecting is None:  # many effects: over the scratch copy (sweeps.py)
+            from . import sweeps
+
+            return sweeps.meats(self, request, k, n_clusters)
         if self.collecting is not None:  # planning a shared score scan: record, answer a stand-in
             self.collecting.append((request, k, n_clusters))
             parts = 1 if n_clusters < 2 else 3

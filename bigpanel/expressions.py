@@ -12,6 +12,9 @@ Two forms of our own are recognised on the tree, as whole terms only:
 - ``lag(EXPR)`` / ``lag(EXPR, K)``: EXPR in the same unit K periods earlier;
 - ``lead(EXPR)`` / ``lead(EXPR, K)``: EXPR in the same unit K periods later (a lag of -K);
 - ``levels(COLUMN)`` / ``levels(COLUMN, 'BASE')``: indicators for a categorical column.
+
+An absorbed effect (``effects``) is a column, or ``cell(COLUMN, COLUMN[, ...])``: one effect
+per combination of the columns' levels (:func:`parse_effect`).
 """
 
 from __future__ import annotations
@@ -306,3 +309,31 @@ def _has_class(node: Any, cls: str) -> bool:
         elif isinstance(item, list):
             stack.extend(item)
     return False
+
+
+def parse_effect(text: str) -> tuple[str, ...]:
+    """The source columns of one absorbed effect: ``cell(A, B[, ...])`` (recognised on the
+    parse tree, like ``levels()``) gives (A, B, ...), one level per combination of their
+    values; any other text is one column's name, as written (the design checks it exists)."""
+    text = str(text).strip()
+    if "(" not in text:
+        return (text,)
+    tree = parse_tree("SELECT " + text)
+    statements = tree.get("statements", []) if not tree.get("error") else []
+    items = statements[0]["node"].get("select_list", []) if len(statements) == 1 else []
+    node = items[0] if len(items) == 1 else {}
+    name = str(node.get("function_name", "")).lower() if node.get("class") == "FUNCTION" else ""
+    if name != "cell":
+        if node.get("class") == "COLUMN_REF" or not node:
+            return (text,)
+        raise InputError(f"Effect {shown(text)} is not understood: name a column, or write cell(COLUMN, COLUMN) for one "
+                         "effect per combination of levels.")
+    args = _arguments(node)
+    if node.get("schema") or node.get("filter") or node.get("distinct") or len(args) < 2 or any(
+            a.get("class") != "COLUMN_REF" or len(a.get("column_names", [])) != 1 for a in args):
+        raise InputError(f"Effect {shown(text)} is not understood: cell() takes two or more column names, like "
+                         "cell(firm, year).")
+    columns = tuple(str(a["column_names"][0]) for a in args)
+    if len(set(columns)) != len(columns):
+        raise InputError(f"Effect {shown(text)} names a column twice. Give each column once: cell(firm, year).")
+    return columns

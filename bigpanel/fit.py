@@ -20,7 +20,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from . import estimators
+from . import estimators, writeback
 from .design import Design, build_design
 from .engine import open_engine
 from .errors import BigpanelWarning, EstimationError, InputError
@@ -54,6 +54,10 @@ def fit(
     engine: Engine | str | None = None,
     csv_nulls=None,
     absorbed_levels: str | None = None,
+    effects_tolerance: float | None = None,
+    effects_iterations: int | None = None,
+    write_effects=None,
+    write_residuals=None,
     spark_master: str | None = None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
@@ -74,8 +78,11 @@ def fit(
         Unit and period columns. First differences and lags need whole-number periods.
     estimator : {"pooled", "within", "first-difference"}
     effects : str or list of str, optional
-        Fixed effects: within defaults to the unit and may add the period; for first
-        differences, the period adds period intercepts to the differenced equation.
+        Fixed effects: within defaults to the unit and may add the period (an exact path)
+        and any number of other columns, or ``cell(A, B)`` for one effect per combination
+        of levels (absorbed by iteration; the result's ``absorption`` reports the path,
+        sweeps, tolerance reached, singletons and redundancies). For first differences,
+        the period adds period intercepts to the differenced equation.
     variance : {"homoskedastic", "hc1", "cluster"}, optional
         Default: cluster for within and first differences, homoskedastic for pooled.
     cluster : str or list of str, optional
@@ -92,6 +99,12 @@ def fit(
         How absorbed effect levels count in K' of the cluster small-sample factor, one K'
         for every component of a two-way variance: "not-nested" (default) leaves out the
         effects nested in a cluster dimension; "all" counts every level (dummy variables).
+    effects_tolerance : float, optional
+        Many effects: stop when the largest remaining level mean of a transformed column,
+        count-weighted over every effect and relative to the column's norm, is below this
+        (default 1e-10). A fit that does not reach it warns and says so in the result.
+    effects_iterations : int, optional
+        Many effects: most iterations, each one pass over the scratch copy (default 1000).
     table, query, csv_types, engine
         As in :func:`bigpanel.open_source`; ``engine`` is also an engine's name:
         ``"spark"`` runs the plan as Spark SQL (Parquet sources).
@@ -100,10 +113,19 @@ def fit(
         ``spark.master`` in spark-defaults.conf, else local mode).
     csv_nulls : str or list of str, optional
         Extra CSV tokens read as missing (``"NA,."``); empty fields always are.
+    write_effects : str or path, optional
+        Folder (made if missing, outside the source's folders) to write one Parquet file
+        per effect into, ``effect_<column>.parquet`` (level, effect, rows; within fits;
+        normalisation in :mod:`bigpanel.writeback`). The result's ``written`` names them.
+    write_residuals : str or path, optional
+        Folder to write ``residuals.parquet`` into: each used row's unit, period, fitted
+        value and residual (within and first-difference fits).
     """
     spec = FitSpec.build(outcome, regressors, unit, period, estimator, effects, variance, cluster, intercept, period_step,
-                         absorbed_levels)
+                         absorbed_levels, effects_tolerance, effects_iterations, write_effects=write_effects,
+                         write_residuals=write_residuals)
     src = as_source(source, where, table, query, csv_types, as_engine(engine, spark_master), csv_nulls)
+    spec = writeback.checked(spec, src)
     notes = Notes([])
     try:
         with open_engine(src) as adapter:
@@ -118,6 +140,13 @@ class FitList(list):
     full passes over the source's rows."""
 
     scans: int = 0
+
+    def compare(self, names=None, out=None) -> dict[str, str]:
+        """The models side by side (:func:`bigpanel.compare_results`): Markdown, LaTeX,
+        HTML and CSV texts by file name, also written to the folder ``out`` when given."""
+        from .compare import compare_results
+
+        return compare_results(list(self), names=names, out=out)
 
 
 def fit_many(
@@ -154,6 +183,7 @@ def fit_many(
     """
     specs = [_model_spec(m, i, unit, period, period_step) for i, m in enumerate(models)]
     src = as_source(source, where, table, query, csv_types, as_engine(engine, spark_master), csv_nulls)
+    specs = [writeback.checked(spec, src) for spec in specs]
     notes = [Notes([]) for _ in specs]
     try:
         with open_engine(src) as adapter:
@@ -214,7 +244,8 @@ def _run_shared(executor: Executor, scan, notes: list, results: list) -> list[in
     executor.shared_meats(scan, requests, params)
     for m, eq in ready:
         own, own_params = member_params(m, shifts, scales)
-        results[m.index] = finish(m.est, executor, m.design, m.rows, own, own_params, eq, SHARED, notes[m.index])
+        results[m.index] = written(executor, m.est, m.design,
+                                   finish(m.est, executor, m.design, m.rows, own, own_params, eq, SHARED, notes[m.index]))
     return alone
 
 
@@ -264,12 +295,21 @@ def estimate(executor: Executor, spec: FitSpec, notes: Notes) -> FitResult:
     eq = executor.moments(request, params, lambda chunks: est.equations(design, request, chunks, executor))
     if eq.n_obs == 0:
         raise EstimationError(executor.empty_message(spec.needs_order))
-    accumulation = "one pass, shifted per-unit sums" + (" folded in numpy" if executor.fold_path == "numpy" else "")
+    accumulation = est.accumulation(eq) or (
+        "one pass, shifted per-unit sums" + (" folded in numpy" if executor.fold_path == "numpy" else ""))
     if est.demeaned_retry and eq.cancellation() > CANCELLATION_LIMIT:
         request = replace(request, rows=replace(request.rows, demeaned=True))
         eq = executor.moments(request, params, lambda chunks: est.equations(design, request, chunks, executor))
         accumulation = "two passes, unit means subtracted in SQL"
-    return finish(est, executor, design, rows, shifts, params, eq, accumulation, notes)
+    return written(executor, est, design, finish(est, executor, design, rows, shifts, params, eq, accumulation, notes))
+
+
+def written(executor: Executor, est: estimators.Estimator, design: Design, result: FitResult) -> FitResult:
+    """The result, after writing the effects and residuals its specification asks for."""
+    spec = est.spec
+    if not (spec.write_effects or spec.write_residuals):
+        return result
+    return replace(result, written=writeback.write(executor, est, design, spec, executor.estimates))
 
 
 def pilot(est: estimators.Estimator, executor: Executor, design: Design, params: dict) -> np.ndarray | None:
@@ -279,7 +319,7 @@ def pilot(est: estimators.Estimator, executor: Executor, design: Design, params:
     if not (spec.variance == "cluster" and spec.cluster == (spec.unit,) and est.expands):
         return None
     k = design.q - 1 + (1 if est.constant else 0)
-    if k > MAX_EXPANDED:
+    if k > getattr(executor.engine, "max_expanded", MAX_EXPANDED):  # an engine may prefer a second pass
         return None
     probe = replace(est.first_pass(design), head=True)
     eq = est.equations(design, probe, executor.cross_products(probe, params), executor)

@@ -92,8 +92,12 @@ def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equa
     if spec.variance == "hc1":
         meats, _ = executor.meats(request("rows"), params, k, 0)
         return _embed(variance.hc1(inverse, meats[0], n_obs, n_kept, absorbed), dim)
-    kp = k_prime(spec, lambda i: executor.nested(Nesting(rows, i), params), n_kept - period_levels, absorbed,
-                 period_levels)
+    counted = est.levels_in_k_prime(executor, rows, eq)  # many effects: the estimator counts its own
+    if counted is not None:
+        kp = n_kept - period_levels + counted
+    else:
+        kp = k_prime(spec, lambda i: executor.nested(Nesting(rows, i), params), n_kept - period_levels, absorbed,
+                     period_levels)
     if spec.cluster == (spec.unit,) and eq.expansion is not None:
         meat, worst = np.zeros((k, k)), 0.0
         for row in eq.expansion:
@@ -104,7 +108,7 @@ def choose_variance(est: Estimator, executor, rows: Rows, params: dict, eq: Equa
         notes.add(None, "the one-pass cluster meat cancelled too many digits; scores were recomputed in a second pass")
     if len(spec.cluster) == 1:
         by_unit = spec.cluster[0] == spec.unit
-        kind = "units" if by_unit else ("nested" if executor.nested(Nesting(rows), params) else "groups")
+        kind = "units" if by_unit else ("groups" if rows.effects or not executor.nested(Nesting(rows), params) else "nested")
         meats, counts = executor.meats(request(kind), params, k, 1)
         return _embed(variance.cluster(inverse, meats[0], counts[0], n_obs, kp), dim)
     meats, counts = executor.meats(request("groups"), params, k, 2)
@@ -251,6 +255,12 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
     n_periods = executor.n_periods()  # distinct periods, not the span
     for msg in executor.notes:
         notes.add(None, msg)
+    # every column's estimate in the user's units (effects included, 0 when left out), for
+    # the write-back of effects and residuals (bigpanel.writeback)
+    executor.estimates = {"estimate": np.where(sol.kept, estimate, 0.0), "is_effect": is_effect[:k], "labels": labels[:k],
+                          "kept": sol.kept, "effect_values": eq.effect_values, "effect_rows": eq.effect_rows,
+                          "shifts": np.asarray(shifts, dtype=float), "scales": np.array([params[f"d{j}"] for j in range(q)]),
+                          "absorption": eq.absorption}
     return FitResult(
         estimator=spec.estimator, outcome=spec.outcome, coefficients=tuple(coefs), n_obs=n_obs, n_units=eq.n_units,
         n_periods=n_periods, period_first=t_min, period_last=t_max, period_step=executor.step_text, effects=spec.effects,
@@ -261,5 +271,7 @@ def finish(est: Estimator, executor, design, rows: Rows, shifts: np.ndarray, par
         r_squared=float(r2), r_squared_kind=est.r2_kind, f_stat=f_stat, f_df=(float(len(slopes)), float(var.df)),
         f_p_value=f_p, f_unavailable=f_missing, rows_dropped=dropped, terms_dropped=terms_dropped, singletons_dropped=eq.singletons,
         absorbed=absorbed, condition_number=sol.condition, accumulation=accumulation, source=executor.label,
-        where=executor.engine.where, warnings=notes.texts, run=run_record(executor.engine.thread_count(), executor.engine.dialect.name),
+        absorption=est.absorption(eq),
+        where=executor.engine.where, warnings=notes.texts,
+        run=run_record(executor.engine.thread_count()) | getattr(executor.engine, "run_facts", dict)(),
     )

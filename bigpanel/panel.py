@@ -487,7 +487,8 @@ def _scan_units(session: Session, chunks: list[moments.Chunk], unit: str, period
         params["last_slot"] = grid.n_slots - 1
     tables = moments.run_chunks(
         session, chunks,
-        lambda c: sqlbuild.checkup_unit_scan_sql(c.source_sql(session.source, unit), unit, period_value, checked, list(shifts), grid.mode, bitmap),
+        lambda c: sqlbuild.checkup_unit_scan_sql(c.source_sql(session.source, unit), unit, period_value, checked, list(shifts), grid.mode, bitmap,
+                                                 getattr(session, "dialect", sqlbuild.DUCKDB)),
         params,
     )
     rows = [t.to_pylist()[0] for t in tables]
@@ -497,7 +498,7 @@ def _scan_units(session: Session, chunks: list[moments.Chunk], unit: str, period
         if name == "periods_per_unit":
             histogram: dict[int, int] = {}
             for pairs in values:
-                for n_periods, n_units in dict(pairs).items():
+                for n_periods, n_units in histogram_pairs(pairs):
                     histogram[n_periods] = histogram.get(n_periods, 0) + n_units
             out[name] = histogram
         elif name.startswith("within_ss_"):
@@ -505,6 +506,14 @@ def _scan_units(session: Session, chunks: list[moments.Chunk], unit: str, period
         else:
             out[name] = sum(values)
     return out
+
+
+def histogram_pairs(value) -> list[tuple[int, int]]:
+    """(value, count) pairs of a histogram: a map (DuckDB) or a flat [value, count, ...] list
+    (PostgreSQL flattens an array of pairs)."""
+    if value and not isinstance(value, dict) and not isinstance(value[0], (tuple, list, dict)):
+        return list(zip(value[::2], value[1::2]))
+    return list(dict(value).items())
 
 
 def _quartiles(histogram) -> tuple[int, ...]:

@@ -148,6 +148,8 @@ class PostgresSession:
     """An open, read-only connection to PostgreSQL on a ``postgres`` source, with the
     methods of :class:`bigpanel.source.Session` the pipeline and the checkup use."""
 
+    dialect = sqlbuild.POSTGRES
+
     def __init__(self, source):
         self.source = source
         self._lock = threading.Lock()
@@ -183,12 +185,15 @@ class PostgresSession:
             try:
                 render.statement(tree["statements"][0]["node"], render.POSTGRES, "query")
             except render.Unsupported as exc:
-                raise InputError(f"Option 'query' {shown(src.query)} uses {exc.function}, which PostgreSQL does not have"
-                                 f"{self._reason(exc)}. Rewrite it with functions both engines share.") from None
+                raise InputError(f"Option 'query' {shown(src.query)} uses {exc.function}{self._reason(exc)}. "
+                                 "Rewrite it with functions both engines share.") from None
 
     @staticmethod
     def _reason(exc: render.Unsupported) -> str:
-        return f" ({exc.reason})" if exc.reason else ""
+        """The end of a refusal: for a function, that PostgreSQL lacks it; for a construct,
+        that bigpanel does not write it for PostgreSQL; and why, when known."""
+        lacks = "which PostgreSQL does not have" if exc.function.endswith("()") else "which bigpanel does not run on PostgreSQL"
+        return f", {lacks}" + (f" ({exc.reason})" if exc.reason else "")
 
     def check_expression(self, sql: str, what: str, text: str | None = None) -> None:
         """Refuse a checked expression (DuckDB's SQL) that PostgreSQL cannot run with the
@@ -198,9 +203,8 @@ class PostgresSession:
         try:
             render.expression(node, render.POSTGRES, self._booleans())
         except render.Unsupported as exc:
-            raise InputError(f"{what} {shown(text or sql)} uses {exc.function}, which PostgreSQL does not have"
-                             f"{self._reason(exc)}. Rewrite it with functions both engines share "
-                             "(README: Data beyond one machine).") from None
+            raise InputError(f"{what} {shown(text or sql)} uses {exc.function}{self._reason(exc)}. Rewrite it with "
+                             "functions both engines share (README: Data beyond one machine).") from None
 
     def _booleans(self) -> frozenset[str]:
         cols = self._columns or {}
@@ -224,8 +228,8 @@ class PostgresSession:
         try:
             rendered = render.translate(sql, render.POSTGRES, params, "internal", self._booleans())
         except render.Unsupported as exc:
-            raise BigpanelError(f"This model needs {exc.function}, which bigpanel cannot run on PostgreSQL yet"
-                                f"{self._reason(exc)}. Export the panel to Parquet and fit it there.") from None
+            raise BigpanelError(f"This model needs {exc.function}{self._reason(exc)} yet. "
+                                "Export the panel to Parquet and fit it there.") from None
         interrupts.raise_if_received()
         with self._lock:
             cur = self.con.cursor()
@@ -312,9 +316,28 @@ class PostgresEngine(DuckDBEngine):
 
     dialect = sqlbuild.POSTGRES
     twoway_pass = False  # unit + period effects go through period indicators (no bitstring_agg)
+    # The unit-cluster meat by expansion sums ~k^4/4 products per unit: cheap in DuckDB, but
+    # PostgreSQL evaluates them one by one (at k = 5, 5x the rest of the pass): a second
+    # pass over the rows (unit_scores.sql) is faster there. Only k = 1 is expanded.
+    max_expanded = 1
+
+    def refuse_model(self, spec) -> None:
+        """Refuse, before any row is read, what bigpanel does not run on PostgreSQL yet."""
+        if spec.many_effects:
+            raise InputError(f"Effects beyond the unit and the period ({', '.join(spec.effects)}) are absorbed by "
+                             "iteration over a private copy of the rows, which bigpanel does not make in a PostgreSQL "
+                             "warehouse yet. Fit a Parquet export of the panel, or keep to unit and period effects.")
 
     def row_count(self) -> int | None:
         return None
+
+    def thread_count(self) -> int:
+        return 1  # one query at a time, without parallel workers
+
+    def run_facts(self) -> dict:
+        """For the result's ``run`` entry: the engine, and the queries and Arrow bytes
+        received from it so far in this session (aggregates only: kilobytes)."""
+        return {"engine": "postgresql", "queries": self.session.queries, "fetched_bytes": self.session.bytes_fetched}
 
     def plan_chunks(self, unit: str):
         from .moments import Chunk

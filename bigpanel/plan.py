@@ -11,6 +11,7 @@ rows on which its own columns are finite. Other models (period effects) run alon
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -120,6 +121,68 @@ def prefill(executor, scan: SharedScan, totals: dict) -> None:
             for i, name in enumerate(spec.cluster if m.sample == s else ()):
                 if scan.clusters.index(name) == c:
                     executor.set_nested(Nesting(m.rows, i), int(totals[f"mixed{s}_{c}"] or 0) == 0)
+
+
+def pattern_totals(scan: SharedScan, tables: list[list[dict]]) -> dict:
+    """The shared scan's totals per sample (the keys the estimators read: ``n{s}``,
+    ``tot_s{s}_{j}``, ``tot_p{s}_{j}_{l}``, ``tot_w{s}_{j}_{l}``, ...) from the rows of
+    ``shared_moments.sql``, one table per chunk. A row adds to sample s when its pattern
+    covers s (part 0 and the row counts of part 2) or it is s's own (part 1). Sums of
+    doubles are added with ``math.fsum`` (exactly rounded: the order of rows cannot
+    change them)."""
+    from .sqlbuild import PATTERN_BITS, sample_pairs
+
+    rows = [r for table in tables for r in table]
+    n_samples = len(scan.samples)
+    clusters = sorted({c for _, c in scan.nesting_checks()})
+    pairs = sample_pairs(scan.samples)
+
+    def covers(r: dict, s: int) -> bool:
+        if r["part"] == 1:
+            return r["sid"] == s
+        return r["why"] == 0 and (r[f"pat{s // PATTERN_BITS}"] >> (s % PATTERN_BITS)) & 1 == 1
+
+    def lowest(values):
+        values = [v for v in values if v is not None]
+        return min(values) if values else None
+
+    def highest(values):
+        values = [v for v in values if v is not None]
+        return max(values) if values else None
+
+    def total(group, key):
+        values = [r[key] for r in group if r[key] is not None]
+        return math.fsum(values) if values else None
+
+    counted = [r for r in rows if r["part"] == 2]
+    out = {"n_rows": sum(int(r["t_n"]) for r in counted), "lo": lowest(r["t_lo"] for r in counted),
+           "hi": highest(r["t_hi"] for r in counted)}
+    if scan.differenced:
+        for why, key in ((1, "first_of_unit"), (2, "after_gap"), (3, "duplicate_keys")):
+            out[key] = sum(int(r["t_n"]) for r in counted if r["why"] == why)
+    summed = [r for r in rows if r["part"] in (0, 1)]
+    for s, cols in enumerate(scan.samples):
+        mine = [r for r in summed if covers(r, s)]
+        wide = [r for r in mine if r["w"]]
+        narrow = [r for r in mine if not r["w"]]
+        out[f"miss{s}"] = sum(int(r["t_n"]) for r in counted if r["why"] == 0 and not covers(r, s))
+        out[f"n{s}"] = sum(int(r["t_n"]) for r in mine)
+        out[f"units{s}"] = sum(int(r["t_units"]) for r in mine)
+        out[f"wunits{s}"] = sum(int(r["t_groups"]) for r in wide)
+        out[f"single{s}"] = sum(int(r["t_groups"]) for r in narrow)
+        out[f"wn{s}"] = sum(int(r["t_n"]) for r in wide)
+        out[f"single_rows{s}"] = sum(int(r["t_n"]) for r in narrow)
+        out[f"tlo{s}"], out[f"thi{s}"] = lowest(r["t_lo"] for r in mine), highest(r["t_hi"] for r in mine)
+        out[f"wtlo{s}"], out[f"wthi{s}"] = lowest(r["t_lo"] for r in wide), highest(r["t_hi"] for r in wide)
+        for j in cols:
+            out[f"tot_s{s}_{j}"] = total(mine, f"t_s{j}")
+        for j, l in pairs:
+            if j in cols and l in cols:
+                out[f"tot_p{s}_{j}_{l}"] = total(mine, f"t_p{j}_{l}")
+                out[f"tot_w{s}_{j}_{l}"] = total(wide, f"t_w{j}_{l}")
+        for c in clusters:
+            out[f"mixed{s}_{c}"] = sum(int(r[f"t_mixed{c}"] or 0) for r in mine)
+    return out
 
 
 def score_models(scan: SharedScan, requests: list[tuple[int, Scores, int, int]]) -> tuple[list[dict], list, dict]:

@@ -226,6 +226,8 @@ class Renderer:
             return f"coalesce({', '.join(self.expr(k) for k in kids)})"
         if kind == "GROUPING_FUNCTION" and self.mode == "internal":
             return f"GROUPING({', '.join(self.expr(k) for k in kids)})"
+        if kind == "ARRAY_CONSTRUCTOR" and self.mode == "internal":
+            return f"ARRAY[{', '.join(self.expr(k) for k in kids)}]"
         self.refuse(f"the operator {str(kind).lower()}")
 
     def _case(self, node: dict) -> str:
@@ -299,8 +301,9 @@ class Renderer:
                 if not isinstance(rule, str):
                     self.refuse(f"DISTINCT inside {name}()")
                 args = ["DISTINCT " + ", ".join(args)]
-            text = rule if callable(rule) else None
-            out = text(args) if text else f"{rule}({', '.join(args)})"
+            if callable(rule) and node.get("filter"):
+                self.refuse(f"FILTER on {name}()")
+            out = rule(args) if callable(rule) else f"{rule}({', '.join(args)})"
             if node.get("filter"):
                 out += f" FILTER (WHERE {self.expr(node['filter'])})"
             return out
@@ -336,6 +339,8 @@ class Renderer:
             return f"({args[0]} {word} {args[1]}{t.like_escape})"
         if name == "||" and len(args) == 2:
             return f"({args[0]} || {args[1]})"
+        if self.mode == "internal" and name in ("&", "|", "<<", ">>") and len(args) == 2:
+            return f"({args[0]} {name} {args[1]})"
         if self.mode == "internal" and name in t.internal:
             rule = t.internal[name]
             return rule(args) if callable(rule) else f"{rule}({', '.join(args)})"
@@ -375,9 +380,20 @@ class Renderer:
         return f"{self.expr(value)} {word}" if kind.startswith("EXPR_") else word
 
     def _subquery(self, node: dict) -> str:
-        if self.mode == "expression" or node.get("subquery_type") != "SCALAR":
+        if self.mode == "expression":
             self.refuse("subqueries")
-        return f"({self.query_node(node['subquery']['node'])})"
+        kind = node.get("subquery_type")
+        body = self.query_node(node["subquery"]["node"])
+        if kind == "SCALAR":
+            return f"({body})"
+        if kind == "EXISTS":
+            return f"(EXISTS ({body}))"
+        if kind == "ANY" and node.get("comparison_type") in _COMPARISONS:
+            op = _COMPARISONS[node["comparison_type"]]
+            if op.startswith("IS"):
+                self.refuse("IS [NOT] DISTINCT FROM ANY")
+            return f"({self.expr(node['child'])} {op} ANY ({body}))"
+        self.refuse(f"{str(kind).lower()} subqueries")
 
     def order(self, item: dict) -> str:
         direction = {"ORDER_DEFAULT": "", "ASCENDING": " ASC", "DESCENDING": " DESC"}.get(item.get("type"))
@@ -396,7 +412,7 @@ class Renderer:
             body = self._set_operation(node)
         else:
             self.refuse(f"the query form {str(kind).lower()}")
-        return ctes + body + self._modifiers(node.get("modifiers") or [], kind == "SELECT_NODE")
+        return ctes + body + self._modifiers(node.get("modifiers") or [], kind == "SELECT_NODE", node)
 
     def _ctes(self, cte_map: dict) -> str:
         items = cte_map.get("map") or []
@@ -460,12 +476,26 @@ class Renderer:
         glue = f" {word}{' ALL' if node.get('setop_all') else ''} "
         return glue.join(f"({self.query_node(k)})" for k in kids)
 
-    def _modifiers(self, modifiers: list[dict], select: bool) -> str:
+    def _width(self, node: dict) -> int:
+        """Columns of a query node's result (ORDER BY ALL orders by each, left to right)."""
+        while node.get("type") == "SET_OPERATION_NODE":
+            node = (node.get("children") or [node.get("left")])[0]
+        items = node.get("select_list") or []
+        if any(i.get("class") in ("STAR", "COLUMNS") for i in items):
+            self.refuse("ORDER BY ALL over *")
+        return len(items)
+
+    def _modifiers(self, modifiers: list[dict], select: bool, node: dict) -> str:
         out = ""
         for m in modifiers:
             kind = m.get("type")
-            if kind == "ORDER_MODIFIER":
-                out += " ORDER BY " + ", ".join(self.order(o) for o in m.get("orders", []))
+            orders = m.get("orders", [])
+            if kind == "ORDER_MODIFIER" and len(orders) == 1 and (orders[0].get("expression") or {}).get("class") == "STAR" \
+                    and orders[0]["expression"].get("columns") and self.mode == "internal":
+                suffix = self.order({**orders[0], "expression": {"class": "CONSTANT", "literal": {"kind": "INTEGER", "text": "0"}}})[1:]
+                out += " ORDER BY " + ", ".join(f"{i}{suffix}" for i in range(1, self._width(node) + 1))
+            elif kind == "ORDER_MODIFIER":
+                out += " ORDER BY " + ", ".join(self.order(o) for o in orders)
             elif kind == "LIMIT_MODIFIER":
                 if m.get("limit") is not None:
                     out += " LIMIT " + self.expr(m["limit"])
@@ -498,6 +528,17 @@ class Renderer:
             rows = ", ".join("(" + ", ".join(self.expr(v) for v in row) + ")" for row in ref.get("values", []))
             text = f"(VALUES {rows})"
             alias = alias or "valueslist"
+        elif kind == "JOIN" and ref.get("join_type") in ("ANTI", "SEMI") and ref.get("ref_type") in ("REGULAR", None):
+            # a ANTI JOIN b ON c: the rows of a with no (SEMI: some) row of b meeting c, under a's name
+            left = ref["left"]
+            name = left.get("alias") or (left.get("table_name") if left.get("type") == "BASE_TABLE" else None)
+            if not name or ref.get("condition") is None or left.get("column_name_alias"):
+                self.refuse("this form of anti or semi join")
+            test = "NOT EXISTS" if ref["join_type"] == "ANTI" else "EXISTS"
+            return (f"(SELECT * FROM {self.table_ref(left)} WHERE {test} (SELECT 1 FROM {self.table_ref(ref['right'])} "
+                    f"WHERE {self.expr(ref['condition'])})) AS {self.target.quote_ident(name)}")
+        elif kind == "JOIN" and ref.get("ref_type") == "CROSS":
+            return f"{self.table_ref(ref['left'])} CROSS JOIN {self.table_ref(ref['right'])}"
         elif kind == "JOIN":
             if ref.get("ref_type") not in ("REGULAR", None) or ref.get("join_type") not in _JOINS:
                 self.refuse(f"{str(ref.get('ref_type')).lower()} {str(ref.get('join_type')).lower()} joins")
@@ -645,14 +686,38 @@ PG_FUNCTIONS: dict[str, Rule] = {
     "date_part": _arity("date_part", (2,), _date_part),
 }
 
+def _pg_sxx(args: list[str]) -> str:
+    # PostgreSQL's regr_sxx (Youngs-Cramer) can leave a tiny positive sum for a constant
+    # column, where DuckDB's streaming update gives exactly zero: zero when min = max
+    if args[0] != args[1]:
+        return f"regr_sxx({args[0]}, {args[1]})"
+    return f"(CASE WHEN min({args[0]}) = max({args[0]}) THEN 0 ELSE regr_sxx({args[0]}, {args[1]}) END)"
+
+
 PG_AGGREGATES: dict[str, Rule] = {
     "count": "count", "sum": "sum", "min": "min", "max": "max", "avg": "avg",
-    "fsum": "sum", "kahan_sum": "sum", "sumkahan": "sum", "favg": "avg", "regr_sxx": "regr_sxx",
+    "fsum": "sum", "kahan_sum": "sum", "sumkahan": "sum", "favg": "avg", "regr_sxx": _arity("regr_sxx", (2,), _pg_sxx),
+    "array_agg": "array_agg",
 }
 
 
 def _pg_year_month(part: str) -> Callable[[list[str]], str]:
     return _arity(part, (1,), lambda a: f"CAST(date_part(E'{part}', {a[0]}) AS bigint)")
+
+
+_NUMBER_TEXT = r"^\s*[-+]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][-+]?[0-9]+)?\s*$"
+_SPECIAL_TEXT = ("nan", "inf", "+inf", "-inf", "infinity", "+infinity", "-infinity")
+
+
+def _pg_try_cast(args: list[str]) -> str:
+    # TRY_CAST(text AS DOUBLE) (the checkup's test for numbers written as text): NULL unless
+    # the text reads as a number as DuckDB reads it
+    value, kind = args
+    if kind != "double precision":
+        raise Unsupported(f"TRY_CAST to {kind}", "PostgreSQL")
+    special = ", ".join(_pg_string(t) for t in _SPECIAL_TEXT)
+    return (f"(CASE WHEN {value} ~ {_pg_string(_NUMBER_TEXT)} OR lower(trim({value})) IN ({special}) "
+            f"THEN CAST(trim({value}) AS double precision) END)")
 
 
 def _pg_day_diff(args: list[str]) -> str:
@@ -669,6 +734,7 @@ PG_INTERNAL: dict[str, Rule] = {
     "month": _pg_year_month("month"),
     "epoch_us": _arity("epoch_us", (1,), lambda a: f"CAST(date_part(E'epoch', {a[0]}) * 1000000 AS bigint)"),
     "date_diff": _arity("date_diff", (3,), lambda a: _pg_day_diff(a)),
+    "try_cast": _pg_try_cast,
 }
 
 PG_TYPES = {

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-FOLDS = ("rows", "unit", "period", "unit+period")
+FOLDS = ("rows", "unit", "period", "unit+period", "sweeps")
 LAYOUTS = ("plain", "constant", "within")
 SCORE_KINDS = ("rows", "units", "nested", "groups")
 
@@ -27,6 +27,7 @@ class Rows:
     clusters: tuple[str, ...] = ()
     differenced: bool = False
     demeaned: bool = False
+    effects: tuple[tuple[str, ...], ...] = ()  # absorbed effects' key columns (many effects: bigpanel.sweeps)
 
     @property
     def q(self) -> int:
@@ -43,7 +44,8 @@ class CrossProducts:
 
     ``fold``: ``rows`` (n, sums and products over all rows), ``unit`` (per-unit sums
     folded into the transformed cross-product in SQL), ``period`` (per-period sums) or
-    ``unit+period`` (per-unit, per-presence-pattern and per-period sums).
+    ``unit+period`` (per-unit, per-presence-pattern and per-period sums) or ``sweeps``
+    (the rows' effects absorbed by iteration, :mod:`bigpanel.sweeps`).
     ``layout`` of the unit fold: ``within`` (S_i - s_i s_i'/n_i), ``plain`` or
     ``constant`` (a constant column before the outcome).
     ``pilot``: coefficients around which the unit-cluster meat is expanded (unit fold).
@@ -54,6 +56,7 @@ class CrossProducts:
     layout: str = "plain"
     pilot: tuple[float, ...] | None = None
     head: bool = False  # the source's first rows only (the pilot's probe)
+    sweeps: tuple = ()  # the sweeps fold: (tolerance, max iterations, unit column, effect labels)
 
 
 @dataclass(frozen=True)

@@ -87,7 +87,15 @@ class FitResult:
     where: str | None
     warnings: tuple[str, ...] = field(default=())
     f_unavailable: str = ""  # why there is no joint test (f_stat and f_p_value are then NaN)
-    run: dict = field(default_factory=dict)  # how it ran: {"threads": N, "version": "x.y.z", "engine": "duckdb"}
+    # how it ran: {"threads": N, "version": "x.y.z", "engine": "duckdb"}, and another engine's
+    # run_facts() (its name, queries, bytes received)
+    run: dict = field(default_factory=dict)
+    # how the effects were absorbed: {"path": "exact" | "iterative", "method": ...}; iterative adds
+    # effects and levels, iterations, tolerance, achieved, converged, singletons, redundancies
+    absorption: dict = field(default_factory=dict)
+    # files written back (bigpanel.writeback): {"effects": {column: path}, "normalisation": text,
+    # "residuals": path}; empty when nothing was asked for
+    written: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         out = json_ready(self)
@@ -164,8 +172,19 @@ def _header(r: "FitResult") -> list[str]:
     if r.effects:
         sample += f"; effects: {', '.join(r.effects)}"
     lines += _wrapped("sample", sample)
+    if r.absorption.get("path") == "iterative":
+        lines += _wrapped("effects", _absorption_words(r.absorption))
     lines += _wrapped("variance", _variance_words(r.variance))
     return lines + [""]
+
+
+def _absorption_words(a: dict) -> str:
+    """The many-effects line: effects and levels, sweeps, tolerance reached, redundancies."""
+    effects = ", ".join(f"{e['effect']} ({e['levels']:,} levels)" for e in a["effects"])
+    status = "converged" if a["converged"] else "NOT CONVERGED: estimates are unreliable"
+    kind = "exact" if a["redundancies_exact"] else "lower bound"
+    return (f"absorbed by iteration: {effects}; {a['iterations']:,} sweeps, remaining level means {a['achieved']:.2g} "
+            f"against tolerance {a['tolerance']:.2g}, {status}; {a['redundancies']:,} redundant levels ({kind})")
 
 
 def _term_rows(coefficients) -> list[str]:
@@ -202,10 +221,16 @@ def _footer(r: "FitResult", notes: bool) -> list[str]:
     if dropped or r.singletons_dropped:
         parts = [f"{n:,} {k.replace('_', ' ')}" for k, n in dropped.items()]
         if r.singletons_dropped:
-            parts.append(f"{r.singletons_dropped:,} singleton units")
+            iterative = r.absorption.get("path") == "iterative"
+            parts.append(f"{r.singletons_dropped:,} " + ("rows alone in a level of an effect (singletons, dropped repeatedly)"
+                                                          if iterative else "singleton units"))
         lines += _wrapped("", "rows left out: " + "; ".join(parts))
     for term, why in r.terms_dropped.items():
         lines += _wrapped("", f"term left out: {term} ({why})")
+    for column, path in r.written.get("effects", {}).items():
+        lines += _wrapped("", f"effects of {column} written to {path}")
+    if r.written.get("residuals"):
+        lines += _wrapped("", f"residuals written to {r.written['residuals']}")
     for w in r.warnings if notes else ():
         lines += _wrapped("", f"note: {w}")
     lines += ["", "  Read these estimates as causal effects only if:"]

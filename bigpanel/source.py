@@ -310,6 +310,25 @@ class Source:
         return [], []
 
 
+def writer_connection(engine: Engine, files: Sequence[str]) -> duckdb.DuckDBPyConnection:
+    """A DuckDB instance for the write-back that can reach ``files`` only (this run's
+    temporary output files) and nothing else: no source, no other path, no spilling, and
+    its settings locked. Rows reach it as registered Arrow streams. Registered with
+    :mod:`bigpanel.interrupts` (the caller unregisters and closes it)."""
+    con = duckdb.connect(":memory:", config={"autoinstall_known_extensions": False, "autoload_known_extensions": False})
+    try:
+        for _, statement in engine.settings(None):
+            con.execute(statement)
+        con.execute(sqlbuild.setting_sql(*sqlbuild.WRITER_OPTIMIZERS))
+        for statement in lockdown.lockdown_sql([os.path.abspath(f) for f in files], []):
+            con.execute(statement)
+        interrupts.register(con)
+    except BaseException:
+        con.close()
+        raise
+    return con
+
+
 def _subfolder(folder: str, name: str) -> str:
     """A spill subfolder, one per DuckDB instance (made now, so it is there to inspect)."""
     path = os.path.join(folder, name)

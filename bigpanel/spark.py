@@ -176,6 +176,23 @@ class SparkEngine:
         except Exception:  # noqa: BLE001 - a stopped session has no views left
             pass
 
+    def __enter__(self) -> "SparkEngine":  # opened by engine.open_session: the adapter is its own session
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def refuse_model(self, spec) -> None:
+        """Refuse, before any row is read, what bigpanel does not run on Spark yet."""
+        if spec.many_effects:
+            raise InputError(f"Effects beyond the unit and the period ({', '.join(spec.effects)}) are absorbed by "
+                             "iteration over a private copy of the rows, which bigpanel does not make on Spark yet. "
+                             "Fit the Parquet files with --engine duckdb, or keep to unit and period effects.")
+
+    def run_facts(self) -> dict:
+        """For the result's ``run`` entry: the engine and its master."""
+        return {"engine": "spark", "master": str(self.spark.sparkContext.master)}
+
     # ---- schema
     def columns(self) -> dict[str, str]:
         if self._columns is None:

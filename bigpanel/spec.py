@@ -12,6 +12,9 @@ own:
 - ``levels(COLUMN)`` or ``levels(COLUMN, 'BASE')``: one 0/1 indicator per level of a
   categorical column except the base level (default: the first level in sort order).
 
+Effects are columns, or ``cell(A, B)`` for one effect per combination of levels; a within
+fit with effects beyond the unit and the period absorbs them by iteration (``many_effects``).
+
 A term or outcome that SQL cannot parse but that may be a column's own name (a keyword
 such as ``union``, or ``Sales 2024``) is kept as that name, quoted; the design checks
 that the source has such a column.
@@ -23,7 +26,7 @@ from dataclasses import dataclass
 
 from . import params, sqlbuild
 from .errors import InputError, echo
-from .expressions import Term, expression_sql, parse_term, parse_terms, split_top_level
+from .expressions import Term, expression_sql, parse_effect, parse_term, parse_terms, split_top_level
 
 _NOT_A_NAME = ("(", ")", "'", '"', "--", "/*", ";", ",")
 
@@ -57,6 +60,12 @@ def _term(text: str) -> Term:
         return Term(text=" ".join(text.split()), kind="expr", expr=sqlbuild.quote_ident(text.strip()))
 
 
+def _effect_label(text: str) -> str:
+    """An effect as the result names it: a column as written; ``cell(a, b)`` spelt evenly."""
+    columns = parse_effect(text)
+    return f"cell({', '.join(columns)})" if len(columns) > 1 else columns[0]
+
+
 def _outcome_sql(text: str) -> str:
     try:
         return expression_sql(text, "Outcome")
@@ -82,6 +91,10 @@ class FitSpec:
     intercept: bool
     period_step: int | None = None  # None: the panel's detected step
     absorbed_levels: str = "not-nested"
+    effects_tolerance: float = 1e-10  # many effects: the iteration's tolerance (bigpanel.sweeps)
+    effects_iterations: int = 1000
+    write_effects: str | None = None  # folders the fit writes its effects / residuals into (bigpanel.writeback)
+    write_residuals: str | None = None
 
     @classmethod
     def build(
@@ -97,6 +110,10 @@ class FitSpec:
         intercept: bool | None = None,
         period_step: int | None = None,
         absorbed_levels: str | None = None,
+        effects_tolerance: float | None = None,
+        effects_iterations: int | None = None,
+        write_effects: str | None = None,
+        write_residuals: str | None = None,
     ) -> "FitSpec":
         estimator = params.check("estimator", estimator)
         outcome = params.check("outcome", outcome)
@@ -118,9 +135,14 @@ class FitSpec:
                              f"write --effects {echo(unit)} or --effects {echo(unit)},{echo(period)}.")
         if estimator == "pooled" and unit in eff:
             raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for the pooled estimator; that is the within estimator. Use --estimator within.")
+        eff = tuple(_effect_label(e) for e in eff)
+        if len(set(eff)) != len(eff):
+            dup = next(e for e in eff if eff.count(e) > 1)
+            raise InputError(f"Option 'effects' lists '{echo(dup)}' twice. Give each effect once.")
         for e in eff:
-            if e not in (unit, period):
-                raise InputError(f"Option 'effects' names '{echo(e)}': effects on columns other than the unit '{echo(unit)}' and the period '{echo(period)}' are not supported yet.")
+            if e not in (unit, period) and estimator != "within":
+                raise InputError(f"Option 'effects' names '{echo(e)}': effects other than the unit '{echo(unit)}' and the "
+                                 f"period '{echo(period)}' need the within estimator. Use --estimator within.")
         if estimator == "first-difference" and unit in eff:
             raise InputError(f"Option 'effects' names the unit '{echo(unit)}' for first differences, which already remove it. Use --effects {echo(period)} for period intercepts.")
         if variance is None:
@@ -143,11 +165,32 @@ class FitSpec:
             raise InputError("Option 'intercept' cannot be used with the within estimator: the unit effects already remove it.")
         period_step = params.check("period_step", period_step)
         absorbed_levels = params.check("absorbed_levels", absorbed_levels)
+        effects_tolerance = params.check("effects_tolerance", effects_tolerance)
+        effects_iterations = params.check("effects_iterations", effects_iterations)
+        write_effects = params.check("write_effects", write_effects)
+        write_residuals = params.check("write_residuals", write_residuals)
+        if write_effects is not None and estimator != "within":
+            raise InputError(f"Option 'write_effects' needs the within estimator: {estimator} fits estimate no unit "
+                             "effects to write. Use --estimator within, or leave out --write-effects.")
+        if write_residuals is not None and estimator == "pooled":
+            raise InputError("Option 'write_residuals' applies to within and first-difference fits, not pooled ones. "
+                             "Use --estimator within or first-difference, or leave out --write-residuals.")
         return cls(
             outcome=outcome, outcome_sql=outcome_sql, terms=terms, unit=unit, period=period, estimator=estimator,
             effects=eff, variance=variance, cluster=clus, intercept=bool(intercept), period_step=None if period_step is None else int(period_step),
-            absorbed_levels=absorbed_levels,
+            absorbed_levels=absorbed_levels, effects_tolerance=effects_tolerance, effects_iterations=effects_iterations,
+            write_effects=write_effects, write_residuals=write_residuals,
         )
+
+    @property
+    def effect_columns(self) -> tuple[tuple[str, ...], ...]:
+        """Each effect's source columns (``cell(a, b)``: both)."""
+        return tuple(parse_effect(e) for e in self.effects)
+
+    @property
+    def many_effects(self) -> bool:
+        """Effects beyond the unit and the period: absorbed by iteration (bigpanel.sweeps)."""
+        return self.estimator == "within" and any(e not in (self.unit, self.period) for e in self.effects)
 
     @property
     def period_effects(self) -> bool:

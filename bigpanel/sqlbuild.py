@@ -342,18 +342,21 @@ def _z(j: int) -> str:
 
 def design_rows_sql(
     source: str, unit: str, period: str, clusters: list[str], columns: list[tuple[str, int]], step: int,
-    period_sql: str | None = None, dialect: Dialect = DUCKDB,
+    period_sql: str | None = None, effects: Sequence[Sequence[str]] = (), dialect: Dialect = DUCKDB,
 ) -> str:
     """Select the unit, period, clusters and shifted design columns of every row.
 
     ``columns`` holds ``(expression, lag)`` pairs; a lag K reads the expression at
     period - K*step in the same unit (NULL when that period is absent); a negative K (a
     lead) reads it |K|*step periods later. ``period_sql``: the period as a slot on its
-    regular grid (:func:`period_slot_sql`) instead of the column.
+    regular grid (:func:`period_slot_sql`) instead of the column. ``effects``: the key
+    columns of each absorbed effect (many effects, :mod:`bigpanel.sweeps`), as k_e<i>_<m>.
     """
     period_sql = period_sql or quote_ident(period, dialect)
     items = [f"{quote_ident(unit, dialect)} AS k_unit", f"{period_sql} AS k_period"]
     items += [f"{quote_ident(c, dialect)} AS k_c{i}" for i, c in enumerate(clusters)]
+    items += [f"{quote_ident(c, dialect)} AS {name}" for e, keys in enumerate(effects)
+              for c, name in zip(keys, effect_keys(e, len(keys)))]
     for j, (expr, lag) in enumerate(columns):
         value = f"CAST(({expr}) AS DOUBLE)"
         if lag:
@@ -374,6 +377,46 @@ def differenced_rows_sql(rows: str, n_clusters: int, q: int, streaming: bool = F
     diffs = ", ".join(f"{_z(j)} - lag({_z(j)}) OVER w AS {_z(j)}" for j in range(q))
     window = "" if streaming else "PARTITION BY k_unit ORDER BY k_period"
     return render("differenced_rows", rows=f"({rows})", keys=", ".join(keys), diffs=diffs, window=window)
+
+
+def effect_keys(effect: int, n_columns: int) -> list[str]:
+    """The names of an absorbed effect's key columns in the design rows."""
+    return [f"k_e{effect}_{m}" for m in range(n_columns)]
+
+
+def keys_present(keys: Sequence[str]) -> str:
+    """Every key column has a value (rows without an effect's level are not used)."""
+    return " AND ".join(f"{k} IS NOT NULL" for k in keys)
+
+
+def effect_levels_sql(rows: str, keys: Sequence[str], missing: bool = False) -> str:
+    """The distinct levels of ``keys`` over the design rows, in sort order: row i is level
+    i in :func:`effect_rows_sql`. ``missing``: a row without a value is a level too
+    (clusters); else such rows have no level (effects: they are not used)."""
+    cols = ", ".join(keys)
+    return render("effect_levels", rows=f"({rows})", keys=cols, present="true" if missing else keys_present(keys))
+
+
+def effect_rows_sql(rows: str, valid: str, effects: Sequence[Sequence[str]], clusters: Sequence[Sequence[str]], q: int,
+                    keep: Sequence[str] = ()) -> str:
+    """The used rows (design rows ``rows`` where ``valid``) with a compact level index per
+    effect (``i<e>``, INTEGER) and per cluster set (``g<c>``; a set of two columns is their
+    intersection), the design columns z<j> and the ``keep`` columns, numbered as
+    :func:`effect_levels_sql` numbers them."""
+    levels, columns, joins = [], [], []
+    for name, keys, missing in ([(f"i{e}", k, False) for e, k in enumerate(effects)]
+                                + [(f"g{c}", k, True) for c, k in enumerate(clusters)]):
+        table = f"l_{name}"
+        cols = ", ".join(keys)
+        present = "true" if missing else keys_present(keys)
+        levels.append(f", {table} AS (SELECT {cols}, CAST(row_number() OVER (ORDER BY {cols}) - 1 AS INTEGER) AS i "
+                      f"FROM (SELECT DISTINCT {cols} FROM design WHERE {present}) AS d)")
+        equal = " IS NOT DISTINCT FROM " if missing else " = "
+        joins.append(f" JOIN {table} ON " + " AND ".join(f"used.{k}{equal}{table}.{k}" for k in keys))
+        columns.append(f"{table}.i AS {name}")
+    columns += [f"used.{_z(j)}" for j in range(q)] + [f"used.{k}" for k in keep]
+    return render("effect_rows", rows=rows, valid=valid, levels="".join(levels), columns=", ".join(columns),
+                  joins="".join(joins))
 
 
 def valid_predicate(q: int, differenced: bool, step: int) -> str:
@@ -471,8 +514,10 @@ def stream_rows_sql(used: str, q: int) -> str:
     return f"SELECT k_unit, k_period, {', '.join(_z(j) for j in range(q))} FROM ({used}) AS r"
 
 
-def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dialect = DUCKDB) -> str:
-    finite = " AND ".join(f"{dialect.is_finite(_z(j))}" for j in range(q))
+def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dialect = DUCKDB,
+                   required: Sequence[str] = ()) -> str:
+    """Rows by reason; ``required``: key columns (absorbed effects') whose missing value drops a row."""
+    finite = " AND ".join([f"{dialect.is_finite(_z(j))}" for j in range(q)] + [f"{k} IS NOT NULL" for k in required])
     usable = f"k_prev_unit = k_unit AND k_prev = k_period - {int(step)} AND " if differenced else ""
     counts = ["count(*) AS n_rows",
               f"count(*) FILTER (WHERE k_unit IS NULL OR ({usable}NOT coalesce({finite}, false))) AS missing"]
@@ -743,9 +788,15 @@ def distinct_periods_sql(source: str, period: str, kind: str, limit: int, dialec
 
 
 def checkup_unit_scan_sql(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
-                          numeric: Sequence[int], mode: str, bitmap: bool) -> str:
+                          numeric: Sequence[int], mode: str, bitmap: bool, dialect: Dialect = DUCKDB) -> str:
     """SQL of the unit scan; each j in ``numeric`` (indices into ``checked``) gives
-    within_ss_j and varying_units_j."""
+    within_ss_j and varying_units_j. On PostgreSQL (no bitstring_agg, no histogram) distinct
+    periods are counted with count(DISTINCT) and the histogram comes as [n_periods, units]
+    pairs (flattened: ``panel.histogram_pairs`` reads both forms)."""
+    bitmap = bitmap and dialect.name == "duckdb"
+    periods = "histogram(n_periods)" if dialect.name == "duckdb" else (
+        "(SELECT array_agg(ARRAY[n_periods, n_units]) FROM "
+        "(SELECT n_periods, count(*) AS n_units FROM per_unit GROUP BY n_periods) AS h)")
     values = [f"{_shifted(checked[j], j)} AS v_{j}" for j in numeric]
     per_unit = [f"regr_sxx(v_{j}, v_{j}) AS ss_{j}" for j in numeric]
     totals = [f"fsum(ss_{j}) AS within_ss_{j},\n       count(*) FILTER (WHERE ss_{j} > 0) AS varying_units_{j}"
@@ -760,6 +811,7 @@ def checkup_unit_scan_sql(source_sql: str, unit: str, period_value: str, checked
         column_values="".join(", " + v for v in values),
         unit_aggregates="".join(",\n           " + a for a in per_unit),
         column_totals="".join(",\n       " + t for t in totals),
+        periods_per_unit=periods,
     )
 
 
@@ -780,49 +832,74 @@ def _pair(step: int) -> str:
     return f"coalesce(k_prev_unit = k_unit AND k_prev = k_period - {int(step)}, false)"
 
 
-def sample_flags(samples: Sequence[Sequence[int]], differenced: bool, step: int) -> list[str]:
-    """m_s (columns finite) and f_s (in the sample) per sample."""
-    out = []
-    for s, cols in enumerate(samples):
-        out.append(f"{_finite(cols)} AS m{s}")
-        out.append(f"{(_pair(step) + ' AND ') if differenced else ''}{_finite(cols)} AS f{s}")
-    return out
+PATTERN_BITS = 60  # samples per pattern word (BIGINT)
+
+
+def pattern_words(n_samples: int) -> int:
+    return max(1, -(-n_samples // PATTERN_BITS))
+
+
+def pattern_keys(n_samples: int) -> list[str]:
+    """The columns of a row's pattern: why, pat0, pat1, ..."""
+    return ["why"] + [f"pat{t}" for t in range(pattern_words(n_samples))]
+
+
+def pattern_items(samples: Sequence[Sequence[int]], differenced: bool, step: int) -> list[str]:
+    """why (0 usable; differences: 1 first row of the unit, 2 after a gap, 3 duplicate key,
+    4 other) and pat{t}: bit s % PATTERN_BITS of word s // PATTERN_BITS set when sample s's
+    columns are all finite."""
+    if differenced:
+        why = (f"CASE WHEN {_pair(step)} THEN 0 WHEN k_prev IS NULL THEN 1 WHEN k_prev < k_period - {int(step)} THEN 2 "
+               "WHEN k_prev = k_period THEN 3 ELSE 4 END AS why")
+    else:
+        why = "0 AS why"
+    words = []
+    for t in range(pattern_words(len(samples))):
+        bits = [f"CASE WHEN {_finite(cols)} THEN CAST({1 << (s % PATTERN_BITS)} AS BIGINT) ELSE CAST(0 AS BIGINT) END"
+                for s, cols in enumerate(samples) if s // PATTERN_BITS == t]
+        words.append(f"({' + '.join(bits)}) AS pat{t}")
+    return [why] + words
+
+
+def sample_pairs(samples: Sequence[Sequence[int]]) -> list[tuple[int, int]]:
+    """The union's column pairs (j <= l) that some sample holds both of, in order."""
+    pairs = {(j, l) for cols in samples for a, j in enumerate(sorted(cols)) for l in sorted(cols)[a:]}
+    return sorted(pairs)
 
 
 def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
                        nesting: Sequence[tuple[int, int]] = (), total: str = DUCKDB.compensated) -> str:
-    """Cross-products of every sample in one scan; ``nesting`` lists (sample, cluster
-    position) pairs whose clusters are checked to hold whole units; ``total`` is the sum
-    function (compensated unless the query is one of several one-thread chunks)."""
-    unit_sums = ["count(*) AS n_all", "min(k_period) AS lo", "max(k_period) AS hi"]
-    totals = ["sum(n_all) AS n_rows", "min(lo) AS lo", "max(hi) AS hi"]
-    if differenced:
-        unit_sums += ["count(*) FILTER (WHERE k_prev IS NULL) AS first_of_unit",
-                      f"count(*) FILTER (WHERE k_prev < k_period - {int(step)}) AS after_gap",
-                      "count(*) FILTER (WHERE k_prev = k_period) AS duplicate_keys"]
-        totals += ["sum(first_of_unit) AS first_of_unit", "sum(after_gap) AS after_gap",
-                   "sum(duplicate_keys) AS duplicate_keys"]
-    usable = (_pair(step) + " AND ") if differenced else ""
-    for s, cols in enumerate(samples):
-        unit_sums += [f"count(*) FILTER (WHERE f{s}) AS n{s}", f"count(*) FILTER (WHERE {usable}NOT m{s}) AS miss{s}",
-                      f"min(k_period) FILTER (WHERE f{s}) AS tlo{s}", f"max(k_period) FILTER (WHERE f{s}) AS thi{s}"]
-        unit_sums += [f"{total}({_z(j)}) FILTER (WHERE f{s}) AS s{s}_{j}" for j in cols]
-        unit_sums += [f"{total}({_z(j)} * {_z(l)}) FILTER (WHERE f{s}) AS p{s}_{j}_{l}" for a, j in enumerate(cols) for l in cols[a:]]
-        totals += [f"count(k_unit) FILTER (WHERE n{s} > 0) AS units{s}", f"count(*) FILTER (WHERE n{s} > 1) AS wunits{s}",
-                   f"count(*) FILTER (WHERE n{s} = 1) AS single{s}", f"sum(n{s}) AS n{s}",
-                   f"sum(n{s}) FILTER (WHERE n{s} > 1) AS wn{s}", f"sum(n{s}) FILTER (WHERE n{s} = 1) AS single_rows{s}",
-                   f"sum(miss{s}) AS miss{s}", f"min(tlo{s}) AS tlo{s}", f"max(thi{s}) AS thi{s}",
-                   f"min(tlo{s}) FILTER (WHERE n{s} > 1) AS wtlo{s}", f"max(thi{s}) FILTER (WHERE n{s} > 1) AS wthi{s}"]
-        totals += [f"{total}(s{s}_{j}) AS tot_s{s}_{j}" for j in cols]
-        for a, j in enumerate(cols):
-            for l in cols[a:]:
-                totals.append(f"{total}(p{s}_{j}_{l}) AS tot_p{s}_{j}_{l}")
-                totals.append(f"{total}(p{s}_{j}_{l} - s{s}_{j} * s{s}_{l} / n{s}) FILTER (WHERE n{s} > 1) AS tot_w{s}_{j}_{l}")
-    for s, c in nesting:
-        unit_sums.append(f"count(DISTINCT k_c{int(c)}) FILTER (WHERE f{s}) AS d{s}_{c}")
-        totals.append(f"count(*) FILTER (WHERE d{s}_{c} > 1) AS mixed{s}_{c}")
-    return render("shared_moments", rows=rows, flags=", ".join(sample_flags(samples, differenced, step)),
-                  unit_sums=", ".join(unit_sums), totals=", ".join(totals))
+    """Cross-products of every sample in one scan, summed once per unit and row pattern
+    (``shared_moments.sql``); ``nesting`` lists (sample, cluster position) pairs whose
+    clusters are checked to hold whole units; ``total`` is the sum function (compensated
+    unless the query is one of several one-thread chunks). :func:`bigpanel.plan.pattern_totals`
+    reads the result."""
+    used = sorted({j for cols in samples for j in cols})
+    pairs = sample_pairs(samples)
+    clusters = sorted({int(c) for _, c in nesting})
+    keys = pattern_keys(len(samples))
+    cell = ["count(*) AS n", "min(k_period) AS lo", "max(k_period) AS hi"]
+    cell += [f"min(k_c{c}) AS cmin{c}, max(k_c{c}) AS cmax{c}" for c in clusters]
+    cell += [f"{total}({_z(j)}) AS s{j}" for j in used]
+    cell += [f"{total}({_z(j)} * {_z(l)}) AS p{j}_{l}" for j, l in pairs]
+    per_sample = ["sum(n) AS n", "min(lo) AS lo", "max(hi) AS hi"]
+    per_sample += [f"min(cmin{c}) AS cmin{c}, max(cmax{c}) AS cmax{c}" for c in clusters]
+    per_sample += [f"{total}(s{j}) AS s{j}" for j in used]
+    per_sample += [f"{total}(p{j}_{l}) AS p{j}_{l}" for j, l in pairs]
+    totals = ["count(k_unit) AS t_units", "count(*) AS t_groups", "sum(n) AS t_n", "min(lo) AS t_lo", "max(hi) AS t_hi"]
+    totals += [f"sum(CASE WHEN cmin{c} <> cmax{c} THEN 1 ELSE 0 END) AS t_mixed{c}" for c in clusters]
+    totals += [f"{total}(s{j}) AS t_s{j}" for j in used]
+    totals += [f"{total}(p{j}_{l}) AS t_p{j}_{l}" for j, l in pairs]
+    totals += [f"{total}(p{j}_{l} - s{j} * s{l} / n) AS t_w{j}_{l}" for j, l in pairs]
+    counts = ["NULL AS t_units", "NULL AS t_groups", "sum(n) AS t_n", "min(lo) AS t_lo", "max(hi) AS t_hi"]
+    counts += [f"NULL AS {item.rsplit(' AS ', 1)[1]}" for item in totals[5:]]
+    words = pattern_words(len(samples))
+    word = "c.pat0" if words == 1 else ("CASE samples.word " + " ".join(f"WHEN {t} THEN c.pat{t}" for t in range(words)) + " END")
+    return render("shared_moments", rows=rows, pattern=", ".join(pattern_items(samples, differenced, step)),
+                  pattern_keys=", ".join(keys), cell_sums=", ".join(cell),
+                  samples=", ".join(f"({s}, {s // PATTERN_BITS}, {s % PATTERN_BITS})" for s in range(len(samples))),
+                  covers=f"({word} >> samples.bit) & 1 = 1", sample_sums=", ".join(per_sample),
+                  totals=", ".join(totals), no_keys=", ".join(f"NULL AS {k}" for k in keys), counts=", ".join(counts))
 
 
 def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
@@ -832,24 +909,75 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
     ``x`` (union indices of its regressors), ``y`` (its outcome), ``constant``,
     ``demean`` and ``hc1`` (bools). ``sets`` are the grouping sets over ``keys`` (some of
     ``k_unit``, ``k_c0``, ...); their GROUPING() id is :func:`grouping_id`."""
-    residuals, cell_sums, unit_sums, scores, group_sums, outer = [], [], [], [], [], []
+    keys_of = pattern_keys(len(samples))
+    used: dict[int, None] = {}
+    pairs: dict[tuple[int, int], None] = {}
+
+    def p(j: int, l: int) -> str:  # the cell's sum of z_j z_l
+        pair = (min(j, l), max(j, l))
+        pairs.setdefault(pair, None)
+        return f"p{pair[0]}_{pair[1]}"
+
+    def sz(j: int) -> str:
+        used.setdefault(j, None)
+        return f"s{j}"
+
+    raw_sums, cell_sums, unit_sums, scores, group_sums, outer = [], [], [], [], [], []
+    unit_totals, unit_means, unit_outer = [], [], []  # the per-unit path (sets of units or all rows only)
+    residuals = []  # per HC1 model: its residual and its square, per row
     for m, spec in enumerate(models):
         s = spec["sample"]
-        xs = [_z(j) for j in spec["x"]] + ([dialect.one] if spec["constant"] else [])
+        covers = f"why = 0 AND (pat{s // PATTERN_BITS} >> {s % PATTERN_BITS}) & 1 = 1"
+        xs = list(spec["x"]) + ([None] if spec["constant"] else [])  # None: the constant column
         k = len(xs)
-        u = _z(spec["y"]) + "".join(f" - $b{m}_{i} * {_z(j)}" for i, j in enumerate(spec["x"]))
-        if spec["constant"]:
-            u += f" - $one{m}"
-        residuals.append(f"CASE WHEN f{s} THEN {u} END AS u{m}")
-        residuals += [f"CASE WHEN f{s} THEN {x} END AS x{m}_{i}" for i, x in enumerate(xs)]
         tri = [(i, l) for i in range(k) for l in range(i, k)]
-        cell_sums += [f"count(*) FILTER (WHERE f{s}) AS n{m}", f"{total}(u{m}) AS su{m}"]
-        cell_sums += [f"{total}(x{m}_{i}) AS sx{m}_{i}, {total}(x{m}_{i} * u{m}) AS sxu{m}_{i}" for i in range(k)]
+        one = f" - $one{m}" if spec["constant"] else ""
+
+        def s_of(x):  # the cell's sum of score column x
+            return "n_all" if x is None else sz(x)
+
+        def s_times(x, z: int) -> str:  # the cell's sum of x * z_z
+            return sz(z) if x is None else p(x, z)
+
+        def s_u(x) -> str:  # the cell's sum of x * u: u = z_y - sum b_i z_i - one, summed linearly
+            terms = s_times(x, spec["y"]) + "".join(f" - $b{m}_{i} * {s_times(x, j)}" for i, j in enumerate(spec["x"]))
+            return terms + (f" - $one{m} * {s_of(x)}" if spec["constant"] else "")
+
+        first_cell = len(cell_sums)
+
+        def case(expr: str) -> str:
+            return f"CASE WHEN {covers} THEN {expr} END"
+
+        def s_xx(a, b) -> str:  # the cell's sum of x_a x_b
+            if a is None or b is None:
+                other = b if a is None else a
+                return s_of(other)
+            return p(a, b)
+
+        cell_sums += [f"CASE WHEN {covers} THEN n_all ELSE 0 END AS n{m}", f"{case(s_u(None))} AS su{m}"]
+        cell_sums += [f"{case(s_of(x))} AS sx{m}_{i}, {case(s_u(x))} AS sxu{m}_{i}" for i, x in enumerate(xs)]
+        if spec["hc1"]:  # fourth moments: per row, with the model's residual (its sample's cells only are read)
+            u = _z(spec["y"]) + "".join(f" - $b{m}_{i} * {_z(j)}" for i, j in enumerate(spec["x"])) + one
+            residuals += [f"{u} AS ru{m}", f"({u}) * ({u}) AS ruu{m}"]  # once per row, read by every sum below
+            u, uu = f"ru{m}", f"ruu{m}"
+            col = [(dialect.one if x is None else _z(x)) for x in xs]
+            want = (("sxxu", f" * {u}"), ("sxxuu", f" * {uu}")) if spec["demean"] else (("sxxuu", f" * {uu}"),)
+            raw_sums += [f"{total}({col[i]} * {col[l]}{factor}) AS r{name}{m}_{i}_{l}" for i, l in tri for name, factor in want]
+            cell_sums += [f"{case(f'r{name}{m}_{i}_{l}')} AS {name}{m}_{i}_{l}" for i, l in tri for name, _ in want]
+            if spec["demean"]:
+                raw_sums.append(f"{total}({uu}) AS rsuu{m}")
+                raw_sums += [f"{total}({col[i]} * {uu}) AS rsxuu{m}_{i}" for i in range(k)]
+                cell_sums.append(f"{case(f'rsuu{m}')} AS suu{m}")
+                cell_sums += [f"{case(f'rsxuu{m}_{i}')} AS sxuu{m}_{i}" for i in range(k)]
+                cell_sums += [f"{case(s_xx(xs[i], xs[l]))} AS sxx{m}_{i}_{l}" for i, l in tri]
+        names = re.findall(r" AS (\w+)(?=,|$)", ", ".join(cell_sums[first_cell:]))  # this model's cell columns, in order
+        unit_totals += [f"sum({c}) AS {c}" if c == f"n{m}" else f"{total}({c}) AS {c}" for c in names]
+        unit_outer += [f"count(*) FILTER (WHERE k{m}) AS ng{m}"]
+        unit_outer += [f"{total}(g{m}_{i} * g{m}_{l}) AS o{m}_{i}_{l}" for i, l in tri]
         if spec["hc1"]:
-            cell_sums.append(f"{total}(u{m} * u{m}) AS suu{m}")
-            cell_sums += [f"{total}(x{m}_{i} * u{m} * u{m}) AS sxuu{m}_{i}" for i in range(k)]
-            cell_sums += [f"{total}(x{m}_{i} * x{m}_{l}{suffix}) AS {name}{m}_{i}_{l}" for i, l in tri
-                          for suffix, name in (("", "sxx"), (f" * u{m}", "sxxu"), (f" * u{m} * u{m}", "sxxuu"))]
+            unit_outer += [f"{total}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+        if spec["demean"]:
+            unit_means += [f", n{m} AS nn{m}, su{m} / n{m} AS uu{m}"] + [f", sx{m}_{i} / n{m} AS xx{m}_{i}" for i in range(k)]
         if spec["demean"]:
             unit_sums += [f", sum(n{m}) AS nn{m}", f", {total}(su{m}) / sum(n{m}) AS uu{m}"]
             unit_sums += [f", {total}(sx{m}_{i}) / sum(n{m}) AS xx{m}_{i}" for i in range(k)]
@@ -877,13 +1005,19 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
         if spec["hc1"]:
             group_sums += [f"{total}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
             outer += [f"{total}(h{m}_{i}_{l}) AS h{m}_{i}_{l}" for i, l in tri]
+    union = ["count(*) AS n_all"] + [f"{total}({_z(j)}) AS s{j}" for j in used]
+    union += [f"{total}({_z(j)} * {_z(l)}) AS p{j}_{l}" for j, l in pairs]
+    common = dict(rows=rows, pattern=", ".join(pattern_items(samples, differenced, step) + residuals),
+                  pattern_keys=", ".join(keys_of), raw_sums=", ".join(union + raw_sums), cell_sums=", ".join(cell_sums),
+                  scores=", ".join(scores))
+    if all(tuple(s) in (("k_unit",), ()) for s in sets):  # every meat is a sum over units: no cells of clusters
+        gids = ", ".join(f"({grouping_id(keys, s)})" for s in sets)
+        return render("shared_unit_scores", **common, unit_totals=", ".join(unit_totals),
+                      unit_means="".join(unit_means), outer=", ".join(unit_outer), gids=gids)
     cell_keys = ["k_unit"] + [k for k in keys if k != "k_unit"]
     grouping_sets = "GROUPING SETS (" + ", ".join("(" + ", ".join(s) + ")" for s in sets) + ")"
-    return render("shared_scores", rows=rows, flags=", ".join(sample_flags(samples, differenced, step)),
-                  materialized=dialect.materialized,
-                  residuals=", ".join(residuals), cell_keys=", ".join(cell_keys), cell_sums=", ".join(cell_sums),
-                  unit_sums="".join(unit_sums), scores=", ".join(scores),
-                  grouping=dialect.grouping(keys) if keys else "0", sets=grouping_sets,
+    return render("shared_scores", **common, cell_keys=", ".join(cell_keys), unit_sums="".join(unit_sums),
+                  materialized=dialect.materialized, grouping=dialect.grouping(keys) if keys else "0", sets=grouping_sets,
                   group_sums=", ".join(group_sums), outer=", ".join(outer))
 
 
@@ -894,3 +1028,81 @@ def grouping_id(keys: Sequence[str], grouped: Sequence[str]) -> int:
     for key in keys:
         out = (out << 1) | (0 if key in grouped else 1)
     return out
+
+
+# ---------------------------------------------------------------- write-back (bigpanel.writeback)
+# The rows of the fit's sample (``used``, design columns unshifted: $s_j = 0, $d_j = 1, the
+# period column carried as k_c0) with the estimates as parameters: $b_j per design column,
+# $b_one the intercept, ($t_i, $g_i) the periods' effects.
+
+WRITE_VIEW = "bigpanel_rows"  # the name under which the writer instance sees the streamed rows
+# The writer joins streamed rows (not counted in advance: DuckDB guesses one row) to effect
+# tables; with these optimizers on it built its hash table from the stream (20M rows: 2.5 GB),
+# off it builds from the effect tables and streams the rows through (0.28 GB).
+WRITER_OPTIMIZERS = ("disabled_optimizers", "join_order,build_side_probe_side")
+
+
+def writeback_parts_sql(used: str, q: int, slopes: Sequence[int], effect_columns: Sequence[int], n_periods: int,
+                        intercept: bool, keys: Sequence[str] = ()) -> str:
+    """CTEs ``used`` and ``parts``: per used row k_unit, k_period, k_c0 (the period as the
+    source has it), the effects' key columns ``keys``, the outcome y, xb = sum of $b_j z_j
+    over ``slopes`` (+ $b_one) and pe = sum of $b_j z_j over ``effect_columns`` plus the
+    row's period effect $g_i (joined on $t_i; 0 for a period not listed)."""
+    xb = " + ".join([f"$b{int(j)} * r.{_z(j)}" for j in slopes] + (["$b_one"] if intercept else [])) or "0.0"
+    pe = " + ".join([f"$b{int(j)} * r.{_z(j)}" for j in effect_columns]
+                    + (["coalesce(pe.g, 0.0)"] if n_periods else [])) or "0.0"
+    carried = "".join(f"r.{k}, " for k in keys)
+    return (f"used AS ({used}),\nparts AS (SELECT r.k_unit, r.k_period, r.k_c0, {carried}r.{_z(q - 1)} AS y, {xb} AS xb, "
+            f"{pe} AS pe FROM used AS r {period_join_sql(n_periods, 0)})")
+
+
+def writeback_periods_sql(parts: str) -> str:
+    """Per period: its value as the source has it, its rows and its effect (the mean of pe)."""
+    return (f"WITH {parts}\nSELECT k_period, any_value(k_c0) AS shown, count(*) AS n, {DUCKDB.compensated}(pe) / count(*) "
+            "AS effect FROM parts GROUP BY k_period ORDER BY k_period")
+
+
+def writeback_period_links_sql(used: str) -> str:
+    """Each unit's first period beside each of its periods (distinct pairs): the links that
+    make periods one connected group."""
+    return ("SELECT DISTINCT first_period, k_period FROM (SELECT k_period, min(k_period) OVER (PARTITION BY k_unit) "
+            f"AS first_period FROM ({used}) AS r) AS l")
+
+
+def writeback_unit_effects_sql(parts: str) -> str:
+    """Per unit (k_unit, effect, n_rows), in unit order: the mean of y - xb - pe."""
+    return (f"WITH {parts}\nSELECT k_unit, {DUCKDB.compensated}(y - xb - pe) / count(*) AS effect, "
+            "count(*) AS n_rows FROM parts GROUP BY k_unit ORDER BY k_unit")
+
+
+def writeback_rows_sql(parts: str, carried: Sequence[str]) -> str:
+    """The rows streamed to the writer instance: the ``carried`` key columns, y, xb and pe."""
+    return f"WITH {parts}\nSELECT {', '.join(carried)}, y, xb, pe FROM parts"
+
+
+def effect_view(i: int) -> str:
+    """The name under which the writer instance sees effect table ``i``."""
+    return f"bigpanel_effect_{int(i)}"
+
+
+def writeback_joined_sql(view: str, joins: Sequence[Sequence[str]], carried: Sequence[str], names: Sequence[str]) -> str:
+    """The writer instance's residual rows: the streamed rows ``view`` joined to effect table
+    i on its key columns ``joins[i]``; output the ``carried`` columns, then the fitted value
+    xb + pe + the effects and the residual y minus it, named ``names``. The effect tables are
+    the hash tables built (the writer's join-order optimizers are off: the stream is not
+    counted in advance, and would otherwise be taken for the small side)."""
+    total = "r.xb + r.pe" + "".join(f" + t{i}.effect" for i in range(len(joins)))
+    items = [f"r.{c} AS {quote_ident(n)}" for c, n in zip(carried, names)]
+    items += [f"{total} AS {quote_ident(names[-2])}", f"r.y - ({total}) AS {quote_ident(names[-1])}"]
+    tables = "".join(f" JOIN {quote_ident(effect_view(i))} AS t{i} ON " + " AND ".join(f"r.{k} = t{i}.{k}" for k in keys)
+                     for i, keys in enumerate(joins))
+    return f"SELECT {', '.join(items)} FROM {quote_ident(view)} AS r{tables}"
+
+
+def all_rows_sql(view: str) -> str:
+    return f"SELECT * FROM {quote_ident(view)}"
+
+
+def copy_parquet_sql(select: str, path: str) -> str:
+    """The writer instance's one statement: the rows of ``select`` into a Parquet file."""
+    return f"COPY ({select}) TO {quote_literal(path)} (FORMAT parquet)"

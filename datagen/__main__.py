@@ -1,9 +1,13 @@
-"""Command line: ``python -m datagen OUT_DIR --units N --periods T [options]``."""
+"""Command line: ``python -m datagen OUT_DIR --units N --periods T [options]``.
+
+``--scenario couriers --depots M`` writes the couriers-by-year panel instead (units are
+couriers, periods years; ``--move-share`` of them change depot each year)."""
 
 import argparse
 import sys
 
 from .build import generate, load_truth
+from .couriers import generate_couriers
 from .errors import DatagenError
 from .options import COMPRESSIONS, ORDERS, Options
 
@@ -32,6 +36,11 @@ def _parser():
     parser.add_argument("--row-group-size", type=int, default=Options.row_group_size)
     parser.add_argument("--compression", choices=COMPRESSIONS, default=Options.compression)
     parser.add_argument("--overwrite", action="store_true", help="replace OUT_DIR if it exists")
+    parser.add_argument("--scenario", choices=("depots", "couriers"), default="depots",
+                        help="depots by month (default), or couriers working for depots by year")
+    parser.add_argument("--depots", type=int, help="couriers scenario: number of depots employing couriers")
+    parser.add_argument("--move-share", type=float, default=0.1,
+                        help="couriers scenario: share of couriers changing depot each year (default 0.1)")
     return parser
 
 
@@ -39,10 +48,18 @@ def main(argv=None):
     """Run the command line; return the exit code (0 done, 1 write failed, 2 bad usage)."""
     args = _parser().parse_args(argv)
     try:
-        out = generate(args.out_dir, args.units, args.periods, seed=args.seed, unbalanced=args.unbalanced,
-                       gaps=args.gaps, order=args.order, rows_per_file=args.rows_per_file,
-                       row_group_size=args.row_group_size, compression=args.compression,
-                       overwrite=args.overwrite)
+        if args.scenario == "couriers":
+            if args.depots is None:
+                raise DatagenError("The couriers scenario needs --depots, the number of depots employing couriers.")
+            out = generate_couriers(args.out_dir, args.units, args.depots, args.periods, seed=args.seed,
+                                    move_share=args.move_share, rows_per_file=args.rows_per_file,
+                                    row_group_size=args.row_group_size, compression=args.compression,
+                                    overwrite=args.overwrite)
+        else:
+            out = generate(args.out_dir, args.units, args.periods, seed=args.seed, unbalanced=args.unbalanced,
+                           gaps=args.gaps, order=args.order, rows_per_file=args.rows_per_file,
+                           row_group_size=args.row_group_size, compression=args.compression,
+                           overwrite=args.overwrite)
     except DatagenError as exc:
         print(exc, file=sys.stderr)
         return 2

@@ -77,7 +77,10 @@ class PartWriter:
     `row_group_size` rows except the last of each file.
     """
 
-    def __init__(self, folder, rows_per_file, row_group_size, compression):
+    def __init__(self, folder, rows_per_file, row_group_size, compression, schema=SCHEMA,
+                 dictionary_columns=_DICTIONARY_COLUMNS):
+        self._schema = schema
+        self._dictionary_columns = dictionary_columns
         self._folder = folder
         self._rows_per_file = rows_per_file
         self._row_group_size = row_group_size
@@ -88,12 +91,12 @@ class PartWriter:
         self._files = []
 
     def write(self, table):
-        """Append `table` (schema SCHEMA) to the current file or a new one."""
+        """Append `table` (the writer's schema, SCHEMA by default) to the current file or a new one."""
         if self._writer is None or self._files[-1][1] + table.num_rows > self._rows_per_file:
             self._close_file()
             name = f"part-{len(self._files):05d}.parquet"
-            self._writer = pq.ParquetWriter(self._folder / name, SCHEMA, compression=self._compression,
-                                            use_dictionary=_DICTIONARY_COLUMNS)
+            self._writer = pq.ParquetWriter(self._folder / name, self._schema, compression=self._compression,
+                                            use_dictionary=self._dictionary_columns)
             self._files.append([name, 0])
         self._files[-1][1] += table.num_rows
         self._pending.append(table)

@@ -23,6 +23,14 @@ _RULES = {
 }
 
 
+def check_rules(options, rules):
+    """Raise DatagenError for the first option that breaks its rule (name: (flag, test, expected))."""
+    for name, (flag, test, expected) in rules.items():
+        value = getattr(options, name)
+        if not test(value):
+            raise DatagenError(f"The {name} option ({flag}) must be {expected}; got {value!r}.")
+
+
 def _is_int(value):
     return isinstance(value, numbers.Integral) and not isinstance(value, bool)
 
@@ -47,10 +55,7 @@ class Options:
     compression: str = "snappy"
 
     def __post_init__(self):
-        for name, (flag, test, expected) in _RULES.items():
-            value = getattr(self, name)
-            if not test(value):
-                raise DatagenError(f"The {name} option ({flag}) must be {expected}; got {value!r}.")
+        check_rules(self, _RULES)
         if self.unbalanced > 0 and self.n_periods < 2:
             raise DatagenError("The unbalanced option (--unbalanced) needs n_periods >= 2, so that a "
                                f"depot can enter late or leave early; got n_periods={self.n_periods}.")

@@ -8,6 +8,8 @@
 --          {{column_values}}     per numeric column j: CAST(column AS DOUBLE) AS v_j;
 --          {{unit_aggregates}}   per numeric column j: regr_sxx(v_j, v_j) AS ss_j, the unit's sum
 --                                of squared deviations from its own mean (streaming, offset-safe);
+--          {{periods_per_unit}}  distinct periods -> units: histogram(n_periods), or on an engine
+--                                without it pairs [n_periods, units] from a subquery over per_unit;
 --          {{column_totals}}     per numeric column j: fsum(ss_j) AS within_ss_j and the count of
 --                                units with ss_j > 0 AS varying_units_j.
 -- params:  $first, $step         the grid (used by {{slot}});
@@ -37,5 +39,5 @@ SELECT count(*) AS n_units,
        coalesce(sum(last_slot - first_slot + 1 - n_periods), 0) AS missing_unit_periods,
        count(*) FILTER (WHERE n_rows > n_periods) AS units_with_duplicates,
        coalesce(sum(n_rows - n_periods), 0) AS duplicate_rows,
-       histogram(n_periods) AS periods_per_unit{{column_totals}}
+       {{periods_per_unit}} AS periods_per_unit{{column_totals}}
 FROM per_unit

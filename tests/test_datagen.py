@@ -332,3 +332,51 @@ def test_cli_write_failure_exits_1_with_one_sentence(tmp_path, capsys):
     err = capsys.readouterr().err
     assert err.startswith(f"Could not write {tmp_path / 'file' / 'p'}: ") and err.count("\n") == 1
     assert sorted(p.name for p in tmp_path.iterdir()) == ["file"]
+
+
+# ---------------------------------------------------------------- couriers by year (three effects)
+
+COURIERS = dict(n_couriers=300, n_depots=25, n_years=6, seed=3)
+
+
+def test_couriers_panel_is_complete_sorted_and_reproducible(tmp_path):
+    first = datagen.generate_couriers(tmp_path / "a", **COURIERS)
+    second = datagen.generate_couriers(tmp_path / "b", **COURIERS)
+    assert (first / "part-00000.parquet").read_bytes() == (second / "part-00000.parquet").read_bytes()
+    table = pq.read_table(first / "part-00000.parquet").to_pandas()
+    assert len(table) == 300 * 6 == datagen.load_truth(first)["n_rows"]
+    assert table.groupby("courier").size().eq(6).all()
+    assert table[["courier", "year"]].equals(table[["courier", "year"]].sort_values(["courier", "year"]))
+    assert set(table["depot"]) <= set(range(1, 26))
+
+
+def test_couriers_move_at_the_asked_share(tmp_path):
+    folder = datagen.generate_couriers(tmp_path / "m", n_couriers=4000, n_depots=50, n_years=5, move_share=0.3)
+    table = pq.read_table(folder / "part-00000.parquet").to_pandas()
+    changed = table.groupby("courier")["depot"].diff().fillna(0).ne(0).sum()
+    moves = datagen.load_truth(folder)["n_moves"]
+    # a mover may draw its own depot again (1 in 50): changes are a little below the moves
+    assert 0.95 * moves <= changed <= moves
+    assert moves / (4000 * 4) == pytest.approx(0.3, abs=0.02)  # binomial sd ~0.004
+
+
+def test_couriers_truth_recovered_by_dummy_variable_least_squares(tmp_path):
+    """statsmodels OLS with courier, depot and year indicators recovers the true slopes
+    within four standard errors (a correct simulation of the stated model)."""
+    import pandas as pd
+    import statsmodels.api as sm
+
+    folder = datagen.generate_couriers(tmp_path / "t", n_couriers=400, n_depots=30, n_years=6, seed=1)
+    df = pq.read_table(folder / "part-00000.parquet").to_pandas()
+    x = pd.concat([df[["shifts", "night_share"]]] + [pd.get_dummies(df[c], prefix=c, drop_first=True, dtype=float)
+                                                     for c in ("courier", "depot", "year")], axis=1)
+    ols = sm.OLS(df["ln_pay"], sm.add_constant(x)).fit()
+    truth = datagen.load_truth(folder)["coefficients"]
+    for name, value in truth.items():
+        assert abs(ols.params[name] - value) < 4 * ols.bse[name], name
+
+
+def test_couriers_options_are_checked(tmp_path):
+    with pytest.raises(datagen.DatagenError, match="move_share"):
+        datagen.generate_couriers(tmp_path / "x", 10, 5, 3, move_share=1.5)
+    assert main([str(tmp_path / "y"), "--scenario", "couriers", "--units", "10", "--periods", "3"]) == 2

@@ -167,3 +167,34 @@ def test_chunked_shared_scores_equal_one_query(gappy, tmp_path, monkeypatch):
     assert many.scans <= 2 and len(models) >= 5
     for a, b in zip(many, one):
         assert_same(a, b)
+
+
+UNIT_AND_ROWS = [  # every meat a sum over units or over all rows: the per-unit score scan
+    dict(outcome="y", regressors=["x1", "x2"]),
+    dict(outcome="y", regressors=["x1", "x2", "x3"], variance="hc1"),
+    dict(outcome="y", regressors=["x3"]),
+    dict(outcome="y", regressors=["x2", "x3"], estimator="pooled", variance="hc1"),
+    dict(outcome="y", regressors=["x1"], estimator="pooled", variance="cluster"),
+    dict(outcome="y", regressors=["x1", "x3"], estimator="pooled", intercept=False, variance="hc1"),
+]
+
+
+def test_unit_and_row_meats_equal_each_models_fit(gappy):
+    # Units whose rows fall in different samples (x1, x2, x3 missing on different rows)
+    # are summed per sample; the others read as one cell. Reference: each model's own fit.
+    df, path = gappy
+    results = bigpanel.fit_many(path, UNIT_AND_ROWS, unit="unit", period="period")
+    assert results.scans == 2
+    for model, res in zip(UNIT_AND_ROWS, results):
+        assert_same(res, bigpanel.fit(path, unit="unit", period="period", **model))
+
+
+def test_complete_rows_share_one_cell_per_unit(tmp_path):
+    # No missing values: every unit has one row pattern (the fast path of both scans).
+    # Reference: each model's own fit.
+    df = unbalanced_panel(43, 50, 7)
+    df["x3"] = df["x1"] * 0.5 + df["period"] * 0.1
+    path = write_parquet(df, tmp_path / "complete.parquet")
+    results = bigpanel.fit_many(path, UNIT_AND_ROWS, unit="unit", period="period")
+    for model, res in zip(UNIT_AND_ROWS, results):
+        assert_same(res, bigpanel.fit(path, unit="unit", period="period", **model))

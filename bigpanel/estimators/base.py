@@ -44,6 +44,7 @@ class Equations:
     extra_effect: list = field(default_factory=list)
     effect_values: list = field(default_factory=list)  # every period with an effect (base included)
     effect_rows: np.ndarray | None = None  # each period's indicator row over the extra columns
+    absorption: object = None  # many effects: the bigpanel.sweeps.Absorption behind the equations
 
     def cancellation(self) -> float:
         """Largest ratio of raw to transformed sum of squares (digits lost by one pass)."""
@@ -94,6 +95,23 @@ class Estimator:
     def constant_in_scores(self) -> bool:
         """The constant is a score column (not absorbed into period effects)."""
         return self.constant
+
+    def levels_in_k_prime(self, executor, rows: Rows, eq: Equations) -> int | None:
+        """Absorbed levels counted in K' of the cluster factor; None: the unit and period
+        rule of :func:`bigpanel.inference.k_prime`."""
+        return None
+
+    def accumulation(self, eq: Equations) -> str | None:
+        """How the cross-product was accumulated, when the estimator says (else the fit's default)."""
+        return None
+
+    def absorption(self, eq: Equations) -> dict:
+        """How the effects were absorbed (the result's ``absorption``): the path and its method."""
+        if not self.absorbs_units:
+            return {}
+        if self.spec.period_effects:
+            return {"path": "exact", "method": "unit effects by per-unit sums, period effects as indicator columns (no iteration)"}
+        return {"path": "exact", "method": "unit effects by per-unit sums (no iteration)"}
 
     # ---- moments
     def first_pass(self, design: Design, pilot: np.ndarray | None = None) -> CrossProducts:

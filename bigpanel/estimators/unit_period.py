@@ -24,6 +24,10 @@ class UnitPeriod(Within):
     def extend_design(self, executor, design: Design) -> Design:
         return design
 
+    def absorption(self, eq: Equations) -> dict:
+        return {"path": "exact", "method": "unit and period effects: per-unit sums and presence patterns, exact on "
+                "unbalanced panels (Frisch-Waugh-Lovell; no iteration)"}
+
     def first_pass(self, design: Design, pilot: np.ndarray | None = None) -> CrossProducts:
         return CrossProducts(self.rows(design), "unit+period", "within")
 

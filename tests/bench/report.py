@@ -270,8 +270,11 @@ def to_markdown(s: dict) -> str:
         machine_markdown(s["machine"]),
         "## Settings",
         "",
-        f"- Panels: depots x {st['periods_per_unit']} months made by datagen, rows sorted by depot unless marked "
-        "\"by period\"; 5 regressors; every fit with unit clusters",
+        (f"- Panels: couriers x {st['periods_per_unit']} years made by datagen (a depot per 20 couriers, a tenth "
+         "of couriers moving each year), rows sorted by courier; 2 regressors; every fit with courier clusters"
+         if st.get("scenario") == "couriers" else
+         f"- Panels: depots x {st['periods_per_unit']} months made by datagen, rows sorted by depot unless marked "
+         "\"by period\"; 5 regressors; every fit with unit clusters"),
         f"- {st['repeat']} run(s) per case, each in a fresh process: wall time is the best run, peak memory the "
         "largest resident set of the process (interpreter and imports included)",
         f"- Threads: {threads}; DuckDB memory limit: {st['memory_limit'] or 'default'}; memory budget "

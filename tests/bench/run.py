@@ -42,6 +42,7 @@ from worker import CASES  # noqa: E402
 
 REPO = HERE.parents[1]
 PERIODS = 10  # months per depot in every generated panel
+YEARS, COURIERS_PER_DEPOT = 20, 20  # the couriers scenario: 20M rows are 1M couriers, 50k depots, 20 years
 DEFAULT_SIZES = "1m,10m,50m"
 BYTES = {"": 1, "b": 1, "kb": 10**3, "mb": 10**6, "gb": 10**9, "tb": 10**12,
          "kib": 2**10, "mib": 2**20, "gib": 2**30, "tib": 2**40}  # "GB" as DuckDB reads it: 10^9
@@ -92,9 +93,9 @@ def count_label(n: int) -> str:
 def _parser() -> _Parser:
     p = _Parser(prog="tests/bench/run.py", description=__doc__.split("\n\n")[0])
     p.add_argument("--sizes", default=DEFAULT_SIZES, help=f"panel sizes in rows (default {DEFAULT_SIZES}; add 100m for the large run)")
-    p.add_argument("--cases", default=",".join(c for c in CASES if CASES[c].group != "spark"),
-                   help="cases to run (the floor always runs; spark-* cases add Spark's own floor); default: all but "
-                        "the Spark cases")
+    p.add_argument("--cases", default=",".join(CASES),
+                   help="cases to run (the floor always runs; spark-* cases add Spark's own floor); default: all of "
+                        "the scenario's but the Spark cases")
     p.add_argument("--repeat", type=int, default=3, help="runs per case; the best wall time is reported (default 3)")
     p.add_argument("--threads", type=int, help="threads for DuckDB, polars and BLAS (default: all cores)")
     p.add_argument("--memory-limit", help="DuckDB memory_limit for the floor and bigpanel cases, e.g. 4GB")
@@ -103,6 +104,9 @@ def _parser() -> _Parser:
     p.add_argument("--data-dir", type=Path, default=Path("/tmp/bigpanel-data"), help="panel cache folder")
     p.add_argument("--out-dir", type=Path, default=REPO / "bench-results", help="where latest.json and latest.md go")
     p.add_argument("--timeout", type=float, default=3600, help="seconds before a case is stopped (default 3600)")
+    p.add_argument("--scenario", choices=("depots", "couriers"), default="depots",
+                   help="depots by 10 months (default), or couriers by 20 years with courier, depot and year "
+                        "effects (one panel per size, a depot per 20 couriers, a tenth moving each year)")
     return p
 
 
@@ -121,6 +125,12 @@ def _options(argv):
     unknown = [c for c in wanted if c not in CASES]
     if unknown:
         parser.error(f"invalid value for --cases: '{unknown[0]}' is not one of {', '.join(CASES)}")
+    if args.cases == ",".join(CASES):  # the default: every case of the scenario
+        wanted = [c for c in CASES if CASES[c].scenario == args.scenario and CASES[c].group != "spark"]
+    other = [c for c in wanted if c != "floor" and CASES[c].scenario != args.scenario]
+    if other:
+        parser.error(f"invalid value for --cases: '{other[0]}' runs on the {CASES[other[0]].scenario} panels, "
+                     f"not with --scenario {args.scenario}")
     if any(CASES[c].group == "spark" for c in wanted):
         wanted.append("spark-floor")
     args.cases = ["floor"] + [c for c in CASES if c in wanted and c != "floor"]
@@ -137,6 +147,9 @@ def plan(args) -> list[Panel]:
         name = f"depots_{count_label(rows // PERIODS)}_x{PERIODS}" + ("_by_period" if order == "period" else "")
         return args.data_dir / name
 
+    if args.scenario == "couriers":
+        return [Panel(count_label(n), n, "unit", "main", args.data_dir / f"couriers_{count_label(n // YEARS)}_x{YEARS}",
+                      tuple(args.cases)) for n in args.sizes]
     bigpanel_cases = tuple(c for c in args.cases if CASES[c].group in ("floor", "bigpanel"))
     panels = [Panel(count_label(n), n, "unit", "main", folder(n, "unit"), tuple(args.cases)) for n in args.sizes]
     companion = args.sizes[-1] // 10
@@ -157,6 +170,10 @@ def ensure_data(panels) -> None:
 
     for panel in panels:
         print(f"panel {panel.label}: {panel.folder}", file=sys.stderr)
+        if panel.folder.name.startswith("couriers_"):
+            datagen.ensure_couriers(panel.folder, n_couriers=panel.rows // YEARS,
+                                    n_depots=max(2, panel.rows // (YEARS * COURIERS_PER_DEPOT)), n_years=YEARS)
+            continue
         datagen.ensure(panel.folder, n_units=panel.rows // PERIODS, n_periods=PERIODS, order=panel.order)
 
 
@@ -267,7 +284,8 @@ def main(argv=None) -> int:
     settings = {"sizes": [count_label(n) for n in args.sizes], "cases": args.cases, "repeat": args.repeat,
                 "statistic": "best wall time of the runs; largest peak memory", "threads": args.threads,
                 "memory_limit": args.memory_limit, "memory_budget_bytes": args.memory_budget,
-                "periods_per_unit": PERIODS, "data_dir": str(args.data_dir),
+                "periods_per_unit": YEARS if args.scenario == "couriers" else PERIODS, "data_dir": str(args.data_dir),
+                "scenario": args.scenario,
                 "started_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(started)),
                 "elapsed_s": round(time.time() - started, 1)}
     machine["load_average_end"] = list(os.getloadavg())

@@ -39,11 +39,21 @@ class Case:
     run: Callable[[list[str], Settings], dict]
     imports: tuple[str, ...]  # imported before the clock starts
     about: str
+    scenario: str = "depots"  # the panels it runs on: "depots" (months) or "couriers" (years, three effects)
     setup: Callable[[], object] | None = None  # run before the clock starts (Spark's session)
 
 
 def _quote(name: str) -> str:
     return '"' + name.replace('"', '""') + '"'
+
+
+def _model(files) -> tuple[str, list[str], str, str]:
+    """Outcome, regressors, unit and period of the panel (its truth.json; the depots' by default)."""
+    truth = Path(files[0]).parent / "truth.json"
+    if truth.is_file():
+        t = json.loads(truth.read_text())
+        return t["outcome"], list(t["regressors"]), t["unit"], t["period"]
+    return OUTCOME, REGRESSORS, UNIT, PERIOD
 
 
 def floor(files, settings):
@@ -52,7 +62,8 @@ def floor(files, settings):
 
     config = {k: v for k, v in (("threads", settings.threads), ("memory_limit", settings.memory_limit),
                                 ("temp_directory", settings.temp_directory)) if v is not None}
-    columns = [_quote(c) for c in [OUTCOME, *REGRESSORS]]
+    outcome, regressors, _, _ = _model(files)
+    columns = [_quote(c) for c in [outcome, *regressors]]
     sums = ["count(*)"] + [f"sum({c})" for c in columns]
     sums += [f"sum({a} * {b})" for i, a in enumerate(columns) for b in columns[i:]]
     with duckdb.connect(config=config) as con:
@@ -76,6 +87,33 @@ def _bigpanel(estimator, effects=None, fold="as shipped"):
                               effects=effects, variance="cluster", cluster=UNIT, engine=engine)
         return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
                 "std_errors": [result.coef(term).std_error for term in REGRESSORS]}
+    return run
+
+
+def _couriers(effects: str, write: bool = False):
+    """A fit on the couriers panel (courier, depot and year effects available), clustered by
+    courier; ``write``: effects and residuals written back into a folder beside the panel's."""
+    def run(files, settings):
+        import shutil
+
+        import bigpanel
+
+        outcome, regressors, unit, period = _model(files)
+        engine = bigpanel.Engine(threads=settings.threads, memory_limit=settings.memory_limit,
+                                 temp_directory=settings.temp_directory)
+        folder = Path(files[0]).parent
+        target = folder.parent / f".{folder.name}-written" if write else None
+        if target is not None:
+            shutil.rmtree(target, ignore_errors=True)
+        result = bigpanel.fit(str(folder), outcome, regressors, unit, period, effects=effects, variance="cluster",
+                              cluster=unit, engine=engine, write_effects=target and str(target),
+                              write_residuals=target and str(target))
+        out = {"coefficients": [result.coef(term).estimate for term in regressors],
+               "std_errors": [result.coef(term).std_error for term in regressors]}
+        if target is not None:
+            out["written_bytes"] = sum(p.stat().st_size for p in target.iterdir())
+            shutil.rmtree(target, ignore_errors=True)
+        return out
     return run
 
 
@@ -236,11 +274,23 @@ CASES = {case.name: case for case in [
     Case("first-difference-sql-fold", "bigpanel", _bigpanel("first-difference", fold="sql"), _BP,
          "bigpanel first differences, unit clusters, unit fold summed in SQL"),
     Case("spark-floor", "spark", spark_floor, _SPARK,
-         "one Spark SQL query: count, sums and sums of products of outcome and regressors", _spark_session),
+         "one Spark SQL query: count, sums and sums of products of outcome and regressors", setup=_spark_session),
     Case("spark-within", "spark", _spark_fit("within"), _SPARK, "bigpanel within on Spark SQL, unit clusters",
-         _spark_session),
+         setup=_spark_session),
     Case("spark-first-difference", "spark", _spark_fit("first-difference"), _SPARK,
-         "bigpanel first differences on Spark SQL, unit clusters", _spark_session),
+         "bigpanel first differences on Spark SQL, unit clusters", setup=_spark_session),
+    Case("couriers-within", "bigpanel", _couriers("courier"), _BP,
+         "couriers: within (courier effects), courier clusters", "couriers"),
+    Case("couriers-within-write", "bigpanel", _couriers("courier", write=True), _BP,
+         "couriers: within (courier effects), effects and residuals written back", "couriers"),
+    Case("couriers-unit-year", "bigpanel", _couriers("courier,year"), _BP,
+         "couriers: courier and year effects (exact path), courier clusters", "couriers"),
+    Case("couriers-unit-year-write", "bigpanel", _couriers("courier,year", write=True), _BP,
+         "couriers: courier and year effects, effects and residuals written back", "couriers"),
+    Case("couriers-three-effects", "bigpanel", _couriers("courier,depot,year"), _BP,
+         "couriers: courier, depot and year effects (many-effects estimator), courier clusters", "couriers"),
+    Case("couriers-three-effects-write", "bigpanel", _couriers("courier,depot,year", write=True), _BP,
+         "couriers: courier, depot and year effects, effects and residuals written back", "couriers"),
     Case("pandas", "in-memory", pandas_within, ("numpy", "pandas"),
          "within in pandas: read, groupby-transform demean, lstsq, groupby-sum scores"),
     Case("polars-eager", "in-memory", polars_eager_within, ("numpy", "polars"),
