@@ -425,7 +425,7 @@ class Executor:
         rows = scan.rows
         total = moments.sum_function(self.chunks(), self.dialect)  # plain sums on one-thread chunks
         return sqlbuild.shared_moments_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
-                                           self.keys.step, scan.nesting_checks(), total)
+                                           self.keys.step, scan.nesting_checks(), total, self.dialect)
 
     def shared_meats(self, scan, requests: list, params: dict) -> None:
         """One scan: the meats of every recorded score request (index, Scores, k,

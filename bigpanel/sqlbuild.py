@@ -35,6 +35,8 @@ class Dialect:
     param_marker: str = "$"
     text_type: str = "VARCHAR"
     materialized: str = "AS MATERIALIZED"  # a CTE computed once (plain AS where unknown)
+    anti_join: str = "ANTI JOIN"
+    semi_join: str = "SEMI JOIN"
     one: str = "1.0"  # the DOUBLE one (Spark reads 1.0 as a DECIMAL)
 
     def quote_ident(self, name: str) -> str:
@@ -141,7 +143,7 @@ _MARKER_OR_QUOTED = re.compile(r"'(?:[^'\\]|\\.)*'|\"(?:[^\"\\]|\\.)*\"|`(?:[^`]
 
 DUCKDB = Dialect()
 SPARK = SparkDialect(name="spark", compensated="sum", param_marker=":", text_type="STRING", materialized="AS",
-                     one="CAST(1 AS DOUBLE)")
+                     anti_join="LEFT ANTI JOIN", semi_join="LEFT SEMI JOIN", one="CAST(1 AS DOUBLE)")
 # PostgreSQL: builders write DuckDB's SQL for it, and bigpanel.render writes PostgreSQL's
 # text from DuckDB's parse tree of each query (fsum and favg become sum and avg there, which
 # add rows in one order on one process; isfinite a comparison). The dialect tells builders
@@ -868,7 +870,8 @@ def sample_pairs(samples: Sequence[Sequence[int]]) -> list[tuple[int, int]]:
 
 
 def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
-                       nesting: Sequence[tuple[int, int]] = (), total: str = DUCKDB.compensated) -> str:
+                       nesting: Sequence[tuple[int, int]] = (), total: str = DUCKDB.compensated,
+                       dialect: Dialect = DUCKDB) -> str:
     """Cross-products of every sample in one scan, summed once per unit and row pattern
     (``shared_moments.sql``); ``nesting`` lists (sample, cluster position) pairs whose
     clusters are checked to hold whole units; ``total`` is the sum function (compensated
@@ -896,6 +899,7 @@ def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced:
     words = pattern_words(len(samples))
     word = "c.pat0" if words == 1 else ("CASE samples.word " + " ".join(f"WHEN {t} THEN c.pat{t}" for t in range(words)) + " END")
     return render("shared_moments", rows=rows, pattern=", ".join(pattern_items(samples, differenced, step)),
+                  materialized=dialect.materialized, anti_join=dialect.anti_join, semi_join=dialect.semi_join,
                   pattern_keys=", ".join(keys), cell_sums=", ".join(cell),
                   samples=", ".join(f"({s}, {s // PATTERN_BITS}, {s % PATTERN_BITS})" for s in range(len(samples))),
                   covers=f"({word} >> samples.bit) & 1 = 1", sample_sums=", ".join(per_sample),
@@ -1012,7 +1016,8 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
                   scores=", ".join(scores))
     if all(tuple(s) in (("k_unit",), ()) for s in sets):  # every meat is a sum over units: no cells of clusters
         gids = ", ".join(f"({grouping_id(keys, s)})" for s in sets)
-        return render("shared_unit_scores", **common, unit_totals=", ".join(unit_totals),
+        return render("shared_unit_scores", **common, unit_totals=", ".join(unit_totals), materialized=dialect.materialized,
+                      anti_join=dialect.anti_join, semi_join=dialect.semi_join,
                       unit_means="".join(unit_means), outer=", ".join(unit_outer), gids=gids)
     cell_keys = ["k_unit"] + [k for k in keys if k != "k_unit"]
     grouping_sets = "GROUPING SETS (" + ", ".join("(" + ", ".join(s) + ")" for s in sets) + ")"

@@ -222,6 +222,44 @@ def test_cli_fit_on_spark_returns_aggregates_only(spark, wagepan, capsys):
     assert received < 16_000
 
 
+def test_many_effects_refused_on_spark(spark, wagepan):
+    """Effects beyond the unit and the period need a private copy of the rows (many
+    effects), which bigpanel does not make on Spark: refused by name before any row is read."""
+    before = dict(SparkEngine.received)
+    with pytest.raises(InputError, match="does not make on Spark yet"):
+        _quiet_fit(wagepan, "lwage", "hours, union", "nr", "year", effects="nr, year, occ1", engine="spark")
+    assert SparkEngine.received == before
+
+
+def test_spec_file_source_on_spark(spark, wagepan, tmp_path):
+    """A spec file's source with engine = "spark" runs its models on Spark (batch runs,
+    bigpanel.batch): the model's JSON names the engine and holds DuckDB's numbers."""
+    import json
+
+    spec = tmp_path / "wages.toml"
+    spec.write_text(f"""[source]
+path = "{wagepan}"
+unit = "nr"
+period = "year"
+engine = "spark"
+
+[models.baseline]
+outcome = "lwage"
+regressors = ["hours", "union", "married"]
+""")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        report = bigpanel.run_spec(spec, out=tmp_path / "run")
+    assert report.exit_code == 0
+    payload = json.loads((tmp_path / "run" / "models" / "baseline.json").read_text())
+    assert payload["run"]["engine"] == "spark"
+    duck = _quiet_fit(wagepan, "lwage", "hours, union, married", "nr", "year")
+    np.testing.assert_allclose([c["estimate"] for c in payload["coefficients"]], [c.estimate for c in duck.coefficients],
+                               rtol=RELATIVE_TOLERANCE, atol=0)
+    np.testing.assert_allclose([c["std_error"] for c in payload["coefficients"]], [c.std_error for c in duck.coefficients],
+                               rtol=RELATIVE_TOLERANCE, atol=0)
+
+
 # ---------------------------------------------------------------- refusals and settings (no Spark query)
 
 def test_what_spark_cannot_do_is_refused(tmp_path, wagepan):
@@ -239,6 +277,9 @@ def test_what_spark_cannot_do_is_refused(tmp_path, wagepan):
         bigpanel.Engine(spark_master="local[2]")
     with pytest.raises(InputError, match="--engine must be one of duckdb, spark"):
         bigpanel.Engine(name="hadoop")
+    with pytest.raises(InputError, match="'write_residuals' is not available with --engine spark"):
+        bigpanel.fit(wagepan, "lwage", "hours", "nr", "year", engine="spark", write_residuals=tmp_path / "out")
+    assert not (tmp_path / "out").exists()
 
 
 def test_master_comes_from_option_environment_or_defaults(tmp_path):
