@@ -147,10 +147,23 @@ def _on_signal(signum: int, frame: object) -> None:
         raise Interrupted(signum)
 
 
+def _unraisable(hook):
+    """Python drops an exception raised where it cannot propagate (a weakref callback of the
+    import machinery, a finaliser) and prints it: the stop is already recorded in
+    ``_received`` and acted on at the next check, so our own :class:`Interrupted` is not printed."""
+
+    def quiet(info):
+        if not isinstance(info.exc_value, Interrupted):
+            hook(info)
+
+    return quiet
+
+
 def install() -> None:
     """Install the stop-signal handlers (main thread only)."""
     for sig in STOP_SIGNALS:
         signal.signal(sig, _on_signal)
+    sys.unraisablehook = _unraisable(sys.unraisablehook)
 
 
 def run(argv: list[str] | None = None) -> int:
@@ -162,6 +175,8 @@ def run(argv: list[str] | None = None) -> int:
         try:
             from .cli import main as cli_main  # the heavy imports happen here, handlers in place
 
+            if _received is not None:  # a stop that landed where Python could not raise it
+                raise Interrupted(_received)
             code = cli_main(argv)
         finally:
             _closing = True  # from here on clean-up runs to its end
