@@ -58,7 +58,6 @@ def _pyspark():
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            import pyspark.sql  # noqa: F401
             from pyspark.sql import SparkSession
     except ImportError:
         raise InputError("The spark engine needs pyspark, which is not installed. "

@@ -185,7 +185,7 @@ def test_spark_parser_refuses_anything_but_one_query(spark, wagepan):
     engine = SparkEngine(open_source(wagepan, engine="spark"), spark)
     try:
         views = {t.name for t in spark.catalog.listTables()}
-        for sql in (f"CREATE TEMPORARY VIEW bigpanel_x AS SELECT 1",
+        for sql in ("CREATE TEMPORARY VIEW bigpanel_x AS SELECT 1",
                     f"SELECT 1; DROP VIEW {engine.view}",
                     f"INSERT INTO {engine.view} SELECT * FROM {engine.view}"):
             with pytest.raises(BigpanelError, match="not read as exactly one query|does not read as exactly one query"):
