@@ -25,6 +25,7 @@ from __future__ import annotations
 import logging
 import os
 import re
+import tempfile
 import threading
 import uuid
 import warnings
@@ -118,8 +119,12 @@ def spark_session(master: str | None = None):
                    .config("spark.sql.ansi.enabled", "false")  # x / 0 is NULL, as in DuckDB
                    .config("spark.driver.extraJavaOptions", f"-Dlog4j2.configurationFile={LOG_CONFIG.as_uri()}"))
         if is_local(url):
+            # Spark makes its (unused) warehouse folder when it starts: in the system's temporary
+            # folder, not the user's working folder
+            warehouse = os.path.join(tempfile.gettempdir(), "bigpanel-spark-warehouse")
             builder = (builder.config("spark.driver.host", "127.0.0.1").config("spark.driver.bindAddress", "127.0.0.1")
-                       .config("spark.sql.shuffle.partitions", str(LOCAL_SHUFFLE_PARTITIONS)))
+                       .config("spark.sql.shuffle.partitions", str(LOCAL_SHUFFLE_PARTITIONS))
+                       .config("spark.sql.warehouse.dir", Path(warehouse).as_uri()))
         try:
             session = builder.getOrCreate()
         except Exception as exc:  # noqa: BLE001 - py4j and the JVM launcher raise their own kinds
