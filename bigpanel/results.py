@@ -87,8 +87,8 @@ class FitResult:
     where: str | None
     warnings: tuple[str, ...] = field(default=())
     f_unavailable: str = ""  # why there is no joint test (f_stat and f_p_value are then NaN)
-    # how it ran: {"threads": N, "version": "x.y.z", "engine": "duckdb"}, and another engine's
-    # run_facts() (its name, queries, bytes received)
+    # how it ran: {"threads": N, "version": "x.y.z"}, and another engine's run_facts() (its
+    # name, and what it reports: Spark its master, PostgreSQL queries and bytes fetched)
     run: dict = field(default_factory=dict)
     # how the effects were absorbed: {"path": "exact" | "iterative", "method": ...}; iterative adds
     # effects and levels, iterations, tolerance, achieved, converged, singletons, redundancies
@@ -239,13 +239,13 @@ def _footer(r: "FitResult", notes: bool) -> list[str]:
     return lines
 
 
-def run_record(threads: int, engine: str = "duckdb") -> dict:
+def run_record(threads: int) -> dict:
     """The ``run`` entry of a result's JSON: the thread count and the tool's version. The
     numbers do not depend on the threads (moments.plan_chunks); the entry says how the
     run was made, and is the one field that two runs with other threads may differ in."""
     from . import __version__
 
-    return {"threads": int(threads), "version": __version__, "engine": engine}
+    return {"threads": int(threads), "version": __version__}
 
 
 def _num(x: float) -> str:
