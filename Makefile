@@ -13,7 +13,7 @@ $(BASE): pyproject.toml
 	touch $(BASE)
 
 $(TEST): $(BASE)
-	$(VENV)/bin/pip install -e '.[test,postgres]'
+	$(VENV)/bin/pip install -e '.[test,postgres,spark]'
 	touch $(TEST)
 
 demo: $(BASE)

@@ -19,7 +19,7 @@ import typer
 
 from . import interrupts
 from .errors import BigpanelError, BigpanelWarning, InputError, echo
-from .params import PARAMETERS
+from .params import PARAMETERS, SOURCE_PARAMETERS
 
 if TYPE_CHECKING:  # the source module imports DuckDB: only the commands that read data load it
     from .source import Source
@@ -67,11 +67,14 @@ def _source_from_options(
     threads: int | None = None,
     memory_limit: str | None = None,
     temp_directory: str | None = None,
+    engine_name: str | None = None,
+    spark_master: str | None = None,
 ) -> Source:
     """Build the Source described by the shared command-line options."""
     from .source import Engine, open_source
 
-    engine = Engine(threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
+    engine = Engine(threads=threads, memory_limit=memory_limit, temp_directory=temp_directory,
+                    name=engine_name or SOURCE_PARAMETERS["engine"].default, spark_master=spark_master)
     nulls = [token for item in csv_nulls or () for token in item.split(",")] or None
     return open_source(source, table=table, query=query, where=where, csv_types=_parse_csv_types(csv_types), engine=engine,
                        csv_nulls=nulls)
@@ -156,6 +159,10 @@ def checkup_command(
 Estimator = Enum("Estimator", {v.replace("-", "_"): v for v in PARAMETERS["estimator"].choices}, type=str)
 VarianceKind = Enum("VarianceKind", {v: v for v in PARAMETERS["variance"].choices}, type=str)
 LevelCount = Enum("LevelCount", {v.replace("-", "_"): v for v in PARAMETERS["absorbed_levels"].choices}, type=str)
+EngineName = Enum("EngineName", {v: v for v in SOURCE_PARAMETERS["engine"].choices}, type=str)
+EngineOpt = Annotated[Optional[EngineName], typer.Option(SOURCE_PARAMETERS["engine"].option, help=SOURCE_PARAMETERS["engine"].help)]
+SparkMasterOpt = Annotated[Optional[str], typer.Option(SOURCE_PARAMETERS["spark_master"].option,
+                                                       help=SOURCE_PARAMETERS["spark_master"].help)]
 
 
 def _model_option(name: str):
@@ -196,13 +203,16 @@ def fit_command(
     threads: ThreadsOpt = None,
     memory_limit: MemoryLimitOpt = None,
     temp_directory: TempDirectoryOpt = None,
+    engine: EngineOpt = None,
+    spark_master: SparkMasterOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Estimate a pooled, within, first-difference, between or random-effects regression with cluster-robust inference."""
     from .fit import fit
 
     src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types, csv_nulls=csv_null,
-                               threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
+                               threads=threads, memory_limit=memory_limit, temp_directory=temp_directory,
+                               engine_name=engine.value if engine else None, spark_master=spark_master)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", BigpanelWarning)
         result = fit(src, outcome, regressors, unit, period, estimator=estimator.value, effects=effects,

@@ -108,11 +108,12 @@ def numeric_expression(engine, text: str, sql: str, what: str, notes: list[str])
             if cols[name].upper() == "VARCHAR":
                 advice += " If it holds numbers and tokens such as NA, read those as missing with --csv-null."
             raise InputError(f"Column '{echo(name)}' in {engine.label} has type {cols[name]}, not a number. {advice}")
-        return sqlbuild.quote_ident(name)
+        return sqlbuild.quote_ident(name, engine.dialect)
     if _BASE_TEN_LOG.search(sql):
         msg = f"{what} {shown(text)} uses log(), which in SQL is the base-10 logarithm; ln() is the natural one"
         if msg not in notes:
             notes.append(msg)
+    sql = engine.expression(sql, what, text)  # the checked tree in the engine's dialect
     kind = engine.describe_expression(sql, what, text)
     if not engine.is_numeric(kind):
         raise InputError(f"{what} {shown(text)} has type {kind}, not a number. Give a numeric expression.")
@@ -139,13 +140,13 @@ def build_design(executor, spec: FitSpec) -> Design:
         if term.kind == "levels":
             if term.expr not in cols:
                 raise unknown_column(term.expr, engine.label, cols)
-            quoted = sqlbuild.quote_ident(term.expr)
+            quoted = sqlbuild.quote_ident(term.expr, engine.dialect)
             levels = distinct_levels(executor, quoted)
             base = term.base if term.base is not None else (levels[0] if levels else None)
             if base not in levels:
                 raise InputError(f"Term '{echo(term.text)}': base level '{echo(base)}' does not occur in column '{echo(term.expr)}'; "
                                  f"name one of its levels ({echo(', '.join(map(str, levels[:10])))}) as the base.")
-            columns += [Column(sqlbuild.indicator_sql(quoted, level), "indicator", f"{term.expr}={level}")
+            columns += [Column(sqlbuild.indicator_sql(quoted, level, engine.dialect), "indicator", f"{term.expr}={level}")
                         for level in levels if level != base]
         else:
             text = term.text if term.kind == "expr" else term.expr
@@ -162,9 +163,10 @@ def build_design(executor, spec: FitSpec) -> Design:
 
 def period_indicators(executor, spec: FitSpec) -> list[Column]:
     """Indicator columns for every period but the first (period effects as columns)."""
-    quoted = sqlbuild.quote_ident(spec.period)
+    dialect = executor.engine.dialect
+    quoted = sqlbuild.quote_ident(spec.period, dialect)
     values = sorted(distinct_levels(executor, quoted), key=_period_key)[1:]
-    return [Column(sqlbuild.indicator_sql(quoted, v), "effect", f"{spec.period}={v}") for v in values]
+    return [Column(sqlbuild.indicator_sql(quoted, v, dialect), "effect", f"{spec.period}={v}") for v in values]
 
 
 def _period_key(value: str):

@@ -47,6 +47,11 @@ class EngineAdapter(Protocol):
         """Refuse anything but one scalar expression; return the SQL rendered from its
         checked parse tree (DuckDB's parser; rendered in this engine's dialect)."""
 
+    def expression(self, sql: str, what: str, text: str) -> str:
+        """A checked expression (the SQL DuckDB rendered from its checked tree) in this
+        engine's dialect, rendered from the same tree; refused when the engine lacks one of
+        its functions."""
+
     def describe_expression(self, expression: str, what: str, text: str) -> str:
         """The type of a checked expression over the source, reading no rows."""
 
@@ -88,8 +93,13 @@ class EngineAdapter(Protocol):
 
 
 def open_session(source):
-    """An open session on a source: :class:`~bigpanel.source.Session` (DuckDB), or
-    :class:`~bigpanel.pg.PostgresSession` for a ``postgres`` source (same methods)."""
+    """An open session on a source: :class:`~bigpanel.source.Session` (DuckDB),
+    :class:`~bigpanel.pg.PostgresSession` for a ``postgres`` source (same methods), or for
+    the spark engine its adapter itself (:class:`~bigpanel.spark.SparkEngine`)."""
+    if source.engine.name == "spark":
+        from .spark import SparkEngine
+
+        return SparkEngine(source)
     if source.kind == "postgres":
         from .pg import PostgresSession
 
@@ -99,14 +109,17 @@ def open_session(source):
 
 @contextmanager
 def open_engine(source) -> Iterator["EngineAdapter"]:
-    """The engine adapter for a source, open for the block: DuckDB, or PostgreSQL for a
-    ``postgres`` source (:mod:`bigpanel.pg`)."""
+    """The engine adapter for a source, open for the block: DuckDB, PostgreSQL for a
+    ``postgres`` source (:mod:`bigpanel.pg`), or Spark SQL when the source's engine
+    settings name it (:mod:`bigpanel.spark`)."""
     with open_session(source) as session:
         yield adapter(session)
 
 
 def adapter(session) -> "EngineAdapter":
     """The engine adapter on an open session (:func:`open_session`)."""
+    if session.source.engine.name == "spark":  # Spark's session is its adapter
+        return session
     if session.source.kind == "postgres":
         from .pg import PostgresEngine
 
@@ -142,6 +155,9 @@ class DuckDBEngine:
 
     def check_expression(self, text: str, what: str) -> str:
         return expression_sql(text, what)
+
+    def expression(self, sql: str, what: str, text: str) -> str:
+        return sql
 
     def describe_expression(self, expression: str, what: str, text: str) -> str:
         return self.session.describe_expression(expression, what, text)

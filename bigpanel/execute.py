@@ -72,6 +72,10 @@ class Executor:
     def label(self) -> str:
         return self.engine.label
 
+    @property
+    def dialect(self) -> sqlbuild.Dialect:
+        return self.engine.dialect
+
     def chunks(self) -> list:
         if self._chunks is None:
             self._chunks = self.engine.plan_chunks(self.keys.unit)
@@ -109,7 +113,7 @@ class Executor:
             kind = _period_kind(self.engine.columns()[self.keys.period])
             grid = None
             if kind is not None:
-                sql = sqlbuild.distinct_periods_sql(self.engine.filtered(), self.keys.period, kind, MAX_PERIODS + 1)
+                sql = sqlbuild.distinct_periods_sql(self.engine.filtered(), self.keys.period, kind, MAX_PERIODS + 1, self.dialect)
                 values = self.engine.run(sql).column("period_value")
                 grid = _period_grid(values, kind) if len(values) <= MAX_PERIODS else None
             self._grid = (kind, grid)
@@ -140,7 +144,7 @@ class Executor:
             raise InputError(f"Column '{echo(self.keys.period)}' in {self.label} is spaced irregularly: consecutive periods "
                              f"are {shown}{unit} apart, so no step separates them and differences and lags are undefined. "
                              "Give --period-step, or a period index column with a regular step.")
-        slot = sqlbuild.period_slot_sql(self.keys.period, kind, grid.mode, grid.first_ordinal, grid.slot_step)
+        slot = sqlbuild.period_slot_sql(self.keys.period, kind, grid.mode, grid.first_ordinal, grid.slot_step, self.dialect)
         self.keys = Keys(self.keys.unit, self.keys.period, 1, slot)
         self.slot_values = {(o - grid.first_ordinal) // grid.slot_step: v for o, v in zip(grid.ordinals, grid.periods)}
         self._bounds = None
@@ -162,7 +166,7 @@ class Executor:
         chunk = chunk or moments.Chunk()
         source = self.engine.filtered(chunk, k.unit, PROBE_ROWS if head else None)
         sql = sqlbuild.design_rows_sql(source, k.unit, k.period, list(rows.clusters), list(rows.columns), k.step,
-                                       k.period_sql, rows.effects, rows.weight)
+                                       k.period_sql, rows.effects, weight=rows.weight, dialect=self.dialect)
         if rows.differenced:
             sql = sqlbuild.differenced_rows_sql(sql, len(rows.clusters), rows.q, streaming and chunk.files is not None and not head,
                                                 rows.weighted)
@@ -193,9 +197,10 @@ class Executor:
         q = len(columns)
         k = self.keys
         head = self.engine.filtered(head=PROBE_ROWS)
-        rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step, k.period_sql, weight=weight)
+        rows = sqlbuild.design_rows_sql(head, k.unit, k.period, [], list(columns), k.step, k.period_sql, weight=weight,
+                                        dialect=self.dialect)
         zero = {f"s{j}": 0.0 for j in range(q)} | {f"d{j}": 1.0 for j in range(q)}
-        row = self.run_once(sqlbuild.probe_sql(rows, q, weighted=weight is not None), zero, scan=False)[0]
+        row = self.run_once(sqlbuild.probe_sql(rows, q, weighted=weight is not None, dialect=self.dialect), zero, scan=False)[0]
         scales = np.array([power_of_two_scale(row[f"m{j}"]) for j in range(q)])
         shifts = np.array([row[f"a{j}"] if row[f"a{j}"] is not None else 0.0 for j in range(q)], dtype=float)
         return np.where(np.isfinite(shifts), shifts, 0.0), scales
@@ -203,7 +208,7 @@ class Executor:
     def period_bounds(self) -> tuple[object, object]:
         """First and last period in the filtered source (reads the period column only)."""
         if self._bounds is None:
-            sql = sqlbuild.period_bounds_sql(self.engine.filtered(), self.keys.period, self.keys.period_sql)
+            sql = sqlbuild.period_bounds_sql(self.engine.filtered(), self.keys.period, self.keys.period_sql, self.dialect)
             row = self.run_once(sql)[0]
             self._bounds = (row["lo"], row["hi"])
         return self._bounds
@@ -233,7 +238,7 @@ class Executor:
         """Rows by reason, over all rows (differences formed after sorting)."""
         key = (rows.columns, rows.differenced, rows.weight)
         if key not in self._counted:
-            sql = sqlbuild.row_counts_sql(self.rows_sql(rows), rows.q, rows.differenced, self.keys.step,
+            sql = sqlbuild.row_counts_sql(self.rows_sql(rows), rows.q, rows.differenced, self.keys.step, dialect=self.dialect,
                                           required=self.effect_keys(rows), weighted=rows.weighted)
             self._counted[key] = self.run_once(sql, params)[0]
         return self._counted[key]
@@ -241,7 +246,7 @@ class Executor:
     def distinct(self, expression: str, limit: int) -> list[str]:
         """Distinct non-null values of an expression (as text, sorted; at most ``limit``)."""
         if expression not in self._levels:
-            sql = sqlbuild.distinct_values_sql(self.engine.filtered(), expression, limit)
+            sql = sqlbuild.distinct_values_sql(self.engine.filtered(), expression, limit, dialect=self.dialect)
             # sorted here too: an engine may order text by its collation (PostgreSQL's locale),
             # and the first level is the default base (code point order = DuckDB's byte order)
             self._levels[expression] = sorted(r["v"] for r in self.run_once(sql))
@@ -252,7 +257,8 @@ class Executor:
         the number of such keys ``n_keys`` (a GROUP BY of the two key columns; once)."""
         if self._duplicates is None:
             k = self.keys
-            sql = sqlbuild.checkup_duplicate_scan_sql(self.engine.filtered(), k.unit, sqlbuild.quote_ident(k.period))
+            sql = sqlbuild.checkup_duplicate_scan_sql(self.engine.filtered(), k.unit, sqlbuild.quote_ident(k.period, self.dialect),
+                                                      self.dialect)
             self._duplicates = self.run_once(sql, {"n_examples": 5}, scan=False)
             self._keys_unique = not self._duplicates
         return self._duplicates
@@ -294,7 +300,7 @@ class Executor:
         """The request's aggregates, one list of rows per chunk (in chunk order)."""
         rows = request.rows
         chunks = [moments.Chunk()] if request.head else self.chunks()
-        total = moments.sum_function(chunks)
+        total = moments.sum_function(chunks, self.dialect)
         q = rows.q
         p = dict(params)
         streaming = self.streaming
@@ -316,7 +322,7 @@ class Executor:
             make = lambda c: sqlbuild.unit_size_pass_sql(sqlbuild.unit_moments_sql(used(c), q, total), q, total)  # noqa: E731
         elif request.fold == "unit+period":
             first, last = self.period_range()
-            make = lambda c: sqlbuild.twoway_pass_sql(used(c), q, first, last, total)  # noqa: E731
+            make = lambda c: sqlbuild.twoway_pass_sql(used(c), q, first, last, total, self.dialect)  # noqa: E731
         else:
             expand = request.pilot is not None
             if expand:
@@ -431,9 +437,9 @@ class Executor:
         """The SQL of a shared scan's first pass on one chunk (every chunk runs the same
         text; the unit range is a parameter). Builds text only: a dry run shows it."""
         rows = scan.rows
-        total = moments.sum_function(self.chunks())  # plain sums on one-thread chunks
+        total = moments.sum_function(self.chunks(), self.dialect)  # plain sums on one-thread chunks
         return sqlbuild.shared_moments_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
-                                           self.keys.step, scan.nesting_checks(), total)
+                                           self.keys.step, scan.nesting_checks(), total, self.dialect)
 
     def shared_meats(self, scan, requests: list, params: dict) -> None:
         """One scan: the meats of every recorded score request (index, Scores, k,
@@ -447,11 +453,11 @@ class Executor:
         keys = [k for k in ["k_unit"] + [f"k_c{i}" for i in range(len(scan.clusters))] if any(k in s for s in sets)]
 
         chunked = all(s in (("k_unit",), ()) for s in sets)  # groups inside units: chunks add up
-        total = moments.sum_function(self.chunks() if chunked else [None])
+        total = moments.sum_function(self.chunks() if chunked else [None], self.dialect)
 
         def make(chunk):
             return sqlbuild.shared_scores_sql(self.rows_sql(rows, chunk), scan.samples, rows.differenced,
-                                              self.keys.step, models, keys, sets, total)
+                                              self.keys.step, models, keys, sets, total, self.dialect)
 
         if chunked:
             by_gid: dict = {}
@@ -521,11 +527,11 @@ class Executor:
         q = rows.q
         if request.kind in ("units", "nested"):
             by_unit = request.kind == "units"
-            total = moments.sum_function(self.chunks())
+            total = moments.sum_function(self.chunks(), self.dialect)
 
             def make(c):
                 return sqlbuild.unit_scores_sql(self.used_sql(rows, c, streaming=self.streaming), q, request.constant, request.demean,
-                                                request.n_periods, by_unit, total, rows.weighted)
+                                                request.n_periods, by_unit, total, weighted=rows.weighted, dialect=self.dialect)
 
             tables = self.run_chunked(make, p)
             if by_unit:
@@ -540,10 +546,10 @@ class Executor:
         used = self.used_sql(rows)
         if request.kind == "rows":
             row = self.run_once(sqlbuild.residual_moments_sql(used, q, request.constant, request.demean, request.n_periods,
-                                                              weighted=rows.weighted), p)[0]
+                                                              weighted=rows.weighted, dialect=self.dialect), p)[0]
             return [moments.symmetric(row, "h", k)], []
         sql = sqlbuild.cluster_scores_sql(used, q, request.constant, request.demean, request.n_periods, n_clusters,
-                                          weighted=rows.weighted)
+                                          weighted=rows.weighted, dialect=self.dialect)
         out = {r["gid"]: (moments.symmetric(r, "o", k), int(r["n_groups"])) for r in self.run_once(sql, p)}
         order = [0] if n_clusters == 1 else [1, 2, 0]  # GROUPING(c0, c1): c0 only 01, c1 only 10, both 00
         return [out[g][0] for g in order], [out[g][1] for g in order]

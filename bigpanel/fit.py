@@ -30,7 +30,7 @@ from .inference import MAX_EXPANDED, Notes, finish
 from .params import check_keys
 from .plan import ScanPlan, member_params, prefill
 from .results import FitResult
-from .source import Engine, as_source
+from .source import Engine, as_engine, as_source
 from .spec import FitSpec
 from .weights import check_weights
 
@@ -53,7 +53,7 @@ def fit(
     table: str | None = None,
     query: str | None = None,
     csv_types: dict | None = None,
-    engine: Engine | None = None,
+    engine: Engine | str | None = None,
     csv_nulls=None,
     absorbed_levels: str | None = None,
     effects_tolerance: float | None = None,
@@ -65,6 +65,7 @@ def fit(
     instruments=None,
     test=None,
     serial_test: bool | None = None,
+    spark_master: str | None = None,
 ) -> FitResult:
     """Estimate a panel regression on a source too large for memory.
 
@@ -122,7 +123,11 @@ def fit(
         Within and first differences: test the errors for serial correlation (one more
         scan; ``tests.serial_correlation``).
     table, query, csv_types, engine
-        As in :func:`bigpanel.open_source`.
+        As in :func:`bigpanel.open_source`; ``engine`` is also an engine's name:
+        ``"spark"`` runs the plan as Spark SQL (Parquet sources).
+    spark_master : str, optional
+        With ``engine="spark"``: the Spark master URL (default: ``SPARK_MASTER``, else
+        ``spark.master`` in spark-defaults.conf, else local mode).
     csv_nulls : str or list of str, optional
         Extra CSV tokens read as missing (``"NA,."``); empty fields always are.
     write_effects : str or path, optional
@@ -147,12 +152,12 @@ def fit(
                          absorbed_levels, effects_tolerance, effects_iterations, write_effects=write_effects,
                          write_residuals=write_residuals, weights=weights, endogenous=endogenous,
                          instruments=instruments, test=test, serial_test=serial_test)
-    src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
+    src = as_source(source, where, table, query, csv_types, as_engine(engine, spark_master), csv_nulls)
     spec = writeback.checked(spec, src)
     notes = Notes([])
     try:
-        with open_engine(src) as engine_:
-            executor = Executor(engine_, Keys(spec.unit, spec.period, spec.period_step))
+        with open_engine(src) as adapter:
+            executor = Executor(adapter, Keys(spec.unit, spec.period, spec.period_step))
             return estimate(executor, spec, notes)
     finally:
         emit(notes, stacklevel=3)
@@ -182,8 +187,9 @@ def fit_many(
     table: str | None = None,
     query: str | None = None,
     csv_types: dict | None = None,
-    engine: Engine | None = None,
+    engine: Engine | str | None = None,
     csv_nulls=None,
+    spark_master: str | None = None,
 ) -> FitList:
     """Estimate many models on one source, sharing scans.
 
@@ -204,12 +210,12 @@ def fit_many(
         row transform (levels, differences); each model keeps its own sample.
     """
     specs = [_model_spec(m, i, unit, period, period_step) for i, m in enumerate(models)]
-    src = as_source(source, where, table, query, csv_types, engine, csv_nulls)
+    src = as_source(source, where, table, query, csv_types, as_engine(engine, spark_master), csv_nulls)
     specs = [writeback.checked(spec, src) for spec in specs]
     notes = [Notes([]) for _ in specs]
     try:
-        with open_engine(src) as engine_:
-            executor = Executor(engine_, Keys(unit, period, specs[0].period_step if specs else None))
+        with open_engine(src) as adapter:
+            executor = Executor(adapter, Keys(unit, period, specs[0].period_step if specs else None))
             prepared = [prepare(executor, spec, n) for spec, n in zip(specs, notes)]
             plan = ScanPlan.build(prepared)
             results: list = [None] * len(specs)
@@ -288,6 +294,9 @@ def emit(notes: Notes, stacklevel: int) -> None:
 def prepare(executor: Executor, spec: FitSpec, notes: Notes) -> tuple[estimators.Estimator, Design]:
     """The estimator and its design (checked against the schema; no rows read but
     ``levels()`` values)."""
+    refuse = getattr(executor.engine, "refuse_model", None)  # what an engine cannot run yet (pg, spark)
+    if refuse is not None:
+        refuse(spec)
     if spec.weights:
         check_weights(executor, spec.weights)
     design = build_design(executor, spec)

@@ -240,6 +240,9 @@ def inspect_panel(source, unit: str, period: str, columns: Sequence[str] | None 
         For an unknown or unsuitable column, a bad filter, or no rows after the filter.
     """
     source = as_source(source, where, table, query, csv_types, engine, csv_nulls)
+    if source.engine.name != "duckdb":
+        raise InputError(f"The checkup runs on the duckdb engine only; --engine {source.engine.name} is not available "
+                         "for it yet. Leave out --engine (the checkup reads the files with DuckDB).")
     from .engine import open_session
 
     with open_session(source) as session:

@@ -16,6 +16,7 @@ from typing import Any
 from .errors import InputError, echo
 
 ESTIMATORS = ("pooled", "within", "first-difference", "between", "random-effects")
+ENGINES = ("duckdb", "spark")  # where the SQL runs (bigpanel.engine.open_engine)
 VARIANCES = ("homoskedastic", "hc1", "cluster")
 # How absorbed effect levels enter K' of the cluster small-sample factor (ESTIMATION.md):
 # "not-nested" leaves out the effects nested in at least one cluster dimension, "all"
@@ -133,6 +134,11 @@ SOURCE_PARAMETERS: dict[str, Param] = {p.name: p for p in (
     Param("threads", "count", "DuckDB worker threads (default: all cores).", minimum=1, maximum=1024, scope="setting"),
     Param("memory_limit", "text", "DuckDB memory limit, e.g. \"2GB\"; past it DuckDB spills to disk.", scope="setting"),
     Param("temp_directory", "text", "Folder for DuckDB's spill files.", scope="setting"),
+    Param("engine", "choice", "Where the SQL runs: duckdb (default), or spark: Spark SQL over the Parquet files "
+          "(pip install 'bigpanel[spark]'; only aggregates come back).", default="duckdb", choices=ENGINES),
+    Param("spark_master", "text", "With engine spark: the Spark master URL, e.g. local[4] or spark://host:7077 "
+          "(default: SPARK_MASTER, else spark.master in spark-defaults.conf, else local mode on every core).",
+          scope="setting"),
 )}
 
 
@@ -162,6 +168,10 @@ def check_source(name: str, value: Any) -> Any:
         if not isinstance(value, dict) or not all(isinstance(v, str) and v.strip() for v in value.values()):
             raise InputError(f"Option '{name}' must be a table of text values; got {echo(repr(value), 60)}. {p.help}")
         return {str(k): v.strip() for k, v in value.items()}
+    if p.kind == "choice":
+        if value not in p.choices:
+            raise InputError(f"Option '{name}' must be one of {', '.join(p.choices)}; got {echo(repr(value), 40)}.")
+        return value
     if p.kind == "count":
         if isinstance(value, bool) or not isinstance(value, int) or not p.minimum <= value <= p.maximum:
             raise InputError(f"Option '{name}' must be a whole number from {p.minimum} to {p.maximum}; "

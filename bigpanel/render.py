@@ -654,10 +654,11 @@ def _pg_divide(a: str, b: str, user: bool) -> str:
     return f"(CAST({a} AS double precision) / {divisor})"
 
 
-def _arity(name: str, counts: tuple[int, ...], rule: Callable[[list[str]], str]) -> Callable[[list[str]], str]:
+def _arity(name: str, counts: tuple[int, ...], rule: Callable[[list[str]], str],
+           engine: str = "PostgreSQL") -> Callable[[list[str]], str]:
     def checked(args: list[str]) -> str:
         if len(args) not in counts:
-            raise Unsupported(f"{name}() with {len(args)} arguments", "PostgreSQL")
+            raise Unsupported(f"{name}() with {len(args)} arguments", engine)
         return rule(args)
 
     return checked
@@ -776,4 +777,89 @@ POSTGRES = Target(
     operators={"**": lambda a: f"power({a[0]}, {a[1]})", "^": lambda a: f"power({a[0]}, {a[1]})", "%": "%"},
     like_escape=" ESCAPE E''",
     byte_order=' COLLATE "C"',
+)
+
+
+# ---------------------------------------------------------------- Spark SQL
+# User expressions only (bigpanel's own queries for Spark are written by sqlbuild in its
+# SPARK dialect). The session runs with spark.sql.ansi.enabled = false, so a division by
+# zero or a failed cast gives NULL: the row is left out of a fit, as DuckDB leaves out its
+# non-finite values.
+
+
+def _spark_string(text: str) -> str:
+    # Spark reads backslash escapes inside '...': the backslash is doubled, the quote escaped
+    return "'" + text.replace("\\", "\\\\").replace("'", "\\'") + "'"
+
+
+def _spark_param(position: int, kind: str, name: str) -> str:
+    return f":{name}"
+
+
+def _spark_divide(a: str, b: str, user: bool) -> str:
+    # DuckDB's '/' divides as doubles (7 / 2 is 3.5), as Spark's does
+    return f"(CAST({a} AS DOUBLE) / CAST({b} AS DOUBLE))"
+
+
+def _spark_arity(name: str, counts: tuple[int, ...], rule: Callable[[list[str]], str]) -> Callable[[list[str]], str]:
+    return _arity(name, counts, rule, "Spark")
+
+
+def _spark_same(name: str, *counts: int, spark_name: str | None = None) -> Callable[[list[str]], str]:
+    return _spark_arity(name, counts, lambda a: f"{spark_name or name}({', '.join(a)})")
+
+
+def _spark_like(word: str) -> Callable[[list[str]], str]:
+    # DuckDB's LIKE has no escape character; Spark's is the backslash. Same meaning only
+    # for a literal pattern without one.
+    def rule(args: list[str]) -> str:
+        pattern = args[1]
+        if not (pattern.startswith("'") and pattern.endswith("'")) or "\\" in pattern:
+            raise Unsupported(f"{word} with a pattern that is not a text without backslashes", "Spark")
+        return f"({args[0]} {word} {pattern})"
+
+    return rule
+
+
+SPARK_FUNCTIONS: dict[str, Rule] = {
+    # same name, same result wherever both are defined (Spark's ln, log10, sqrt of values
+    # outside the domain give NULL or NaN where DuckDB gives NaN, an infinity or an error:
+    # the row is left out of a fit either way)
+    **{n: _spark_same(n, 1) for n in ("abs", "exp", "ln", "log10", "log2", "sqrt", "cbrt", "sin", "cos", "tan", "asin",
+                                      "acos", "atan", "degrees", "radians", "lower", "upper", "length", "year",
+                                      "quarter", "month")},
+    "log": _spark_same("log", 1, spark_name="log10"),  # DuckDB's log(x) is base 10; Spark's one-argument log is ln
+    "atan2": _spark_same("atan2", 2), "pi": _spark_same("pi", 0),
+    "power": _spark_same("power", 2), "pow": _spark_same("pow", 2, spark_name="power"),
+    "sign": _spark_same("sign", 1, spark_name="signum"),
+    "greatest": _spark_arity("greatest", tuple(range(2, 100)), lambda a: f"greatest({', '.join(a)})"),
+    "least": _spark_arity("least", tuple(range(2, 100)), lambda a: f"least({', '.join(a)})"),
+    "nullif": _spark_same("nullif", 2),
+    "dayofmonth": _spark_same("dayofmonth", 1),
+}
+
+SPARK_TYPES = {
+    "DOUBLE": "DOUBLE", "FLOAT8": "DOUBLE", "FLOAT": "FLOAT", "REAL": "FLOAT", "FLOAT4": "FLOAT",
+    "BIGINT": "BIGINT", "INT8": "BIGINT", "LONG": "BIGINT", "INTEGER": "INT", "INT": "INT", "INT4": "INT",
+    "SMALLINT": "SMALLINT", "INT2": "SMALLINT", "TINYINT": "TINYINT", "HUGEINT": "DECIMAL(38, 0)",
+    "DECIMAL": "DECIMAL", "NUMERIC": "DECIMAL", "VARCHAR": "STRING", "TEXT": "STRING", "STRING": "STRING",
+    "BOOLEAN": "BOOLEAN", "BOOL": "BOOLEAN", "DATE": "DATE", "TIMESTAMP": "TIMESTAMP_NTZ",
+    "TIMESTAMPTZ": "TIMESTAMP", "TIMESTAMP WITH TIME ZONE": "TIMESTAMP",
+}
+
+SPARK = Target(
+    name="spark",
+    engine="Spark",
+    quote="`",
+    types=SPARK_TYPES,
+    functions=SPARK_FUNCTIONS,
+    aggregates={"count": "count", "sum": "sum", "min": "min", "max": "max", "avg": "avg"},
+    internal={},
+    windows=frozenset(),
+    param=_spark_param,
+    string=_spark_string,
+    divide=_spark_divide,
+    operators={"**": lambda a: f"power({a[0]}, {a[1]})", "^": lambda a: f"power({a[0]}, {a[1]})", "%": "%",
+               "~~": _spark_like("LIKE"), "!~~": _spark_like("NOT LIKE"), "~~*": _spark_like("ILIKE"),
+               "!~~*": _spark_like("NOT ILIKE")},
 )

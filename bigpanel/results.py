@@ -100,7 +100,9 @@ class FitResult:
     where: str | None
     warnings: tuple[str, ...] = field(default=())
     f_unavailable: str = ""  # why there is no joint test (f_stat and f_p_value are then NaN)
-    run: dict = field(default_factory=dict)  # how it ran: {"threads": N, "version": "x.y.z"}
+    # how it ran: {"threads": N, "version": "x.y.z"}, and another engine's run_facts() (its
+    # name, and what it reports: Spark its master, PostgreSQL queries and bytes fetched)
+    run: dict = field(default_factory=dict)
     # how the effects were absorbed: {"path": "exact" | "iterative", "method": ...}; iterative adds
     # effects and levels, iterations, tolerance, achieved, converged, singletons, redundancies
     absorption: dict = field(default_factory=dict)

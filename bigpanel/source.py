@@ -125,7 +125,9 @@ _SIZE = re.compile(
 @dataclass(frozen=True)
 class Engine:
     """DuckDB settings: worker threads, memory limit (e.g. ``"4GB"``) and the folder under
-    which a private spill folder is made (default: the system's temporary folder).
+    which a private spill folder is made (default: the system's temporary folder); or
+    ``name="spark"``: the plan runs as Spark SQL (:mod:`bigpanel.spark`) on
+    ``spark_master`` (default: the Spark environment's, else local mode).
 
     The values are checked when the Engine is made, before anything is read.
     """
@@ -133,6 +135,8 @@ class Engine:
     threads: int | None = None
     memory_limit: str | None = None
     temp_directory: str | None = None
+    name: str = "duckdb"
+    spark_master: str | None = None
 
     def __post_init__(self) -> None:
         if self.threads is not None and (isinstance(self.threads, bool) or not isinstance(self.threads, numbers.Integral)
@@ -146,11 +150,31 @@ class Engine:
                 raise InputError(
                     f"Option --memory-limit must be a positive size such as 500MB, 4GB or 2GiB, got '{echo(self.memory_limit, 40)}'. "
                     "Give a number with a unit (KB, MB, GB, TB or KiB, MiB, GiB, TiB), or leave the option out for no limit.")
+        self._check_engine_name()
         if self.temp_directory is not None:
             problem = _unwritable_folder(str(self.temp_directory))
             if problem:
                 raise InputError(f"Option --temp-directory names '{echo(self.temp_directory)}', {problem}. "
                                  "Give a folder you can write to, or leave the option out to use the system's temporary folder.")
+
+    def _check_engine_name(self) -> None:
+        from .params import ENGINES
+
+        if self.name not in ENGINES:
+            raise InputError(f"Option --engine must be one of {', '.join(ENGINES)}; got '{echo(self.name, 40)}'.")
+        if self.spark_master is not None and (not isinstance(self.spark_master, str) or not self.spark_master.strip()):
+            raise InputError("Option --spark-master is empty. Give a master URL such as 'local[4]' or "
+                             "'spark://host:7077', or leave it out.")
+        if self.name != "spark":
+            if self.spark_master is not None:
+                raise InputError("Option --spark-master applies to --engine spark. Add --engine spark, or leave the master out.")
+            return
+        for option, value in (("--threads", self.threads), ("--memory-limit", self.memory_limit),
+                              ("--temp-directory", self.temp_directory)):
+            if value is not None:
+                raise InputError(f"Option {option} is a DuckDB setting; with --engine spark, cores and memory come from "
+                                 "the Spark master and its configuration (for example --spark-master 'local[4]', or "
+                                 "spark.driver.memory in spark-defaults.conf). Leave the option out.")
 
     def settings(self, spill_folder: str | None, threads: int | None = None) -> list[tuple[str, str]]:
         """(setting, SET statement) pairs for a connection, built by sqlbuild; ``spill_folder``
@@ -472,7 +496,7 @@ def open_source(
     engine : Engine, optional
         DuckDB settings.
     """
-    engine = engine or Engine()
+    engine = as_engine(engine)
     common = dict(where=where, engine=engine)
     _check_source_options(source, table, query, csv_types, csv_nulls)
     nulls = csv_null_tokens(csv_nulls)
@@ -616,6 +640,20 @@ def _sink_lazy(frame: Any, engine: Engine) -> tuple[str, str]:
         raise InputError(f"The polars LazyFrame could not be evaluated ({echo(_first_line(exc))}). "
                          "Check the frame's query, for example with .head().collect().") from None
     return folder, path
+
+
+def as_engine(engine: Engine | str | None, spark_master: str | None = None) -> Engine:
+    """The engine settings: an Engine as it is, an engine's name (``"spark"``), or the
+    default; ``spark_master`` added to them."""
+    if engine is None or isinstance(engine, str):
+        engine = Engine(name=engine or "duckdb")
+    elif not isinstance(engine, Engine):
+        raise InputError(f"Option 'engine' must be an engine's name (duckdb or spark) or an Engine; got {type(engine).__name__}.")
+    if spark_master is not None:
+        from dataclasses import replace
+
+        engine = replace(engine, spark_master=spark_master)
+    return engine
 
 
 def as_source(source: Any, where: str | None = None, table: str | None = None, query: str | None = None,

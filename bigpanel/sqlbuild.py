@@ -24,13 +24,20 @@ _PLACEHOLDER = re.compile(r"\{\{(\w+)\}\}")
 @dataclass(frozen=True)
 class Dialect:
     """What differs between SQL engines in the text the builders write: identifier and
-    literal quoting, parameter markers, the compensated sum and the finiteness test.
-    DuckDB is the one dialect today; an engine adapter brings its own (DEVELOPERS.md)."""
+    literal quoting, parameter markers, the compensated sum, the finiteness test, the
+    grouping id, text and DOUBLE spellings, whole-number division and period ordinals.
+    Builders write parameters as ``$name``; :meth:`bind` turns them into the engine's
+    markers. ``DUCKDB`` here; ``SPARK`` below (DEVELOPERS.md, "Engines")."""
 
     name: str = "duckdb"
     compensated: str = "fsum"  # a sum whose result does not depend on the order of rows
     plain: str = "sum"
     param_marker: str = "$"
+    text_type: str = "VARCHAR"
+    materialized: str = "AS MATERIALIZED"  # a CTE computed once (plain AS where unknown)
+    anti_join: str = "ANTI JOIN"
+    semi_join: str = "SEMI JOIN"
+    one: str = "1.0"  # the DOUBLE one (Spark reads 1.0 as a DECIMAL)
 
     def quote_ident(self, name: str) -> str:
         return '"' + str(name).replace('"', '""') + '"'
@@ -49,8 +56,94 @@ class Dialect:
     def is_finite(self, expression: str) -> str:
         return f"isfinite({expression})"
 
+    def grouping(self, keys: Sequence[str]) -> str:
+        """The grouping set's id over ``keys``: a bit per key left out, the first key most
+        significant (:func:`grouping_id`)."""
+        return f"GROUPING({', '.join(keys)})"
+
+    def whole_division(self, a: str, b: str) -> str:
+        return f"({a}) // ({b})"
+
+    def ordinal(self, period_value: str, mode: str) -> str:
+        """The period as a whole number on its grid's scale (``mode``: integer, month, day,
+        microsecond)."""
+        return {
+            "integer": f"CAST({period_value} AS HUGEINT)",
+            "month": f"(year({period_value}) * 12 + month({period_value}) - 1)",
+            "day": f"date_diff('day', DATE '1970-01-01', CAST({period_value} AS DATE))",
+            "microsecond": f"epoch_us({period_value})",
+        }[mode]
+
+    def bind(self, sql: str, params: dict | None) -> tuple[str, dict | None]:
+        """The query with this engine's parameter markers, and its parameters."""
+        return sql, params
+
+    def presence(self, first: int, last: int) -> tuple[str, str]:
+        """(aggregate per unit, its text of 0s and 1s): the periods a unit is seen in, one
+        character per period from ``first`` to ``last``."""
+        return f"bitstring_agg(k_period, {int(first)}, {int(last)})", f"CAST(pattern AS {self.text_type})"
+
+
+class SparkDialect(Dialect):
+    """Spark SQL: backtick identifiers; string literals that read backslash escapes (so a
+    backslash is doubled and a quote escaped); ``:name`` parameters; no compensated sum
+    (the plain one: Spark's order of summation depends on partitioning, and agreement
+    with DuckDB is to a stated tolerance, DEVELOPERS.md); ``grouping()`` per key; ``div``."""
+
+    def quote_ident(self, name: str) -> str:
+        return "`" + str(name).replace("`", "``") + "`"
+
+    def quote_literal(self, value: str) -> str:
+        return "'" + str(value).replace("\\", "\\\\").replace("'", "\\'") + "'"
+
+    def is_finite(self, expression: str) -> str:
+        return f"(({expression}) * 0 = 0)"  # NaN and infinities times 0 are NaN, unequal to 0 in Spark too
+
+    def grouping(self, keys: Sequence[str]) -> str:
+        # grouping_id() must list the columns in GROUP BY's order; bit by bit it need not
+        n = len(keys)
+        return "(" + " + ".join(f"grouping({k}) * {2 ** (n - 1 - i)}" for i, k in enumerate(keys)) + ")"
+
+    def whole_division(self, a: str, b: str) -> str:
+        return f"({a}) div ({b})"
+
+    def ordinal(self, period_value: str, mode: str) -> str:
+        return {
+            "integer": f"CAST({period_value} AS BIGINT)",
+            "month": f"(year({period_value}) * 12 + month({period_value}) - 1)",
+            "day": f"datediff(CAST({period_value} AS DATE), DATE '1970-01-01')",
+            "microsecond": f"unix_micros(CAST({period_value} AS TIMESTAMP))",
+        }[mode]
+
+    def presence(self, first: int, last: int) -> tuple[str, str]:
+        # the set of the unit's periods, written out over the grid
+        text = f"array_join(transform(sequence({int(first)}, {int(last)}), t -> IF(array_contains(pattern, t), '1', '0')), '')"
+        return "collect_set(k_period)", text
+
+    def bind(self, sql: str, params: dict | None) -> tuple[str, dict | None]:
+        """``$name`` markers outside quoted text become ``:name``; only the parameters the
+        query uses are passed (Spark refuses unused ones)."""
+        used: list[str] = []
+
+        def swap(m: re.Match) -> str:
+            if m.group(1) is None:
+                return m.group(0)
+            used.append(m.group(1))
+            return ":" + m.group(1)
+
+        text = _MARKER_OR_QUOTED.sub(swap, sql)
+        if not params:
+            return text, None
+        return text, {k: params[k] for k in dict.fromkeys(used) if k in params} or None
+
+
+# quoted text (Spark: '...' and "..." with backslash escapes, `...` with doubled backticks)
+# is passed over; a $name marker anywhere else is a parameter
+_MARKER_OR_QUOTED = re.compile(r"'(?:[^'\\]|\\.)*'|\"(?:[^\"\\]|\\.)*\"|`(?:[^`]|``)*`|\$([A-Za-z_]\w*)")
 
 DUCKDB = Dialect()
+SPARK = SparkDialect(name="spark", compensated="sum", param_marker=":", text_type="STRING", materialized="AS",
+                     anti_join="LEFT ANTI JOIN", semi_join="LEFT SEMI JOIN", one="CAST(1 AS DOUBLE)")
 # PostgreSQL: builders write DuckDB's SQL for it, and bigpanel.render writes PostgreSQL's
 # text from DuckDB's parse tree of each query (fsum and favg become sum and avg there, which
 # add rows in one order on one process; isfinite a comparison). The dialect tells builders
@@ -252,6 +345,7 @@ def _z(j: int) -> str:
 def design_rows_sql(
     source: str, unit: str, period: str, clusters: list[str], columns: list[tuple[str, int]], step: int,
     period_sql: str | None = None, effects: Sequence[Sequence[str]] = (), weight: str | None = None,
+    dialect: Dialect = DUCKDB,
 ) -> str:
     """Select the unit, period, clusters and shifted design columns of every row.
 
@@ -262,10 +356,11 @@ def design_rows_sql(
     columns of each absorbed effect (many effects, :mod:`bigpanel.sweeps`), as k_e<i>_<m>.
     ``weight``: the weight column (quoted), carried as ``k_w`` (the row's own weight, never lagged).
     """
-    period_sql = period_sql or quote_ident(period)
-    items = [f"{quote_ident(unit)} AS k_unit", f"{period_sql} AS k_period"]
-    items += [f"{quote_ident(c)} AS k_c{i}" for i, c in enumerate(clusters)]
-    items += [f"{quote_ident(c)} AS {name}" for e, keys in enumerate(effects) for c, name in zip(keys, effect_keys(e, len(keys)))]
+    period_sql = period_sql or quote_ident(period, dialect)
+    items = [f"{quote_ident(unit, dialect)} AS k_unit", f"{period_sql} AS k_period"]
+    items += [f"{quote_ident(c, dialect)} AS k_c{i}" for i, c in enumerate(clusters)]
+    items += [f"{quote_ident(c, dialect)} AS {name}" for e, keys in enumerate(effects)
+              for c, name in zip(keys, effect_keys(e, len(keys)))]
     if weight is not None:
         items.append(f"CAST({weight} AS DOUBLE) AS k_w")
     for j, (expr, lag) in enumerate(columns):
@@ -274,7 +369,7 @@ def design_rows_sql(
             span = abs(int(lag)) * int(step)
             side = "PRECEDING" if lag > 0 else "FOLLOWING"
             value = (
-                f"first_value({value}) OVER (PARTITION BY {quote_ident(unit)} ORDER BY {period_sql} "
+                f"first_value({value}) OVER (PARTITION BY {quote_ident(unit, dialect)} ORDER BY {period_sql} "
                 f"RANGE BETWEEN {span} {side} AND {span} {side})"
             )
         items.append(f"({value} - $s{j}) * $d{j} AS {_z(j)}")
@@ -452,8 +547,8 @@ def row_counts_sql(rows: str, q: int, differenced: bool, step: int, dialect: Dia
     return render("row_counts", rows=f"({rows})", counts=", ".join(counts))
 
 
-def period_bounds_sql(source: str, period: str, period_sql: str | None = None) -> str:
-    p = period_sql or quote_ident(period)
+def period_bounds_sql(source: str, period: str, period_sql: str | None = None, dialect: Dialect = DUCKDB) -> str:
+    p = period_sql or quote_ident(period, dialect)
     return f"SELECT min({p}) AS lo, max({p}) AS hi FROM {source} AS src"
 
 
@@ -471,7 +566,7 @@ def period_join_sql(n_periods: int, k: int) -> str:
     return f"LEFT JOIN (VALUES {rows}) AS pe({names}) ON r.k_period = pe.k_period"
 
 
-def adjusted_columns(q: int, intercept: bool, periods: bool, weighted: bool = False) -> str:
+def adjusted_columns(q: int, intercept: bool, periods: bool, weighted: bool = False, dialect: Dialect = DUCKDB) -> str:
     """a_j = z_j - Gamma_t,j (regressor net of its period-effect projection) and the raw
     residual e = y - x'b - gamma_t - b_one, from shifted design columns."""
     k = q - 1
@@ -480,7 +575,7 @@ def adjusted_columns(q: int, intercept: bool, periods: bool, weighted: bool = Fa
     if periods:
         resid += " - coalesce(pe.g, 0)"
     if intercept:
-        cols.append("1.0 AS a_one")
+        cols.append(f"{dialect.one} AS a_one")
         resid += " - $b_one"
     if weighted:
         cols.append("r.k_w AS k_w")
@@ -492,7 +587,7 @@ def _a_names(q: int, intercept: bool) -> list[str]:
 
 
 def centered_ctes(used: str, q: int, intercept: bool, demean: bool, n_periods: int, n_clusters: int,
-                  total: str = DUCKDB.compensated, weighted: bool = False) -> str:
+                  total: str = DUCKDB.compensated, weighted: bool = False, dialect: Dialect = DUCKDB) -> str:
     """CTEs ending in ``centered``: per row x~_j AS x_j and u~ AS u (unit-demeaned under
     within, after removing period effects), with the unit and cluster keys. ``weighted``:
     weighted unit means, and u~ carries the row's weight (u = w u~), so that sums of
@@ -500,7 +595,7 @@ def centered_ctes(used: str, q: int, intercept: bool, demean: bool, n_periods: i
     keys = ["k_unit", "k_period"] + [f"k_c{i}" for i in range(n_clusters)]
     names = _a_names(q, intercept)
     adjusted = (f"adjusted AS (SELECT {', '.join('r.' + k for k in keys)}, "
-                f"{adjusted_columns(q, intercept, n_periods > 0, weighted)} FROM used AS r {period_join_sql(n_periods, q - 1)})")
+                f"{adjusted_columns(q, intercept, n_periods > 0, weighted, dialect)} FROM used AS r {period_join_sql(n_periods, q - 1)})")
     parts = [f"used AS ({used})", adjusted]
     w, count, u = ("k_w * ", f"{total}(k_w)", "k_w * ") if weighted else ("", "count(*)", "")
     if demean:
@@ -530,10 +625,11 @@ def cluster_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_perio
     scores = ", ".join(f"{dialect.compensated}(x{i} * u) AS g{i}" for i in range(k))
     outer = ", ".join(f"{dialect.compensated}(g{i} * g{j}) AS o{i}_{j}" for i in range(k) for j in range(i, k))
     if n_clusters == 1:
-        sets, key = "GROUPING SETS ((k_c0))", "GROUPING(k_c0) AS gid"
+        sets, key = "GROUPING SETS ((k_c0))", f"{dialect.grouping(['k_c0'])} AS gid"
     else:
-        sets, key = "GROUPING SETS ((k_c0), (k_c1), (k_c0, k_c1))", "GROUPING(k_c0, k_c1) AS gid"
-    centered = centered_ctes(used, q, intercept, demean, n_periods, n_clusters, weighted=weighted)
+        sets, key = "GROUPING SETS ((k_c0), (k_c1), (k_c0, k_c1))", f"{dialect.grouping(['k_c0', 'k_c1'])} AS gid"
+    centered = centered_ctes(used, q, intercept, demean, n_periods, n_clusters, dialect.compensated,
+                             weighted=weighted, dialect=dialect)
     return render("cluster_scores", centered=centered, sets_key=key, sets=sets, scores=scores, outer=outer)
 
 
@@ -541,11 +637,12 @@ def residual_moments_sql(used: str, q: int, intercept: bool, demean: bool, n_per
                          weighted: bool = False) -> str:
     k = q - 1 + (1 if intercept else 0)
     sums = ", ".join(f"{dialect.compensated}(u * u * x{i} * x{j}) AS h{i}_{j}" for i in range(k) for j in range(i, k))
-    return render("residual_moments", centered=centered_ctes(used, q, intercept, demean, n_periods, 0, weighted=weighted), sums=sums)
+    centered = centered_ctes(used, q, intercept, demean, n_periods, 0, dialect.compensated, weighted=weighted, dialect=dialect)
+    return render("residual_moments", centered=centered, sums=sums)
 
 
 def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods: int, by_unit: bool, total: str,
-                    weighted: bool = False) -> str:
+                    weighted: bool = False, dialect: Dialect = DUCKDB) -> str:
     """Cluster scores from per-unit sums (clusters that are units or unions of units);
     ``weighted``: sums carry the row's weight (a unit's score sum w a e - (sum w a)(sum w e)/sum w)."""
     names = _a_names(q, intercept)
@@ -565,9 +662,9 @@ def unit_scores_sql(used: str, q: int, intercept: bool, demean: bool, n_periods:
         pick = "k_unit"
     else:
         summed = ", ".join(f"{total}(e{i}) AS e{i}" for i in range(k))
-        final = f"SELECT CAST(g AS VARCHAR) AS g, {summed} FROM scores GROUP BY g ORDER BY g"
+        final = f"SELECT CAST(g AS {dialect.text_type}) AS g, {summed} FROM scores GROUP BY g ORDER BY g"
         pick = "min(k_c0)"
-    adjusted = adjusted_columns(q, intercept, n_periods > 0, weighted)
+    adjusted = adjusted_columns(q, intercept, n_periods > 0, weighted, dialect)
     if not by_unit:
         adjusted = "r.k_c0, " + adjusted
     return render("unit_scores", used=used, adjusted=adjusted, period_join=period_join_sql(n_periods, q - 1),
@@ -658,14 +755,32 @@ def serial_pass_sql(used: str, k: int, step: int, intercept: bool, n_periods: in
                   joins=joins, per_unit=per_unit, outer=", ".join(outer))
 
 
-def twoway_pass_sql(used: str, q: int, first: int, last: int, total: str = "sum") -> str:
-    """Unit + period effects in one pass: per-unit totals, presence patterns, period sums."""
+def twoway_pass_sql(used: str, q: int, first: int, last: int, total: str = "sum", dialect: Dialect = DUCKDB) -> str:
+    """Unit + period effects in one pass: per-unit totals, presence patterns, period sums.
+
+    A unit's presence pattern is a text of 0s and 1s, one per period from ``first`` to
+    ``last``: DuckDB's ``bitstring_agg``; elsewhere the set of the unit's periods written
+    out as that text. The three kinds of rows are united by position, every column listed."""
     moments = ", ".join(_moment_aggregates(q, total) + ["min(k_period) AS t_lo", "max(k_period) AS t_hi"])
     totals = unit_pass_sql("SELECT * FROM unit_rows", q, "within", False, total)
     means = ", ".join(f"{total}(s{j} / n) AS m{j}" for j in range(q))
     sums = ", ".join(f"s{j}" for j in range(q))
-    return render("twoway_pass", used=used, moments=moments, first=str(int(first)), last=str(int(last)),
-                  totals=totals, means=means, sums=sums)
+    pattern_agg, pattern_text = dialect.presence(first, last)
+    dim = q
+    kinds = {
+        "total": ["n_units", "n_obs", "singletons", "singleton_rows"]
+                 + [_w(j, l) for j in range(dim) for l in range(j, dim)] + [f"r{j}" for j in range(q)] + ["t_min", "t_max"],
+        "pattern": ["pattern", "pattern_units", "inv_n"] + [f"m{j}" for j in range(q)],
+        "period": ["period", "period_n"] + [f"s{j}" for j in range(q)],
+    }
+    every = [c for cols in kinds.values() for c in cols]
+
+    def listed(kind: str) -> str:
+        return ", ".join(c if c in kinds[kind] else f"NULL AS {c}" for c in every)
+
+    return render("twoway_pass", used=used, moments=moments, materialized=dialect.materialized, pattern_agg=pattern_agg,
+                  totals=totals, pattern_text=pattern_text, one=dialect.one, means=means, sums=sums,
+                  total_columns=listed("total"), pattern_columns=listed("pattern"), period_columns=listed("period"))
 
 
 def nesting_sql(used: str, column: int) -> str:
@@ -674,13 +789,13 @@ def nesting_sql(used: str, column: int) -> str:
             f"HAVING count(DISTINCT k_c{int(column)}) > 1) AS m")
 
 
-def indicator_sql(expr: str, level: str) -> str:
+def indicator_sql(expr: str, level: str, dialect: Dialect = DUCKDB) -> str:
     """1.0 where ``expr`` (as text) equals ``level``, 0.0 elsewhere, NULL where it is NULL."""
-    return f"CAST(CAST(({expr}) AS VARCHAR) = {quote_literal(level)} AS DOUBLE)"
+    return f"CAST(CAST(({expr}) AS {dialect.text_type}) = {quote_literal(level, dialect)} AS DOUBLE)"
 
 
-def distinct_values_sql(source: str, expr: str, limit: int) -> str:
-    return f"SELECT DISTINCT CAST(({expr}) AS VARCHAR) AS v FROM {source} AS src WHERE ({expr}) IS NOT NULL ORDER BY v LIMIT {int(limit)}"
+def distinct_values_sql(source: str, expr: str, limit: int, dialect: Dialect = DUCKDB) -> str:
+    return f"SELECT DISTINCT CAST(({expr}) AS {dialect.text_type}) AS v FROM {source} AS src WHERE ({expr}) IS NOT NULL ORDER BY v LIMIT {int(limit)}"
 
 
 def demeaned_rows_sql(used: str, q: int, n_clusters: int, weighted: bool = False) -> str:
@@ -722,9 +837,9 @@ def head_sql(source: str, limit: int) -> str:
 # shifted by $c_{j}.
 
 
-def period_value(period: str, kind: str) -> str:
+def period_value(period: str, kind: str, dialect: Dialect = DUCKDB) -> str:
     """The period as the scans see it: timestamps of every precision and zone as TIMESTAMP."""
-    quoted = quote_ident(period)
+    quoted = quote_ident(period, dialect)
     return f"CAST({quoted} AS TIMESTAMP)" if kind == "timestamp" else quoted
 
 
@@ -776,12 +891,7 @@ def checkup_period_scan_sql(source_sql: str, unit: str, period_value: str, check
 
 
 def _ordinal(period_value: str, mode: str) -> str:
-    return {
-        "integer": f"CAST({period_value} AS HUGEINT)",
-        "month": f"(year({period_value}) * 12 + month({period_value}) - 1)",
-        "day": f"date_diff('day', DATE '1970-01-01', CAST({period_value} AS DATE))",
-        "microsecond": f"epoch_us({period_value})",
-    }[mode]
+    return DUCKDB.ordinal(period_value, mode)
 
 
 def slot_expression(period_value: str, mode: str) -> str:
@@ -789,15 +899,16 @@ def slot_expression(period_value: str, mode: str) -> str:
     return f"CAST(({_ordinal(period_value, mode)} - $first) // $step AS BIGINT)"
 
 
-def period_slot_sql(period: str, kind: str, mode: str, first: int, step: int) -> str:
+def period_slot_sql(period: str, kind: str, mode: str, first: int, step: int, dialect: Dialect = DUCKDB) -> str:
     """The period column as its slot on a regular grid (0, 1, 2, ... one per step), with
     the grid's first ordinal and step written as literals (whole numbers the fit found)."""
-    return f"CAST(({_ordinal(period_value(period, kind), mode)} - ({int(first)})) // {int(step)} AS BIGINT)"
+    ordinal = dialect.ordinal(period_value(period, kind, dialect), mode)
+    return f"CAST({dialect.whole_division(f'{ordinal} - ({int(first)})', str(int(step)))} AS BIGINT)"
 
 
-def distinct_periods_sql(source: str, period: str, kind: str, limit: int) -> str:
+def distinct_periods_sql(source: str, period: str, kind: str, limit: int, dialect: Dialect = DUCKDB) -> str:
     """The distinct non-null periods (timestamps as TIMESTAMP), at most ``limit``."""
-    value = period_value(period, kind)
+    value = period_value(period, kind, dialect)
     return f"SELECT DISTINCT {value} AS period_value FROM {source} AS src WHERE {value} IS NOT NULL LIMIT {int(limit)}"
 
 
@@ -829,8 +940,8 @@ def checkup_unit_scan_sql(source_sql: str, unit: str, period_value: str, checked
     )
 
 
-def checkup_duplicate_scan_sql(source_sql: str, unit: str, period_value: str) -> str:
-    return render("checkup_duplicates", source=source_sql, unit=quote_ident(unit), period=period_value)
+def checkup_duplicate_scan_sql(source_sql: str, unit: str, period_value: str, dialect: Dialect = DUCKDB) -> str:
+    return render("checkup_duplicates", source=source_sql, unit=quote_ident(unit, dialect), period=period_value)
 
 
 # ---------------------------------------------------------------- shared scans (fit_many)
@@ -882,7 +993,8 @@ def sample_pairs(samples: Sequence[Sequence[int]]) -> list[tuple[int, int]]:
 
 
 def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
-                       nesting: Sequence[tuple[int, int]] = (), total: str = DUCKDB.compensated) -> str:
+                       nesting: Sequence[tuple[int, int]] = (), total: str = DUCKDB.compensated,
+                       dialect: Dialect = DUCKDB) -> str:
     """Cross-products of every sample in one scan, summed once per unit and row pattern
     (``shared_moments.sql``); ``nesting`` lists (sample, cluster position) pairs whose
     clusters are checked to hold whole units; ``total`` is the sum function (compensated
@@ -910,6 +1022,7 @@ def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced:
     words = pattern_words(len(samples))
     word = "c.pat0" if words == 1 else ("CASE samples.word " + " ".join(f"WHEN {t} THEN c.pat{t}" for t in range(words)) + " END")
     return render("shared_moments", rows=rows, pattern=", ".join(pattern_items(samples, differenced, step)),
+                  materialized=dialect.materialized, anti_join=dialect.anti_join, semi_join=dialect.semi_join,
                   pattern_keys=", ".join(keys), cell_sums=", ".join(cell),
                   samples=", ".join(f"({s}, {s // PATTERN_BITS}, {s % PATTERN_BITS})" for s in range(len(samples))),
                   covers=f"({word} >> samples.bit) & 1 = 1", sample_sums=", ".join(per_sample),
@@ -918,7 +1031,7 @@ def shared_moments_sql(rows: str, samples: Sequence[Sequence[int]], differenced:
 
 def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: bool, step: int,
                       models: Sequence[dict], keys: Sequence[str], sets: Sequence[Sequence[str]],
-                      total: str = DUCKDB.compensated) -> str:
+                      total: str = DUCKDB.compensated, dialect: Dialect = DUCKDB) -> str:
     """Meats of many models in one scan. Each model is a dict: ``sample`` (index),
     ``x`` (union indices of its regressors), ``y`` (its outcome), ``constant``,
     ``demean`` and ``hc1`` (bools). ``sets`` are the grouping sets over ``keys`` (some of
@@ -974,7 +1087,7 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
             u = _z(spec["y"]) + "".join(f" - $b{m}_{i} * {_z(j)}" for i, j in enumerate(spec["x"])) + one
             residuals += [f"{u} AS ru{m}", f"({u}) * ({u}) AS ruu{m}"]  # once per row, read by every sum below
             u, uu = f"ru{m}", f"ruu{m}"
-            col = [("1.0" if x is None else _z(x)) for x in xs]
+            col = [(dialect.one if x is None else _z(x)) for x in xs]
             want = (("sxxu", f" * {u}"), ("sxxuu", f" * {uu}")) if spec["demean"] else (("sxxuu", f" * {uu}"),)
             raw_sums += [f"{total}({col[i]} * {col[l]}{factor}) AS r{name}{m}_{i}_{l}" for i, l in tri for name, factor in want]
             cell_sums += [f"{case(f'r{name}{m}_{i}_{l}')} AS {name}{m}_{i}_{l}" for i, l in tri for name, _ in want]
@@ -1026,12 +1139,13 @@ def shared_scores_sql(rows: str, samples: Sequence[Sequence[int]], differenced: 
                   scores=", ".join(scores))
     if all(tuple(s) in (("k_unit",), ()) for s in sets):  # every meat is a sum over units: no cells of clusters
         gids = ", ".join(f"({grouping_id(keys, s)})" for s in sets)
-        return render("shared_unit_scores", **common, unit_totals=", ".join(unit_totals),
+        return render("shared_unit_scores", **common, unit_totals=", ".join(unit_totals), materialized=dialect.materialized,
+                      anti_join=dialect.anti_join, semi_join=dialect.semi_join,
                       unit_means="".join(unit_means), outer=", ".join(unit_outer), gids=gids)
     cell_keys = ["k_unit"] + [k for k in keys if k != "k_unit"]
     grouping_sets = "GROUPING SETS (" + ", ".join("(" + ", ".join(s) + ")" for s in sets) + ")"
     return render("shared_scores", **common, cell_keys=", ".join(cell_keys), unit_sums="".join(unit_sums),
-                  grouping=f"GROUPING({', '.join(keys)})" if keys else "0", sets=grouping_sets,
+                  materialized=dialect.materialized, grouping=dialect.grouping(keys) if keys else "0", sets=grouping_sets,
                   group_sums=", ".join(group_sums), outer=", ".join(outer))
 
 

@@ -95,6 +95,9 @@ def checked(spec, source):
     if asked and source.kind == "postgres":  # nothing is written from a warehouse session (bigpanel.pg)
         raise InputError(f"Option '{asked[0]}' is not available for PostgreSQL sources yet: bigpanel reads the "
                          "warehouse only. Fit a Parquet export of the panel to write effects or residuals.")
+    if asked and source.engine.name == "spark":  # bigpanel.spark brings back aggregates only
+        raise InputError(f"Option '{asked[0]}' is not available with --engine spark yet: only aggregates come back "
+                         "from Spark. Use --engine duckdb to write effects or residuals.")
     folders = {name: check_folder(name, getattr(spec, name), source) for name in asked}
     return replace(spec, **folders) if folders else spec
 

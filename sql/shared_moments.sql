@@ -18,13 +18,15 @@
 --                            t_w_j_l (within products p - s s'/n);
 --          {{no_keys}}       NULL for each pattern key (part 1);
 --          {{counts}}        part 2: t_n, t_lo, t_hi, and NULL for the other totals.
+--          {{materialized}}, {{anti_join}}, {{semi_join}}  the dialect's spellings (AS MATERIALIZED,
+--                     ANTI JOIN and SEMI JOIN in DuckDB; AS, LEFT ANTI JOIN, LEFT SEMI JOIN in Spark).
 -- params:  $s_j shifts, $d_j scales (through {{rows}}).
 -- output:  a few rows: part, the pattern keys, sid, w (units with more than one row), totals.
 WITH flagged AS (SELECT *, {{pattern}} FROM ({{rows}}) AS r),
-cells AS MATERIALIZED (SELECT k_unit, {{pattern_keys}}, {{cell_sums}} FROM flagged GROUP BY k_unit, {{pattern_keys}}),
-multi AS MATERIALIZED (SELECT k_unit FROM cells WHERE why = 0 GROUP BY k_unit HAVING count(*) > 1),
-single AS (SELECT c.* FROM cells AS c ANTI JOIN multi AS m ON c.k_unit IS NOT DISTINCT FROM m.k_unit WHERE c.why = 0),
-several AS (SELECT c.* FROM cells AS c SEMI JOIN multi AS m ON c.k_unit IS NOT DISTINCT FROM m.k_unit WHERE c.why = 0),
+cells {{materialized}} (SELECT k_unit, {{pattern_keys}}, {{cell_sums}} FROM flagged GROUP BY k_unit, {{pattern_keys}}),
+multi {{materialized}} (SELECT k_unit FROM cells WHERE why = 0 GROUP BY k_unit HAVING count(*) > 1),
+single AS (SELECT c.* FROM cells AS c {{anti_join}} multi AS m ON c.k_unit IS NOT DISTINCT FROM m.k_unit WHERE c.why = 0),
+several AS (SELECT c.* FROM cells AS c {{semi_join}} multi AS m ON c.k_unit IS NOT DISTINCT FROM m.k_unit WHERE c.why = 0),
 samples (sid, word, bit) AS (VALUES {{samples}}),
 per_sample AS (SELECT c.k_unit, samples.sid, {{sample_sums}} FROM several AS c JOIN samples ON {{covers}}
                GROUP BY c.k_unit, samples.sid)

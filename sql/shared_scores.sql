@@ -21,11 +21,12 @@
 --          {{sets}}          the GROUPING SETS the models' clusters need (() for HC1);
 --          {{group_sums}}    per model: sums of g_m_i and h_m_i_l, and its cells with rows AS n_m;
 --          {{outer}}         per model: clusters with rows AS ng_m, sums of g_m_i g_m_l and of h_m_i_l.
+--          {{materialized}}    AS MATERIALIZED (the cells computed once), or AS.
 -- params:  $s_j shifts; $b{m}_j coefficients and $one{m} intercepts of each model.
 -- output:  one row per grouping set (gid).
 WITH flagged AS (SELECT *, {{pattern}} FROM ({{rows}}) AS r),
 raw AS (SELECT {{cell_keys}}, {{pattern_keys}}, {{raw_sums}} FROM flagged GROUP BY {{cell_keys}}, {{pattern_keys}}),
-cells AS MATERIALIZED (SELECT {{cell_keys}}, {{cell_sums}} FROM raw),
+cells {{materialized}} (SELECT {{cell_keys}}, {{cell_sums}} FROM raw),
 units AS (SELECT k_unit AS unit_key{{unit_sums}} FROM cells GROUP BY k_unit),
 scores AS (SELECT {{cell_keys}}, {{scores}} FROM cells JOIN units ON cells.k_unit IS NOT DISTINCT FROM units.unit_key),
 per_group AS (SELECT {{grouping}} AS gid, {{group_sums}} FROM scores GROUP BY {{sets}})

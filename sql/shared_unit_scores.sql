@@ -14,15 +14,17 @@
 --          {{scores}}        per model: the unit's score g_m_i, its HC1 part h_m_i_l, membership k_m;
 --          {{outer}}         per model: units with rows AS ng_m, sums of g_m_i g_m_l and of h_m_i_l;
 --          {{gids}}          VALUES rows: the GROUPING() ids of the sets asked for (shared_scores.sql's).
+--          {{materialized}}, {{anti_join}}, {{semi_join}}  the dialect's spellings (AS MATERIALIZED,
+--                     ANTI JOIN and SEMI JOIN in DuckDB; AS, LEFT ANTI JOIN, LEFT SEMI JOIN in Spark).
 -- params:  $s_j shifts; $b{m}_j coefficients and $one{m} intercepts of each model.
 -- output:  one row per set asked for (gid), the same sums on each.
 WITH flagged AS (SELECT *, {{pattern}} FROM ({{rows}}) AS r),
-raw AS MATERIALIZED (SELECT k_unit, {{pattern_keys}}, {{raw_sums}} FROM flagged WHERE why = 0 GROUP BY k_unit, {{pattern_keys}}),
-multi AS MATERIALIZED (SELECT k_unit FROM raw GROUP BY k_unit HAVING count(*) > 1),
-cells AS MATERIALIZED (SELECT k_unit, {{cell_sums}} FROM raw),
-summed AS (SELECT k_unit, {{unit_totals}} FROM (SELECT c.* FROM cells AS c SEMI JOIN multi AS m ON c.k_unit IS NOT DISTINCT FROM m.k_unit)
+raw {{materialized}} (SELECT k_unit, {{pattern_keys}}, {{raw_sums}} FROM flagged WHERE why = 0 GROUP BY k_unit, {{pattern_keys}}),
+multi {{materialized}} (SELECT k_unit FROM raw GROUP BY k_unit HAVING count(*) > 1),
+cells {{materialized}} (SELECT k_unit, {{cell_sums}} FROM raw),
+summed AS (SELECT k_unit, {{unit_totals}} FROM (SELECT c.* FROM cells AS c {{semi_join}} multi AS m ON c.k_unit IS NOT DISTINCT FROM m.k_unit)
            GROUP BY k_unit
-           UNION ALL SELECT c.* FROM cells AS c ANTI JOIN multi AS m ON c.k_unit IS NOT DISTINCT FROM m.k_unit),
+           UNION ALL SELECT c.* FROM cells AS c {{anti_join}} multi AS m ON c.k_unit IS NOT DISTINCT FROM m.k_unit),
 units AS (SELECT *{{unit_means}} FROM summed),
 scores AS (SELECT {{scores}} FROM units),
 totals AS (SELECT {{outer}} FROM scores)

@@ -289,9 +289,10 @@ def open_entry(source: SourceEntry, model_where: str | None = None, engine_overr
     settings = {k: v for k, v in o.items() if not params.affects_result(k)}  # Engine's fields
     settings.update({k: v for k, v in (engine_overrides or {}).items() if v is not None})
     # every other source option is an argument of open_source by the same name
-    given = {k: v for k, v in o.items() if params.affects_result(k) and k != "path"}
+    given = {k: v for k, v in o.items() if params.affects_result(k) and k not in ("path", "engine")}
     given["where"] = combined_where(source, model_where)
-    return open_source(o.get("path"), **given, engine=Engine(**settings))
+    return open_source(o.get("path"), **given,
+                       engine=Engine(**settings, name=o.get("engine") or params.SOURCE_PARAMETERS["engine"].default))
 
 
 @contextmanager

@@ -22,9 +22,6 @@ def select(spec: FitSpec, engine) -> Estimator:
     the exact two-way path; on other periods, and in weighted fits, whose presence
     patterns would need each unit's weights, indicator columns inside within; any other
     effect makes every effect absorbed by iteration)."""
-    refuse = getattr(engine, "refuse_model", None)  # what an engine cannot run yet (bigpanel.pg)
-    if refuse is not None:
-        refuse(spec)
     if spec.estimator == "within":
         if spec.many_effects:  # effects beyond the unit and the period: absorbed by iteration
             return ManyEffects(spec)

@@ -71,6 +71,8 @@ def combine(attempts: list[dict]) -> dict:
            "walls_s": [a["wall_s"] for a in attempts],
            "peak_rss_bytes": max(a["peak_rss_bytes"] for a in attempts),
            "baseline_rss_bytes": max(a["baseline_rss_bytes"] for a in attempts)}
+    if "received_bytes" in attempts[0]:  # what came back to Python from another engine
+        out["received_bytes"], out["queries"] = attempts[0]["received_bytes"], attempts[0]["queries"]
     if "coefficients" in attempts[0]:
         out["coefficients"] = attempts[0]["coefficients"]
         out["std_errors"] = attempts[0]["std_errors"]
@@ -122,7 +124,7 @@ def summarize(results: list[dict], settings: dict, machine: dict) -> dict:
         if r["status"] != "ok":
             continue
         r["rows_per_s"] = r["rows"] / r["wall_s"]
-        floor = ok.get((r["panel"], "floor"))
+        floor = ok.get((r["panel"], "spark-floor" if r["group"] == "spark" else "floor"))  # each engine's own floor
         r["ratio_to_floor"] = r["wall_s"] / floor["wall_s"] if floor else None
         limit = FLOOR_TARGETS.get(r["case"])
         if limit is not None and r["ratio_to_floor"] is not None:
@@ -139,6 +141,10 @@ def summarize(results: list[dict], settings: dict, machine: dict) -> dict:
         reference, against = None, None
         if r["group"] == "in-memory":
             reference, against = ok.get((r["panel"], "within")), f"bigpanel within on {r['panel']}"
+        elif r["group"] == "spark" and "coefficients" in r and r["role"] == "main":
+            twin = r["case"].removeprefix("spark-")
+            if (r["panel"], twin) in ok:
+                reference, against = ok[(r["panel"], twin)], f"{twin} on DuckDB"
         elif r["role"] == "period-sorted" and "coefficients" in r:
             twin = r["panel"].removesuffix(" by period")
             reference, against = ok.get((twin, r["case"])), f"{r['case']} on {twin} (unit-sorted)"
@@ -280,6 +286,8 @@ def to_markdown(s: dict) -> str:
         "largest resident set of the process (interpreter and imports included)",
         f"- Threads: {threads}; DuckDB memory limit: {st['memory_limit'] or 'default'}; memory budget "
         f"{st['memory_budget_bytes'] / 1e9:g} GB; started {st['started_utc']}, took {st['elapsed_s']:.0f} s",
+        "- spark-* cases: bigpanel with --engine spark and Spark's own floor (one Spark SQL query with the same "
+        "sums), in one process each (SparkSession started before the clock; the JVM's memory is not in peak MB)",
         "- \"x floor\": wall time over the floor's (one DuckDB query summing the pooled cross-products over "
         "the same files), measured in the same run",
         "",
@@ -303,6 +311,8 @@ def to_markdown(s: dict) -> str:
             note = f"{word} {check['against']} ({check['coef_rel_diff']:.0e})"
         elif check:
             note = check["note"]
+        if "received_bytes" in r:
+            note = (note + "; " if note else "") + f"{r['received_bytes']:,} bytes to Python in {r['queries']} queries"
         peak = r.get("peak_rss_bytes") or r.get("estimated_peak_bytes")
         peak_text = _mb(peak) if r["status"] == "ok" or peak is None else f"~{_mb(peak)}"
         rate = r["rows_per_s"] / 1e6 if "rows_per_s" in r else None

@@ -93,7 +93,9 @@ def count_label(n: int) -> str:
 def _parser() -> _Parser:
     p = _Parser(prog="tests/bench/run.py", description=__doc__.split("\n\n")[0])
     p.add_argument("--sizes", default=DEFAULT_SIZES, help=f"panel sizes in rows (default {DEFAULT_SIZES}; add 100m for the large run)")
-    p.add_argument("--cases", default=",".join(CASES), help="cases to run (the floor always runs); default: all")
+    p.add_argument("--cases", default=",".join(CASES),
+                   help="cases to run (the floor always runs; spark-* cases add Spark's own floor); default: all of "
+                        "the scenario's but the Spark cases")
     p.add_argument("--repeat", type=int, default=3, help="runs per case; the best wall time is reported (default 3)")
     p.add_argument("--threads", type=int, help="threads for DuckDB, polars and BLAS (default: all cores)")
     p.add_argument("--memory-limit", help="DuckDB memory_limit for the floor and bigpanel cases, e.g. 4GB")
@@ -124,11 +126,13 @@ def _options(argv):
     if unknown:
         parser.error(f"invalid value for --cases: '{unknown[0]}' is not one of {', '.join(CASES)}")
     if args.cases == ",".join(CASES):  # the default: every case of the scenario
-        wanted = [c for c in CASES if CASES[c].scenario == args.scenario]
+        wanted = [c for c in CASES if CASES[c].scenario == args.scenario and CASES[c].group != "spark"]
     other = [c for c in wanted if c != "floor" and CASES[c].scenario != args.scenario]
     if other:
         parser.error(f"invalid value for --cases: '{other[0]}' runs on the {CASES[other[0]].scenario} panels, "
                      f"not with --scenario {args.scenario}")
+    if any(CASES[c].group == "spark" for c in wanted):
+        wanted.append("spark-floor")
     args.cases = ["floor"] + [c for c in CASES if c in wanted and c != "floor"]
     if not args.sizes:
         parser.error("--sizes names no size")

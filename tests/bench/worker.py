@@ -35,11 +35,12 @@ class Settings:
 @dataclass(frozen=True)
 class Case:
     name: str
-    group: str  # "floor" | "bigpanel" | "in-memory"
+    group: str  # "floor" | "bigpanel" | "in-memory" | "spark" (measured against "spark-floor")
     run: Callable[[list[str], Settings], dict]
     imports: tuple[str, ...]  # imported before the clock starts
     about: str
     scenario: str = "depots"  # the panels it runs on: "depots" (months) or "couriers" (years, three effects)
+    setup: Callable[[], object] | None = None  # run before the clock starts (Spark's session)
 
 
 def _quote(name: str) -> str:
@@ -293,7 +294,40 @@ def polars_lazy_within(files, settings):
     return _cluster_sandwich(xtx, meat, coef, sums["n"], meat_sums["g"])
 
 
+def _spark_session():
+    """The SparkSession bigpanel makes (master from the environment, else local[*])."""
+    from bigpanel.spark import spark_session
+
+    return spark_session()
+
+
+def spark_floor(files, settings):
+    """Spark's own floor: one Spark SQL query over the files (read by Spark) with the count,
+    sums and sums of products of outcome and regressors, collected as Arrow."""
+    spark = _spark_session()
+    spark.read.parquet(*files).createOrReplaceTempView("bench_floor")
+    columns = ["`" + c + "`" for c in [OUTCOME, *REGRESSORS]]
+    sums = ["count(*)"] + [f"sum({c})" for c in columns]
+    sums += [f"sum({a} * {b})" for i, a in enumerate(columns) for b in columns[i:]]
+    table = spark.sql(f"SELECT {', '.join(sums)} FROM bench_floor").toArrow()
+    return {"received_bytes": table.nbytes, "queries": 1}
+
+
+def _spark_fit(estimator):
+    def run(files, settings):
+        import bigpanel
+        from bigpanel.spark import SparkEngine
+
+        result = bigpanel.fit(str(Path(files[0]).parent), OUTCOME, REGRESSORS, UNIT, PERIOD, estimator=estimator,
+                              variance="cluster", cluster=UNIT, engine="spark")
+        return {"coefficients": [result.coef(term).estimate for term in REGRESSORS],
+                "std_errors": [result.coef(term).std_error for term in REGRESSORS],
+                "received_bytes": SparkEngine.received["bytes"], "queries": SparkEngine.received["queries"]}
+    return run
+
+
 _BP = ("bigpanel",)
+_SPARK = ("bigpanel", "bigpanel.spark", "pyarrow")
 CASES = {case.name: case for case in [
     Case("floor", "floor", floor, ("duckdb",),
          "one DuckDB query: count, sums and sums of products of outcome and regressors"),
@@ -323,6 +357,12 @@ CASES = {case.name: case for case in [
          "bigpanel within, staff_hours instrumented by lag(staff_hours), unit clusters and first-stage F"),
     Case("within-lag", "bigpanel", within_lag_regressor, _BP,
          "bigpanel within with lag(staff_hours) as a regressor (within-iv's columns, no instrument), unit clusters"),
+    Case("spark-floor", "spark", spark_floor, _SPARK,
+         "one Spark SQL query: count, sums and sums of products of outcome and regressors", setup=_spark_session),
+    Case("spark-within", "spark", _spark_fit("within"), _SPARK, "bigpanel within on Spark SQL, unit clusters",
+         setup=_spark_session),
+    Case("spark-first-difference", "spark", _spark_fit("first-difference"), _SPARK,
+         "bigpanel first differences on Spark SQL, unit clusters", setup=_spark_session),
     Case("couriers-within", "bigpanel", _couriers("courier"), _BP,
          "couriers: within (courier effects), courier clusters", "couriers"),
     Case("couriers-within-write", "bigpanel", _couriers("courier", write=True), _BP,
@@ -378,6 +418,8 @@ def main(argv=None) -> int:
     case = CASES[args.case]
     for module in case.imports:
         importlib.import_module(module)
+    if case.setup is not None:
+        case.setup()
     baseline = peak_rss_bytes()
     start = time.perf_counter()
     estimates = case.run(files, settings)
