@@ -484,7 +484,7 @@ class Executor:
     def serial_sums(self, rows: Rows, k: int, intercept: bool, n_periods: int, within: bool, params: dict) -> dict:
         """One scan: the serial-correlation test's sums over units (``serial_pass.sql``),
         added over chunks."""
-        total = moments.sum_function(self.chunks())
+        total = moments.sum_function(self.chunks(), self.dialect)
 
         def make(c):
             return sqlbuild.serial_pass_sql(self.used_sql(rows, c), k, self.keys.step, intercept, n_periods, within, total)
@@ -498,7 +498,7 @@ class Executor:
     def unit_mean_meats(self, rows: Rows, modes: Sequence[str], values: dict, params: dict) -> tuple[list[np.ndarray], int]:
         """One scan: the meats, clustered by unit, of the score sets ``modes`` of the
         estimators on unit means (``unit_mean_scores.sql``), and the number of units."""
-        total = moments.sum_function(self.chunks())
+        total = moments.sum_function(self.chunks(), self.dialect)
         k = rows.q - 1
 
         def make(c):

@@ -21,7 +21,7 @@ class Rows:
 
     ``differenced``: first differences of consecutive periods within units;
     ``demeaned``: unit means subtracted in SQL (two passes, for data whose unit means
-    dwarf their spread); ``weight``: the weight column (quoted) of a weighted fit: every
+    dwarf their spread); ``weight``: the weight column (its name, quoted per engine by the builders) of a weighted fit: every
     sum carries it, unit means are weighted, rows of weight 0 are left out."""
 
     columns: tuple[tuple[str, int], ...]

@@ -192,15 +192,6 @@ class SparkEngine:
             raise InputError(f"Effects beyond the unit and the period ({', '.join(spec.effects)}) are absorbed by "
                              "iteration over a private copy of the rows, which bigpanel does not make on Spark yet. "
                              "Fit the Parquet files with --engine duckdb, or keep to unit and period effects.")
-        untried = [what for what, asked in (
-            (f"the {spec.estimator} estimator", spec.estimator in ("between", "random-effects")),
-            ("weights (--weights)", bool(spec.weights)),
-            ("instruments (--endogenous, --instruments)", bool(spec.endogenous or spec.instruments)),
-            ("the serial-correlation test (--serial-test)", bool(spec.serial_test)),
-        ) if asked]
-        if untried:
-            raise InputError(f"bigpanel does not run {' or '.join(untried)} on Spark yet: its SQL has not been checked "
-                             "against DuckDB there. Fit the Parquet files with --engine duckdb.")
 
     def run_facts(self) -> dict:
         """For the result's ``run`` entry: the engine and its master."""

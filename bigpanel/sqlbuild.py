@@ -354,7 +354,7 @@ def design_rows_sql(
     lead) reads it |K|*step periods later. ``period_sql``: the period as a slot on its
     regular grid (:func:`period_slot_sql`) instead of the column. ``effects``: the key
     columns of each absorbed effect (many effects, :mod:`bigpanel.sweeps`), as k_e<i>_<m>.
-    ``weight``: the weight column (quoted), carried as ``k_w`` (the row's own weight, never lagged).
+    ``weight``: the weight column's name, carried as ``k_w`` (the row's own weight, never lagged).
     """
     period_sql = period_sql or quote_ident(period, dialect)
     items = [f"{quote_ident(unit, dialect)} AS k_unit", f"{period_sql} AS k_period"]
@@ -362,7 +362,7 @@ def design_rows_sql(
     items += [f"{quote_ident(c, dialect)} AS {name}" for e, keys in enumerate(effects)
               for c, name in zip(keys, effect_keys(e, len(keys)))]
     if weight is not None:
-        items.append(f"CAST({weight} AS DOUBLE) AS k_w")
+        items.append(f"CAST({quote_ident(weight, dialect)} AS DOUBLE) AS k_w")
     for j, (expr, lag) in enumerate(columns):
         value = f"CAST(({expr}) AS DOUBLE)"
         if lag:
@@ -1161,13 +1161,14 @@ def grouping_id(keys: Sequence[str], grouped: Sequence[str]) -> int:
 # ---------------------------------------------------------------- weights
 
 
-def bad_weights_sql(source: str, unit: str, period: str, weight: str, limit: int) -> tuple[str, str]:
-    """The count of rows whose weight (checked column ``weight``, quoted) is negative,
-    missing or not finite, and a query for the first ``limit`` of them (unit, period, weight)."""
-    value = f"CAST({weight} AS DOUBLE)"
-    bad = f"{value} IS NULL OR NOT isfinite({value}) OR {value} < 0"
+def bad_weights_sql(source: str, unit: str, period: str, weight: str, limit: int,
+                    dialect: Dialect = DUCKDB) -> tuple[str, str]:
+    """The count of rows whose weight (checked column ``weight``) is negative, missing or
+    not finite, and a query for the first ``limit`` of them (unit, period, weight)."""
+    value = f"CAST({quote_ident(weight, dialect)} AS DOUBLE)"
+    bad = f"{value} IS NULL OR NOT {dialect.is_finite(value)} OR {value} < 0"
     count = f"SELECT count(*) AS n_bad FROM {source} AS src WHERE {bad}"
-    rows = (f"SELECT {quote_ident(unit)} AS k_unit, {quote_ident(period)} AS k_period, {value} AS k_w "
+    rows = (f"SELECT {quote_ident(unit, dialect)} AS k_unit, {quote_ident(period, dialect)} AS k_period, {value} AS k_w "
             f"FROM {source} AS src WHERE {bad} LIMIT {int(limit)}")
     return count, rows
 

@@ -16,11 +16,6 @@ from .errors import InputError, echo
 EXAMPLES = 3  # rows named in the error
 
 
-def weight_sql(column: str) -> str:
-    """The weight column as the rows carry it (quoted; read as DOUBLE by the builders)."""
-    return sqlbuild.quote_ident(column)
-
-
 def check_weights(executor, column: str) -> None:
     """Refuse a weight column that is missing, not numeric, or holds a negative, missing
     or non-finite value in a row that passes the filter (naming a few such rows)."""
@@ -31,7 +26,8 @@ def check_weights(executor, column: str) -> None:
         raise InputError(f"Option 'weights' names column '{echo(column)}' in {engine.label}, which has type {kind}, not a "
                          "number; give a numeric column of non-negative weights.")
     keys = executor.keys
-    count_sql, rows_sql = sqlbuild.bad_weights_sql(engine.filtered(), keys.unit, keys.period, weight_sql(column), EXAMPLES)
+    count_sql, rows_sql = sqlbuild.bad_weights_sql(engine.filtered(), keys.unit, keys.period, column, EXAMPLES,
+                                                   executor.dialect)
     bad = int(executor.run_once(count_sql, scan=False)[0]["n_bad"])
     if not bad:
         return

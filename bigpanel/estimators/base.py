@@ -77,8 +77,7 @@ class Estimator:
         return design
 
     def rows(self, design: Design) -> Rows:
-        weight = sqlbuild.quote_ident(self.spec.weights) if self.spec.weights else None
-        return Rows(design.sql_columns, tuple(self.spec.cluster), self.differenced, weight=weight)
+        return Rows(design.sql_columns, tuple(self.spec.cluster), self.differenced, weight=self.spec.weights or None)
 
     @property
     def constant(self) -> bool:
