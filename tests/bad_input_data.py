@@ -93,4 +93,11 @@ def make_files(root: Path) -> Path:
     out_of_range = table.set_column(3, "staff_hours", pa.compute.multiply(table.column("staff_hours"), 1e-300))
     out_of_range = out_of_range.set_column(2, "parcels", pa.compute.multiply(table.column("parcels"), 1e300))
     pq.write_table(out_of_range, root / "out_of_range.parquet")
+    # spec files (bigpanel run)
+    head = '[source]\npath = "depots.parquet"\nunit = "depot"\nperiod = "month"\n[defaults]\noutcome = "parcels"\n'
+    (root / "misspelled.toml").write_text(head + '[models.base]\nregresors = ["staff_hours"]\n')
+    (root / "no_models.toml").write_text(head)
+    (root / "not_toml.toml").write_text(head + "[models.base\n")
+    (root / "column_typo.toml").write_text(head + '[models.base]\nregressors = ["staff_hour"]\n')
+    (root / "good.toml").write_text(head + '[models.base]\nregressors = ["staff_hours"]\n')
     return root

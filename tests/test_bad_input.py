@@ -43,7 +43,7 @@ ABBREVIATIONS = {"$FIT": FIT, "$KEYS": KEYS, "LONG500": LONG500}
 @dataclass(frozen=True)
 class Case:
     line: str  # the command line as the catalogue shows it (abbreviations above)
-    message: str  # the message; "…" stands for words of DuckDB's or pyarrow's own
+    message: str  # the message; "…" stands for words of DuckDB's or pyarrow's own (or a list of keys)
     exit: int
     usage: bool = False  # refused by the option parser (usage lines, then "Error: ...")
     isolated: bool = False  # run in a subprocess, without root's file-access override
@@ -236,6 +236,19 @@ CASES = [
          "Rows left out: 3 missing or not finite", 0),
     Case("bigpanel fit out_of_range.parquet $FIT",
          "Values of 'staff_hours' are out of a double's reach for this fit (its estimate or standard error is beyond a double's range). Rescale the term or the outcome by a power of ten in the term or a query, and scale the estimate back.", 2),
+    # ---- batch runs (spec files)
+    Case("bigpanel run nosuch.toml --out results",
+         "Spec file 'nosuch.toml' cannot be read (No such file or directory). Check the path.", 2),
+    Case("bigpanel run not_toml.toml --out results",
+         "Spec file not_toml.toml is not valid TOML (Expected ']' at the end of a table declaration (at line 7, column 13)). Fix the syntax.", 2),
+    Case("bigpanel run no_models.toml --out results",
+         'no_models.toml: no models. Add one table per model, e.g. [models.baseline] with outcome and regressors.', 2),
+    Case("bigpanel run misspelled.toml --out results",
+         "misspelled.toml, model 'base' has an unknown key 'regresors'. Did you mean 'regressors'? Known keys: …", 2),
+    Case("bigpanel run column_typo.toml --out results",
+         "column_typo.toml, model 'base', key 'regressors': Column 'staff_hour' not found in depots.parquet. Did you mean 'staff_hours'? Available: depot, month, parcels, staff_hours, promo, depot_kind, note.", 2),
+    Case("bigpanel run good.toml --out depots.parquet",
+         "Run folder 'depots.parquet' cannot be written (Not a directory). Give a folder you can write to.", 2),
 ]  # fmt: skip
 
 @pytest.fixture(scope="module")

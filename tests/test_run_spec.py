@@ -183,6 +183,13 @@ cluster = ["regoin"]
 [models.e]
 regressors = ["staff_hours"]
 source = "sorce"
+[models.f]
+regressors = ["staff_hours"]
+weights = "van"
+[models.g]
+regressors = ["vans"]
+endogenous = ["staff_hours"]
+instruments = ["lag(staf_hours)"]
 """)
     with pytest.raises(SpecError) as info:
         bigpanel.run_spec(spec, out=tmp_path / "out")
@@ -197,6 +204,8 @@ source = "sorce"
         "bad.toml, model 'b', key 'regressors': Column 'staf_hours' not found in demo-depots. Did you mean 'staff_hours'?",
         "bad.toml, model 'd', key 'cluster': Column 'regoin' not found in demo-depots. Did you mean 'region'",
         "bad.toml, model 'd', key 'regressors': Column 'fuel_prise' not found in demo-depots. Did you mean 'fuel_price'?",
+        "bad.toml, model 'f', key 'weights': Column 'van' not found in demo-depots. Did you mean 'vans'?",
+        "bad.toml, model 'g', key 'instruments': Column 'staf_hours' not found in demo-depots. Did you mean 'staff_hours'?",
     ]
     assert len(problems) == len(expected)
     for want, got in zip(expected, problems):

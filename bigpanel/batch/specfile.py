@@ -377,6 +377,17 @@ def _model_columns(label: str, m: ModelEntry, engine, numeric_expression) -> lis
             numeric_expression(engine, term.text if term.kind == "expr" else term.expr, term.expr, "Term", [])
         except InputError as exc:
             out.append(f"{label}, {where}, key 'regressors': {exc}")
+    for key, terms in (("endogenous", spec.endogenous), ("instruments", spec.instruments)):
+        for term in terms:
+            try:
+                numeric_expression(engine, term.text if term.kind == "expr" else term.expr, term.expr, "Term", [])
+            except InputError as exc:
+                out.append(f"{label}, {where}, key '{key}': {exc}")
+    if spec.weights:
+        column("weights", spec.weights)
+        if spec.weights in cols and not engine.is_numeric(cols[spec.weights]):
+            out.append(f"{label}, {where}, key 'weights': column '{spec.weights}' of {engine.label} has type "
+                       f"{cols[spec.weights]}, not a number; give a numeric column of non-negative weights.")
     try:
         numeric_expression(engine, spec.outcome, spec.outcome_sql, "Outcome", [])
     except InputError as exc:
