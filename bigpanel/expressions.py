@@ -293,8 +293,9 @@ def label_tree(label: str) -> dict | None:
 
 
 @_not_too_deep
-def query_sql(text: str) -> str:
-    """Check a source query (exactly one SELECT statement) and render it from its tree."""
+def query_sql(text: str, relative_to: str | None = None) -> str:
+    """Check a source query (exactly one SELECT statement) and render it from its tree;
+    ``relative_to``: the folder its relative file paths are read from (a spec file's)."""
     text = str(text).strip()
     if not text:
         raise InputError("Option 'query' is empty. Give one SELECT query.")
@@ -311,6 +312,10 @@ def query_sql(text: str) -> str:
     statements = tree.get("statements", [])
     if _has_class(statements[0], "PARAMETER"):
         raise InputError(f"Option 'query' {shown(text)} has a query parameter ($name or ?). Write the values into the query.")
+    if relative_to is not None:
+        from .lockdown import rebase_reads
+
+        rebase_reads(statements[0], relative_to)
     rendered = render_tree({"error": False, "statements": statements})
     again = parse_tree(rendered)
     if again.get("error") or _strip_locations(again.get("statements")) != _strip_locations(statements):

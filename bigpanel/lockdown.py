@@ -46,18 +46,18 @@ def refuse_remote_source(path: str) -> None:
                          "Download the data and point at the local copy.")
 
 
-def query_reads(tree: dict) -> list[str]:
-    """Strings a parsed query reads as files: table names that look like paths (``FROM
-    'x.parquet'``) and the positional text arguments of table functions
-    (``read_parquet(['a/*.parquet', 'b.parquet'])``), from ``json_serialize_sql``."""
-    found: list[str] = []
+def _read_places(tree: Any) -> list[tuple[dict, str, bool]]:
+    """Where a parsed query names what it reads as files, as (node, key, is_table_name):
+    table names (``FROM 'x.parquet'``) and the positional text arguments of table functions
+    (``read_parquet(['a/*.parquet', 'b.parquet'])``), in ``json_serialize_sql``'s tree."""
+    found: list[tuple[dict, str, bool]] = []
 
-    def strings(node: Any) -> Iterable[str]:
+    def strings(node: Any) -> Iterable[dict]:
         if isinstance(node, dict):
             if node.get("class") == "CONSTANT":
                 literal = node.get("literal") or {}
                 if literal.get("kind") == "STRING":
-                    yield literal.get("text", "")
+                    yield literal
                 return
             for value in node.values():
                 yield from strings(value)
@@ -68,12 +68,12 @@ def query_reads(tree: dict) -> list[str]:
     def walk(node: Any) -> None:
         if isinstance(node, dict):
             if node.get("type") == "BASE_TABLE" and not node.get("schema_name") and not node.get("catalog_name"):
-                found.append(node.get("table_name", ""))
+                found.append((node, "table_name", True))
             if node.get("type") == "TABLE_FUNCTION":
                 for argument in (node.get("function") or {}).get("arguments", []):
                     expression = argument.get("expression") if isinstance(argument, dict) else None
                     if expression and not argument.get("name") and expression.get("class") != _NAMED_ARGUMENT:
-                        found.extend(strings(expression))
+                        found.extend((literal, "text", False) for literal in strings(expression))
             for value in node.values():
                 walk(value)
         elif isinstance(node, list):
@@ -82,6 +82,35 @@ def query_reads(tree: dict) -> list[str]:
 
     walk(tree)
     return found
+
+
+def query_reads(tree: dict) -> list[str]:
+    """Strings a parsed query reads as files (:func:`_read_places`)."""
+    return [node.get(key, "") for node, key, _ in _read_places(tree)]
+
+
+def rebase_reads(tree: Any, folder: str) -> None:
+    """Make the relative file paths a parsed query reads relative to ``folder`` (a spec
+    file's) instead of the working folder, in place: a path is rewritten when it names a
+    file there, or is a glob whose folder before the first wildcard is there (a table
+    function's argument may also name a folder). Anything else (a table's name, a path
+    that exists nowhere) is left as written."""
+    for node, key, table_name in _read_places(tree):
+        text = node.get(key, "")
+        if not text or is_remote(text) or os.path.isabs(os.path.expanduser(text)):
+            continue
+        candidate = os.path.join(folder, text)
+        if any(c in text for c in _WILDCARDS):
+            parts = text.split(os.sep)
+            fixed = os.sep.join(parts[: next(i for i, p in enumerate(parts) if any(c in p for c in _WILDCARDS))])
+            found = os.path.isdir(os.path.join(folder, fixed))
+        else:
+            found = os.path.isfile(candidate) or (not table_name and os.path.isdir(candidate))
+        if found:
+            node[key] = candidate
+            qualified = node.get("qualified_name") if table_name else None
+            if isinstance(qualified, dict) and qualified.get("path") == [text]:  # a table's name is held twice
+                qualified["path"] = [candidate]
 
 
 def allowed_for_query(reads: Iterable[str]) -> tuple[list[str], list[str]]:

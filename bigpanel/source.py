@@ -229,6 +229,7 @@ class Source:
     frame: Any = field(default=None, compare=False, repr=False)
     engine: Engine = Engine()
     uri: str | None = field(default=None, repr=False, compare=False)  # postgres: URI or env:NAME (bigpanel.pg)
+    relative_to: str | None = None  # the folder a query's relative file paths are read from (None: the working folder)
     # SQL rendered from the checked parse trees of ``where`` and ``query`` (what runs)
     where_sql: str | None = field(default=None, init=False, repr=False)
     query_sql: str | None = field(default=None, init=False, repr=False)
@@ -239,7 +240,7 @@ class Source:
         if self.where is not None and str(self.where).strip():
             object.__setattr__(self, "where_sql", expression_sql(self.where, "Filter"))
         if self.query is not None:
-            object.__setattr__(self, "query_sql", query_sql(self.query))
+            object.__setattr__(self, "query_sql", query_sql(self.query, self.relative_to))
 
     def relation(self, files: Sequence[str] | None = None) -> str:
         """SQL FROM-clause text for all rows, or for a subset of the Parquet files."""
@@ -468,6 +469,7 @@ def open_source(
     csv_options: dict[str, str] | None = None,
     engine: Engine | None = None,
     csv_nulls: str | Sequence[str] | None = None,
+    relative_to: str | os.PathLike | None = None,
 ) -> Source:
     """Describe a data source without reading its rows.
 
@@ -495,6 +497,9 @@ def open_source(
         empty fields are always missing.
     engine : Engine, optional
         DuckDB settings.
+    relative_to : str or path, optional
+        The folder that relative file paths inside ``query`` are read from (spec files
+        give their own folder); by default the working folder.
     """
     engine = as_engine(engine)
     common = dict(where=where, engine=engine)
@@ -505,7 +510,8 @@ def open_source(
     if source is None:
         if not query:
             raise InputError("No source given. Pass a file, folder, glob, DuckDB file or a query.")
-        src = Source(kind="query", label="query", query=query, **common)
+        src = Source(kind="query", label="query", query=query, **common,
+                     relative_to=None if relative_to is None else os.path.abspath(relative_to))
     elif _is_lazy_frame(source):
         folder, path = _sink_lazy(source, engine)
         src = Source(kind="parquet", label="polars LazyFrame", files=(path,), **common)
@@ -530,7 +536,8 @@ def open_source(
             if not table and not query:
                 raise InputError(f"DuckDB file '{echo(path)}' needs a table name or a query. Pass --table NAME or --query SQL.")
             src = Source(kind="query" if query else "duckdb", label=echo(f"{Path(path).name}" + (f" table {table}" if table else "")),
-                         database=path, table=table, query=query, **common)
+                         database=path, table=table, query=query, **common,
+                         relative_to=None if relative_to is None or not query else os.path.abspath(relative_to))
         elif lower.endswith((".csv", ".tsv", ".csv.gz", ".tsv.gz", ".txt")):
             unknown = sorted(set(csv_options or {}) - set(sqlbuild.CSV_OPTIONS))
             if unknown:

@@ -520,3 +520,54 @@ def test_effect_columns_are_checked_and_folders_read_relative_to_the_spec(depots
     report = bigpanel.run_spec(spec, out=tmp_path / "out")
     assert report.exit_code == 0 and (tmp_path / "effects" / "effect_depot.parquet").is_file()
     assert not (elsewhere / "effects").exists()
+
+
+def test_query_paths_are_read_relative_to_the_spec(depots, tmp_path, monkeypatch):
+    """A query's relative file paths (a table function's argument, a quoted table name, a
+    glob) are read from the spec file's folder, whatever the working folder (a scheduler
+    starts jobs in its own); the rows equal the source given by its absolute path."""
+    data = tmp_path / "jobs" / "data"
+    shutil.copytree(panel(depots), data)
+    first = sorted(p.name for p in data.rglob("*.parquet"))[0]
+    spec = tmp_path / "jobs" / "spec.toml"
+    spec.write_text(f"""[sources.glob]
+query = "SELECT * FROM read_parquet('data/**/*.parquet') WHERE month > 2"
+unit = "depot"
+period = "month"
+[sources.file]
+query = "SELECT * FROM 'data/{first}'"
+unit = "depot"
+period = "month"
+[defaults]
+outcome = "parcels"
+regressors = ["staff_hours", "vans"]
+[models.on_glob]
+source = "glob"
+[models.on_file]
+source = "file"
+""")
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    report = bigpanel.run_spec(spec, out=tmp_path / "out")
+    assert report.exit_code == 0, report.manifest["models"]
+    for name, path, where in (("on_glob", data, "month > 2"), ("on_file", data / first, None)):
+        got = json.loads((tmp_path / "out" / "models" / f"{name}.json").read_text())
+        want = bigpanel.fit(path, "parcels", "staff_hours, vans", "depot", "month", where=where)
+        assert got["n_obs"] == want.n_obs
+        np.testing.assert_allclose([c["estimate"] for c in got["coefficients"]],
+                                   [c.estimate for c in want.coefficients], rtol=1e-12)
+
+
+def test_rebased_reads_leave_table_names_alone(tmp_path):
+    """Only names of files (or globs over folders) found in the spec's folder are rewritten."""
+    from bigpanel.expressions import query_sql
+
+    (tmp_path / "a.parquet").write_bytes(b"")
+    (tmp_path / "depots").mkdir()
+    sql = query_sql("SELECT * FROM depots JOIN 'a.parquet' USING (k) JOIN read_parquet('depots/*.parquet') USING (k) "
+                    "JOIN read_csv('missing.csv') USING (k)", str(tmp_path))
+    assert f"'{tmp_path / 'a.parquet'}'" in sql or f'"{tmp_path / "a.parquet"}"' in sql
+    assert f"'{tmp_path / 'depots' / '*.parquet'}'" in sql
+    assert "'missing.csv'" in sql and str(tmp_path / "missing.csv") not in sql
+    assert "(depots INNER JOIN" in sql  # a table's name, though a folder of that name is there

@@ -51,6 +51,7 @@ class SourceEntry:
     name: str
     options: dict  # checked source options; ``path`` absolute (relative to the spec file)
     shared: dict  # unit, period, period_step given in the source table
+    folder: str | None = None  # the spec file's folder: a query's relative file paths are read from it
 
 
 @dataclass(frozen=True)
@@ -196,7 +197,7 @@ def _sources(doc: dict, path: Path, problems: list[str]) -> dict[str, SourceEntr
             if not _exists(options["path"]):
                 problems.append(f"{label}, {where}, key 'path': '{echo(table['path'])}' does not exist "
                                 f"(read relative to the spec file: {echo(options['path'])}). Check the path.")
-        out[name] = SourceEntry(name, options, shared)
+        out[name] = SourceEntry(name, options, shared, folder=str(path.parent.resolve()))
     return out
 
 
@@ -291,6 +292,8 @@ def open_entry(source: SourceEntry, model_where: str | None = None, engine_overr
     # every other source option is an argument of open_source by the same name
     given = {k: v for k, v in o.items() if params.affects_result(k) and k not in ("path", "engine")}
     given["where"] = combined_where(source, model_where)
+    if "query" in o:
+        given["relative_to"] = source.folder
     return open_source(o.get("path"), **given,
                        engine=Engine(**settings, name=o.get("engine") or params.SOURCE_PARAMETERS["engine"].default))
 
