@@ -257,11 +257,26 @@ class Executor:
         the number of such keys ``n_keys`` (a GROUP BY of the two key columns; once)."""
         if self._duplicates is None:
             k = self.keys
-            sql = sqlbuild.checkup_duplicate_scan_sql(self.engine.filtered(), k.unit, sqlbuild.quote_ident(k.period, self.dialect),
-                                                      self.dialect)
-            self._duplicates = self.run_once(sql, {"n_examples": 5}, scan=False)
+            if self._units_with_duplicates() == 0:
+                self._duplicates = []
+            else:
+                sql = sqlbuild.checkup_duplicate_scan_sql(self.engine.filtered(), k.unit,
+                                                          sqlbuild.quote_ident(k.period, self.dialect), self.dialect)
+                self._duplicates = self.run_once(sql, {"n_examples": 5}, scan=False)
             self._keys_unique = not self._duplicates
         return self._duplicates
+
+    def _units_with_duplicates(self) -> int | None:
+        """Units with more rows than distinct periods, from the cheap probe
+        (``sqlbuild.duplicate_probe_sql``) on DuckDB when the periods lie on a grid of at
+        most 256 slots; None (unknown) otherwise."""
+        kind, grid = self.period_grid()
+        if self.dialect.name != "duckdb" or grid is None or grid.n_slots > 64 * sqlbuild.DUPLICATE_PROBE_WORDS:
+            return None
+        k = self.keys
+        slot = sqlbuild.period_slot_sql(k.period, kind, grid.mode, grid.first_ordinal, grid.slot_step, self.dialect)
+        sql = sqlbuild.duplicate_probe_sql(self.engine.filtered(), k.unit, k.period, slot, grid.n_slots)
+        return int(self.run_once(sql, scan=False)[0]["units_with_duplicates"])
 
     def _duplicate_text(self, rows: list[dict], count: bool = False) -> str:
         k = self.keys

@@ -944,6 +944,27 @@ def checkup_duplicate_scan_sql(source_sql: str, unit: str, period_value: str, di
     return render("checkup_duplicates", source=source_sql, unit=quote_ident(unit, dialect), period=period_value)
 
 
+DUPLICATE_PROBE_WORDS = 4  # 64-bit words of the duplicate probe's per-unit period set: grids up to 256 slots
+
+
+def duplicate_probe_sql(source_sql: str, unit: str, period: str, slot: str, n_slots: int) -> str:
+    """The number of units holding more rows than distinct periods (DuckDB): each unit's
+    set of period slots (``slot``: 0 to ``n_slots`` - 1, at most 64 * DUPLICATE_PROBE_WORDS)
+    as bits OR-ed into 64-bit words, counted against its rows. One GROUP BY over units
+    with one bit operation per row: a few times cheaper than grouping by unit and period
+    (``checkup_duplicates.sql``), which then runs only when this finds a duplicate."""
+    words = []
+    for w in range(-(-int(n_slots) // 64)):
+        low = 64 * w
+        words.append(f"coalesce(bit_count(bit_or(CASE WHEN slot >= {low} AND slot < {low + 64} "
+                     f"THEN CAST(1 AS UBIGINT) << CAST(slot - {low} AS UBIGINT) END)), 0)")
+    u, p = quote_ident(unit), quote_ident(period)
+    return (f"SELECT count(*) FILTER (WHERE n > periods) AS units_with_duplicates FROM ("
+            f"SELECT count(*) AS n, {' + '.join(words)} AS periods FROM ("
+            f"SELECT {u} AS k_unit, {slot} AS slot FROM {source_sql} AS src WHERE {u} IS NOT NULL AND {p} IS NOT NULL) "
+            "AS keyed GROUP BY k_unit) AS per_unit")
+
+
 # ---------------------------------------------------------------- shared scans (fit_many)
 # Many models on one source: the union of their columns z0..z{Q-1}; sample s is the rows
 # where its columns (``samples[s]``, indices into the union) are all finite.

@@ -113,3 +113,53 @@ def test_duplicate_keys_still_refused_by_first_differences(duplicated):
     _, path = duplicated
     with pytest.raises(InputError, match="duplicate"):
         bigpanel.fit(path, "lwage", ["expersq", "married"], "nr", "year", estimator="first-difference")
+
+
+def _grid_panel(periods, duplicate: bool) -> pd.DataFrame:
+    """12 units over ``periods`` (every other unit missing its third period: gaps), and,
+    when ``duplicate``, one key of a gappy unit held twice, so that the unit's rows do not
+    exceed its span: only a count of distinct periods finds it."""
+    rng = np.random.default_rng(5)
+    rows = [(u, p) for u in range(12) for i, p in enumerate(periods) if not (u % 2 and i == 2)]
+    if duplicate:
+        rows.append((1, periods[-1]))
+    df = pd.DataFrame(rows, columns=["unit", "period"])
+    df["x"] = rng.normal(size=len(df))
+    df["y"] = df["x"] + rng.normal(size=len(df))
+    return df
+
+
+GRIDS = {
+    "10 whole numbers": list(range(1, 11)),
+    "150 whole numbers, step 3 (three 64-bit words)": list(range(0, 450, 3)),
+    "300 whole numbers (past the probe: grouped by unit and period)": list(range(300)),
+    "months as dates": list(pd.date_range("2020-01-01", periods=14, freq="MS")),
+}
+
+
+@pytest.mark.parametrize("grid", list(GRIDS))
+@pytest.mark.parametrize("duplicate", [False, True])
+def test_duplicate_probe_agrees_with_pandas(tmp_path, monkeypatch, grid, duplicate):
+    # Reference: pandas duplicated() on (unit, period). The probe (a set of period slots
+    # per unit, sqlbuild.duplicate_probe_sql) must find a duplicate that leaves the unit's
+    # row count within its span, on every grid length and on dates.
+    df = _grid_panel(GRIDS[grid], duplicate)
+    path = write_parquet(df, tmp_path / "grid.parquet")
+    from bigpanel import sqlbuild
+
+    probes = []
+    real = sqlbuild.duplicate_probe_sql
+    monkeypatch.setattr(sqlbuild, "duplicate_probe_sql", lambda *a: probes.append(a) or real(*a))
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", BigpanelWarning)
+        res = bigpanel.fit(path, "y", "x", "unit", "period", variance="homoskedastic")
+    assert len(probes) == (0 if grid.startswith("300") else 1)
+    notes = [str(w.message) for w in caught if "duplicate" in str(w.message)]
+    n_keys = int(df.duplicated(["unit", "period"]).sum())
+    assert len(notes) == (1 if n_keys else 0) and n_keys == int(duplicate)
+    if notes:
+        assert "have 1 duplicate (unit, period) keys, for example (1, " in notes[0]
+    assert res.n_obs == len(df)
+    if duplicate:
+        with pytest.raises(InputError, match="duplicate"):
+            bigpanel.fit(path, "y", "x", "unit", "period", estimator="first-difference")
