@@ -40,10 +40,26 @@ def is_remote(path: str) -> bool:
     return bool(_REMOTE.match(path))
 
 
-def refuse_remote_source(path: str) -> None:
-    if is_remote(path):
-        raise InputError(f"Source '{echo(path)}' is a remote URL; bigpanel reads local files only. "
-                         "Download the data and point at the local copy.")
+# URL schemes of the file systems a Spark cluster reads itself (bigpanel.spark): with
+# --engine spark such a path goes to Spark unread; DuckDB never opens a URL.
+SPARK_SCHEMES = ("hdfs", "viewfs", "s3a", "s3", "gs", "abfs", "abfss", "wasb", "wasbs", "file")
+
+
+def url_scheme(path: str) -> str:
+    return path.split("://", 1)[0].strip().lower() if is_remote(path) else ""
+
+
+def refuse_remote_source(path: str, engine: str = "duckdb") -> None:
+    if not is_remote(path):
+        return
+    if engine == "spark":
+        if url_scheme(path) in SPARK_SCHEMES:
+            return
+        raise InputError(f"Source '{echo(path)}' is a {url_scheme(path)}:// URL, which the spark engine does not read; "
+                         f"give a folder, file or glob on a file system Spark reads ({', '.join(SPARK_SCHEMES)}).")
+    raise InputError(f"Source '{echo(path)}' is a remote URL; bigpanel reads local files only. "
+                     "Download the data and point at the local copy, or let a Spark cluster read it "
+                     "(--engine spark reads hdfs://, s3a://, gs://, abfss:// and file:// paths).")
 
 
 def _read_places(tree: Any) -> list[tuple[dict, str, bool]]:

@@ -230,6 +230,7 @@ class Source:
     engine: Engine = Engine()
     uri: str | None = field(default=None, repr=False, compare=False)  # postgres: URI or env:NAME (bigpanel.pg)
     relative_to: str | None = None  # the folder a query's relative file paths are read from (None: the working folder)
+    remote: bool = False  # ``files`` is one URL that the engine (Spark) lists and reads itself (lockdown.SPARK_SCHEMES)
     # SQL rendered from the checked parse trees of ``where`` and ``query`` (what runs)
     where_sql: str | None = field(default=None, init=False, repr=False)
     query_sql: str | None = field(default=None, init=False, repr=False)
@@ -528,9 +529,12 @@ def open_source(
                      uri=str(source).strip(), **common)
     else:
         path = str(source)
-        lockdown.refuse_remote_source(path)
+        lockdown.refuse_remote_source(path, engine.name)
         lower = path.lower()
-        if lower.endswith((".duckdb", ".db", ".ddb")):
+        if lockdown.is_remote(path):  # the spark engine's cluster file systems: Spark lists and reads them
+            shown_url = re.sub(r"^([^:/]+://)[^/@]*@", r"\1***@", path.strip())  # no key or password in a label
+            src = Source(kind="parquet", label=echo(shown_url), files=(path.strip(),), remote=True, **common)
+        elif lower.endswith((".duckdb", ".db", ".ddb")):
             if not os.path.exists(path):
                 raise InputError(f"DuckDB file '{echo(path)}' does not exist. Check the path.")
             if not table and not query:

@@ -262,7 +262,7 @@ class SparkEngine:
         return sqlbuild.head_sql(rows, head) if head else rows
 
     def row_count(self) -> int | None:
-        if self.source.where:
+        if self.source.where or self.source.remote:
             return None
         from .source import _parquet
 

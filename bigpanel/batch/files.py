@@ -210,8 +210,8 @@ def now() -> str:
 def input_files(src) -> list[str]:
     """The files a source reads: its Parquet or CSV files, its DuckDB file, or the files
     its query names (globs expanded); none for a PostgreSQL source (a table has no file)."""
-    if src.kind == "postgres":
-        return []
+    if src.kind == "postgres" or src.remote:
+        return []  # a table, or a URL only the engine reads (Spark): no local file to describe
     if src.files:
         return [os.path.abspath(f) for f in src.files]
     if src.database:
