@@ -729,8 +729,9 @@ def _pg_try_cast(args: list[str]) -> str:
     if kind != "double precision":
         raise Unsupported(f"TRY_CAST to {kind}", "PostgreSQL")
     special = ", ".join(_pg_string(t) for t in NUMBER_WORDS)
+    # (PostgreSQL 15 reads no underscores between digits: they are taken out first)
     return (f"(CASE WHEN {value} ~ {_pg_string(NUMBER_TEXT)} OR lower(trim({value})) IN ({special}) "
-            f"THEN CAST(trim({value}) AS double precision) END)")
+            f"THEN CAST(replace(trim({value}), E'_', E'') AS double precision) END)")
 
 
 def _pg_day_diff(args: list[str]) -> str:

@@ -152,10 +152,11 @@ class SparkDialect(Dialect):
 # is passed over; a $name marker anywhere else is a parameter
 _MARKER_OR_QUOTED = re.compile(r"'(?:[^'\\]|\\.)*'|\"(?:[^\"\\]|\\.)*\"|`(?:[^`]|``)*`|\$([A-Za-z_]\w*)")
 
-# Text that DuckDB's TRY_CAST reads as a DOUBLE: a decimal number with an optional exponent
-# and surrounding blanks, or one of these words (in any case, after trimming blanks)
-NUMBER_TEXT = r"^\s*[-+]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][-+]?[0-9]+)?\s*$"
-NUMBER_WORDS = ("nan", "inf", "+inf", "-inf", "infinity", "+infinity", "-infinity")
+# Text that DuckDB's TRY_CAST reads as a DOUBLE (checked against DuckDB 1.x): a decimal
+# number with an optional exponent, single underscores between digits, blanks around; or
+# one of these words (in any case, after trimming blanks)
+NUMBER_TEXT = r"^\s*[-+]?([0-9]+(_[0-9]+)*\.?([0-9]+(_[0-9]+)*)?|\.[0-9]+(_[0-9]+)*)([eE][-+]?[0-9]+(_[0-9]+)*)?\s*$"
+NUMBER_WORDS = ("nan", "+nan", "-nan", "inf", "+inf", "-inf", "infinity", "+infinity", "-infinity")
 
 DUCKDB = Dialect()
 SPARK = SparkDialect(name="spark", compensated="sum", param_marker=":", text_type="STRING", materialized="AS",
