@@ -33,6 +33,12 @@ nearly free.) Otherwise each scan is one query on one thread (so that its sums, 
 come out the same whatever the thread count), and peak memory is set by the unit scan's hash table
 (a small row per unit); an Engine ``memory_limit`` (and ``temp_directory``) bounds it,
 DuckDB then spills.
+
+Other engines: the scans run on the engine adapter (:func:`bigpanel.engine.adapter`), built
+in its dialect. PostgreSQL and Spark SQL read the source as one chunk, count a unit's
+distinct periods with COUNT(DISTINCT) and return the histogram as [n_periods, units] pairs;
+Spark's sums are plain, so its figures agree with DuckDB's to a tolerance
+(:data:`bigpanel.spark.RELATIVE_TOLERANCE`), its counts exactly.
 """
 
 from __future__ import annotations
