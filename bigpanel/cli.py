@@ -135,6 +135,8 @@ def checkup_command(
     threads: ThreadsOpt = None,
     memory_limit: MemoryLimitOpt = None,
     temp_directory: TempDirectoryOpt = None,
+    engine: EngineOpt = None,
+    spark_master: SparkMasterOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Check a panel: keys, period grid, balance, gaps, duplicate keys, missing values, and
@@ -142,7 +144,8 @@ def checkup_command(
     from .panel import inspect_panel
 
     src = _source_from_options(source, table=table, query=query, where=where, csv_types=csv_types, csv_nulls=csv_null,
-                               threads=threads, memory_limit=memory_limit, temp_directory=temp_directory)
+                               threads=threads, memory_limit=memory_limit, temp_directory=temp_directory,
+                               engine_name=engine.value if engine else None, spark_master=spark_master)
     report = inspect_panel(src, unit, period, _split_names(columns))
     if as_json:
         _print_json(report.to_dict())

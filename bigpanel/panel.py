@@ -33,6 +33,12 @@ nearly free.) Otherwise each scan is one query on one thread (so that its sums, 
 come out the same whatever the thread count), and peak memory is set by the unit scan's hash table
 (a small row per unit); an Engine ``memory_limit`` (and ``temp_directory``) bounds it,
 DuckDB then spills.
+
+Other engines: the scans run on the engine adapter (:func:`bigpanel.engine.adapter`), built
+in its dialect. PostgreSQL and Spark SQL read the source as one chunk, count a unit's
+distinct periods with COUNT(DISTINCT) and return the histogram as [n_periods, units] pairs;
+Spark's sums are plain, so its figures agree with DuckDB's to a tolerance
+(:data:`bigpanel.spark.RELATIVE_TOLERANCE`), its counts exactly.
 """
 
 from __future__ import annotations
@@ -52,7 +58,7 @@ from . import moments, solve, sqlbuild
 from .convert import json_ready
 from .errors import ECHO_LIMIT, InputError, echo
 from .results import run_record
-from .source import Session, Source, as_source, is_integer, is_numeric
+from .source import Session, Source, as_engine, as_source, is_integer, is_numeric
 
 MAX_PERIODS = 1_000_000
 """More distinct periods than this and the period column is taken to be the wrong one."""
@@ -216,7 +222,7 @@ class PanelReport:
 
 def inspect_panel(source, unit: str, period: str, columns: Sequence[str] | None = None, *, where: str | None = None,
                   table: str | None = None, query: str | None = None, csv_types: dict | None = None,
-                  csv_nulls=None, engine=None) -> PanelReport:
+                  csv_nulls=None, engine=None, spark_master: str | None = None) -> PanelReport:
     """Check a panel's structure and the within-unit variation of its columns.
 
     Parameters
@@ -229,6 +235,9 @@ def inspect_panel(source, unit: str, period: str, columns: Sequence[str] | None 
     columns : list of str, optional
         Columns to check; each must be numeric. By default every other column is checked
         (non-numeric ones for missing values only).
+    engine : Engine or str, optional
+        As in :func:`bigpanel.fit`: ``"spark"`` runs every scan as Spark SQL over the
+        Parquet files (only aggregates come back), with ``spark_master`` as there.
 
     Returns
     -------
@@ -239,11 +248,8 @@ def inspect_panel(source, unit: str, period: str, columns: Sequence[str] | None 
     InputError
         For an unknown or unsuitable column, a bad filter, or no rows after the filter.
     """
-    source = as_source(source, where, table, query, csv_types, engine, csv_nulls)
-    if source.engine.name != "duckdb":
-        raise InputError(f"The checkup runs on the duckdb engine only; --engine {source.engine.name} is not available "
-                         "for it yet. Leave out --engine (the checkup reads the files with DuckDB).")
-    from .engine import open_session
+    source = as_source(source, where, table, query, csv_types, as_engine(engine, spark_master), csv_nulls)
+    from .engine import adapter, open_session
 
     with open_session(source) as session:
         kinds = _check_arguments(session, unit, period, columns)
@@ -251,20 +257,22 @@ def inspect_panel(source, unit: str, period: str, columns: Sequence[str] | None 
         schema = session.columns()
         checked = [c for c in schema if c not in (unit, period)] if columns is None else list(dict.fromkeys(columns))
         numeric = [c for c in checked if is_numeric(schema[c])]
-        period_value = sqlbuild.period_value(period, kinds)
+        engine = adapter(session)  # DuckDB, PostgreSQL or Spark: the scans' SQL in its dialect
+        period_value = sqlbuild.period_value(period, kinds, engine.dialect)
 
-        shifts = _probe_shifts(session, checked, numeric)
-        chunks = moments.plan_chunks(session, unit)
-        by_period = _scan_periods(session, chunks, unit, period_value, checked, shifts)
+        shifts = _probe_shifts(engine, checked, numeric)
+        chunks = engine.plan_chunks(unit)
+        by_period = _scan_periods(engine, chunks, unit, period_value, checked, shifts)
         grid = _period_grid(by_period["period_value"], kinds)
         if grid is None:
             raise InputError(_no_rows_message(session.source, unit, period, by_period["n_rows"]))
-        units = _scan_units(session, chunks, unit, period_value, checked, shifts, grid)
+        units = _scan_units(engine, chunks, unit, period_value, checked, shifts, grid)
         duplicates: list[tuple[Any, Any, int]] = []
         n_duplicate_keys = 0
         if units["duplicate_rows"]:
-            duplicates, n_duplicate_keys = _scan_duplicates(session, chunks, unit, period_value)
-        tokens = _number_tokens(session, [c for c in checked if schema[c].upper() == "VARCHAR"])
+            duplicates, n_duplicate_keys = _scan_duplicates(engine, chunks, unit, period_value)
+        tokens = _number_tokens(engine, [c for c in checked if schema[c].upper() == "VARCHAR"])
+        run = run_record(engine.thread_count()) | getattr(engine, "run_facts", dict)()
 
     keyed = by_period["keyed"]
     column_checks = tuple(replace(_column_check(c, schema[c], j, by_period, units, shifts.get(j)), number_tokens=tokens.get(c, ()))
@@ -299,7 +307,7 @@ def inspect_panel(source, unit: str, period: str, columns: Sequence[str] | None 
         duplicate_examples=tuple(duplicates),
         columns=column_checks,
         absent_in_files=_absent_in_files(source, checked),
-        run=run_record(moments.thread_count(session)),
+        run=run,
     )
 
 
@@ -346,14 +354,14 @@ def _no_rows_message(source: Source, unit: str, period: str, n_rows: np.ndarray)
 # ---------------------------------------------------------------- scan 1: periods
 
 
-def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> dict[int, tuple[float, float]]:
+def _probe_shifts(engine, checked: list[str], numeric: list[str]) -> dict[int, tuple[float, float]]:
     """Column index -> (shift, scale) for the numeric columns: the mean of the first rows'
     finite values (0.0 when there are none) and a power of two near 1 / their magnitude."""
     indices = [j for j, c in enumerate(checked) if c in numeric]
     if not indices:
         return {}
-    sql = sqlbuild.checkup_shift_probe_sql(session.source.filtered(), checked, indices)
-    row = session.run(sql, {"probe_rows": PROBE_ROWS}).to_pylist()[0]
+    sql = sqlbuild.checkup_shift_probe_sql(engine.filtered(), checked, indices, engine.dialect)
+    row = engine.run(sql, {"probe_rows": PROBE_ROWS}).to_pylist()[0]
     out = {}
     for j in indices:
         shift = row[f"c_{j}"] if row[f"c_{j}"] is not None and math.isfinite(row[f"c_{j}"]) else 0.0
@@ -361,22 +369,22 @@ def _probe_shifts(session: Session, checked: list[str], numeric: list[str]) -> d
     return out
 
 
-def _scan_periods(session: Session, chunks: list[moments.Chunk], unit: str, period_value: str, checked: list[str],
+def _scan_periods(engine, chunks: list[moments.Chunk], unit: str, period_value: str, checked: list[str],
                   shifts: dict[int, tuple[float, float]]) -> dict:
     """Scan 1 over each chunk; the chunks' period rows are kept side by side (every figure
     taken from them is a sum, or a two-pass formula valid over any partition of the rows)."""
     if len(chunks) > 1:
         chunks = chunks + [moments.Chunk(without_unit=True)]
     max_groups = 2 * MAX_PERIODS + 2  # each period twice (with and without a unit), plus NULL periods
-    tables = moments.run_chunks(
-        session, chunks, lambda c: sqlbuild.checkup_period_scan_sql(c.source_sql(session.source, unit), unit, period_value, checked, list(shifts)),
+    tables = engine.run_chunks(
+        chunks, lambda c: sqlbuild.checkup_period_scan_sql(engine.filtered(c, unit), unit, period_value, checked, list(shifts), engine.dialect),
         {"max_groups": max_groups} | _shift_params(shifts),
     )
-    table = pa.concat_tables(tables)
+    table = _utc_times(pa.concat_tables(tables))
     n_distinct = len(table.column("period_value").drop_null().unique())
     if any(t.num_rows >= max_groups for t in tables) or n_distinct > MAX_PERIODS:
         raise InputError(
-            f"The period column of {session.source.label} has more than {MAX_PERIODS:,} distinct values. "
+            f"The period column of {engine.source.label} has more than {MAX_PERIODS:,} distinct values. "
             "Check that the period option names the time column."
         )
     data = {name: table.column(name) for name in table.column_names}
@@ -475,20 +483,30 @@ def _shift_params(shifts: dict[int, tuple[float, float]]) -> dict[str, float]:
     return params
 
 
+def _utc_times(table: pa.Table) -> pa.Table:
+    """Timestamps with a time zone (Spark's TIMESTAMP, in the session's UTC) as the plain
+    UTC timestamps DuckDB's CAST(... AS TIMESTAMP) gives."""
+    for i, field in enumerate(table.schema):
+        if pa.types.is_timestamp(field.type) and field.type.tz is not None:
+            plain = pa.timestamp(field.type.unit)
+            table = table.set_column(i, pa.field(field.name, plain), table.column(i).cast(plain))
+    return table
+
+
 # ---------------------------------------------------------------- scan 2: units
 
 
-def _scan_units(session: Session, chunks: list[moments.Chunk], unit: str, period_value: str, checked: list[str],
+def _scan_units(engine, chunks: list[moments.Chunk], unit: str, period_value: str, checked: list[str],
                 shifts: dict[int, tuple[float, float]], grid: _Grid) -> dict:
     """Scan 2 over each chunk (every unit lies in one chunk), added up in chunk order."""
     bitmap = grid.n_slots <= BITMAP_MAX_SLOTS
     params = {"first": grid.first_ordinal, "step": grid.slot_step, "n_periods": grid.n_periods} | _shift_params(shifts)
     if bitmap:
         params["last_slot"] = grid.n_slots - 1
-    tables = moments.run_chunks(
-        session, chunks,
-        lambda c: sqlbuild.checkup_unit_scan_sql(c.source_sql(session.source, unit), unit, period_value, checked, list(shifts), grid.mode, bitmap,
-                                                 getattr(session, "dialect", sqlbuild.DUCKDB)),
+    tables = engine.run_chunks(
+        chunks,
+        lambda c: sqlbuild.checkup_unit_scan_sql(engine.filtered(c, unit), unit, period_value, checked, list(shifts), grid.mode, bitmap,
+                                                 engine.dialect),
         params,
     )
     rows = [t.to_pylist()[0] for t in tables]
@@ -509,8 +527,8 @@ def _scan_units(session: Session, chunks: list[moments.Chunk], unit: str, period
 
 
 def histogram_pairs(value) -> list[tuple[int, int]]:
-    """(value, count) pairs of a histogram: a map (DuckDB) or a flat [value, count, ...] list
-    (PostgreSQL flattens an array of pairs)."""
+    """(value, count) pairs of a histogram: a map (DuckDB), a list of [value, count] pairs
+    (Spark) or a flat [value, count, ...] list (PostgreSQL flattens an array of pairs)."""
     if value and not isinstance(value, dict) and not isinstance(value[0], (tuple, list, dict)):
         return list(zip(value[::2], value[1::2]))
     return list(dict(value).items())
@@ -530,10 +548,11 @@ def _quartiles(histogram) -> tuple[int, ...]:
 # ---------------------------------------------------------------- scan 3: duplicate keys
 
 
-def _scan_duplicates(session: Session, chunks: list[moments.Chunk], unit: str, period_value: str) -> tuple[list[tuple[Any, Any, int]], int]:
+def _scan_duplicates(engine, chunks: list[moments.Chunk], unit: str, period_value: str) -> tuple[list[tuple[Any, Any, int]], int]:
     """Scan 3 over each chunk: the first offending keys of all chunks, and their count."""
-    tables = moments.run_chunks(session, chunks, lambda c: sqlbuild.checkup_duplicate_scan_sql(c.source_sql(session.source, unit), unit, period_value),
-                                {"n_examples": N_DUPLICATE_EXAMPLES})
+    tables = engine.run_chunks(chunks, lambda c: sqlbuild.checkup_duplicate_scan_sql(engine.filtered(c, unit), unit, period_value, engine.dialect),
+                               {"n_examples": N_DUPLICATE_EXAMPLES})
+    tables = [_utc_times(t) for t in tables]
     rows = [r for t in tables for r in t.to_pylist()]
     n_keys = sum(int(t.column("n_keys")[0].as_py()) for t in tables if t.num_rows)
     examples = sorted((r["unit_key"], r["period_key"], int(r["n_rows"])) for r in rows)
@@ -728,19 +747,19 @@ def _render(r: PanelReport, color: bool) -> str:
 MAX_NUMBER_TOKENS = 5  # a text column with more distinct non-numbers than this is text
 
 
-def _number_tokens(session: Session, text_columns: list[str]) -> dict[str, tuple[str, ...]]:
+def _number_tokens(engine, text_columns: list[str]) -> dict[str, tuple[str, ...]]:
     """Text columns whose non-missing values are mostly (over half) numbers, with their
     few other values (at most MAX_NUMBER_TOKENS distinct ones): an exported CSV's ``NA``."""
     if not text_columns:
         return {}
-    source_sql = session.source.filtered()
-    counts = session.run(sqlbuild.text_number_counts_sql(source_sql, text_columns)).to_pylist()[0]
+    source_sql = engine.filtered()
+    counts = engine.run(sqlbuild.text_number_counts_sql(source_sql, text_columns, engine.dialect)).to_pylist()[0]
     out = {}
     for j, c in enumerate(text_columns):
         n, num = int(counts[f"n{j}"] or 0), int(counts[f"num{j}"] or 0)
         if num == 0 or num == n or 2 * num <= n:
             continue
-        rows = session.run(sqlbuild.text_tokens_sql(source_sql, c, MAX_NUMBER_TOKENS + 1)).to_pylist()
+        rows = engine.run(sqlbuild.text_tokens_sql(source_sql, c, MAX_NUMBER_TOKENS + 1, engine.dialect)).to_pylist()
         if len(rows) <= MAX_NUMBER_TOKENS:
             out[c] = tuple(str(r["token"]) for r in rows)
     return out

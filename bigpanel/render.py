@@ -33,6 +33,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 
 from .source import parse_tree
+from .sqlbuild import NUMBER_TEXT, NUMBER_WORDS
 
 MAX_RENDERED = 200_000  # characters: a guarded function repeats its argument; refuse a blow-up
 
@@ -721,19 +722,16 @@ def _pg_year_month(part: str) -> Callable[[list[str]], str]:
     return _arity(part, (1,), lambda a: f"CAST(date_part(E'{part}', {a[0]}) AS bigint)")
 
 
-_NUMBER_TEXT = r"^\s*[-+]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][-+]?[0-9]+)?\s*$"
-_SPECIAL_TEXT = ("nan", "inf", "+inf", "-inf", "infinity", "+infinity", "-infinity")
-
-
 def _pg_try_cast(args: list[str]) -> str:
     # TRY_CAST(text AS DOUBLE) (the checkup's test for numbers written as text): NULL unless
     # the text reads as a number as DuckDB reads it
     value, kind = args
     if kind != "double precision":
         raise Unsupported(f"TRY_CAST to {kind}", "PostgreSQL")
-    special = ", ".join(_pg_string(t) for t in _SPECIAL_TEXT)
-    return (f"(CASE WHEN {value} ~ {_pg_string(_NUMBER_TEXT)} OR lower(trim({value})) IN ({special}) "
-            f"THEN CAST(trim({value}) AS double precision) END)")
+    special = ", ".join(_pg_string(t) for t in NUMBER_WORDS)
+    # (PostgreSQL 15 reads no underscores between digits: they are taken out first)
+    return (f"(CASE WHEN {value} ~ {_pg_string(NUMBER_TEXT)} OR lower(trim({value})) IN ({special}) "
+            f"THEN CAST(replace(trim({value}), E'_', E'') AS double precision) END)")
 
 
 def _pg_day_diff(args: list[str]) -> str:

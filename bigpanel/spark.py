@@ -34,7 +34,7 @@ from pathlib import Path
 
 from . import moments, sqlbuild
 from .errors import BigpanelError, InputError, echo, shown, unknown_column
-from .source import is_integer, is_numeric
+from .source import Session, is_integer, is_numeric
 
 # Agreement with DuckDB on the same data (coefficients and standard errors, relative to
 # the larger magnitude): Spark's plain sums in partition order against DuckDB's
@@ -209,11 +209,7 @@ class SparkEngine:
     def is_integer(self, column_type: str) -> bool:
         return is_integer(column_type)
 
-    def require_columns(self, names: Sequence[str]) -> None:
-        cols = self.columns()
-        for name in names:
-            if name not in cols:
-                raise unknown_column(name, self.label, cols)
+    require_columns = Session.require_columns  # the same checks on Spark's columns and types
 
     def check_filter(self) -> None:
         if not self.source.where_sql:

@@ -38,6 +38,7 @@ class Dialect:
     anti_join: str = "ANTI JOIN"
     semi_join: str = "SEMI JOIN"
     one: str = "1.0"  # the DOUBLE one (Spark reads 1.0 as a DECIMAL)
+    mean: str = "favg"  # a mean whose result does not depend on the order of rows (or the plain one)
 
     def quote_ident(self, name: str) -> str:
         return '"' + str(name).replace('"', '""') + '"'
@@ -55,6 +56,11 @@ class Dialect:
 
     def is_finite(self, expression: str) -> str:
         return f"isfinite({expression})"
+
+    def number_or_null(self, text: str) -> str:
+        """An expression that is NULL unless the text ``text`` reads as a number (as DuckDB's
+        TRY_CAST to DOUBLE reads it)."""
+        return f"TRY_CAST({text} AS DOUBLE)"
 
     def grouping(self, keys: Sequence[str]) -> str:
         """The grouping set's id over ``keys``: a bit per key left out, the first key most
@@ -99,6 +105,11 @@ class SparkDialect(Dialect):
     def is_finite(self, expression: str) -> str:
         return f"(({expression}) * 0 = 0)"  # NaN and infinities times 0 are NaN, unequal to 0 in Spark too
 
+    def number_or_null(self, text: str) -> str:
+        # Spark's cast also reads '1.5d' and hexadecimal floats: the pattern of DuckDB's numbers instead
+        words = ", ".join(self.quote_literal(w) for w in NUMBER_WORDS)
+        return f"(CASE WHEN {text} RLIKE {self.quote_literal(NUMBER_TEXT)} OR lower(trim({text})) IN ({words}) THEN 1 END)"
+
     def grouping(self, keys: Sequence[str]) -> str:
         # grouping_id() must list the columns in GROUP BY's order; bit by bit it need not
         n = len(keys)
@@ -141,9 +152,15 @@ class SparkDialect(Dialect):
 # is passed over; a $name marker anywhere else is a parameter
 _MARKER_OR_QUOTED = re.compile(r"'(?:[^'\\]|\\.)*'|\"(?:[^\"\\]|\\.)*\"|`(?:[^`]|``)*`|\$([A-Za-z_]\w*)")
 
+# Text that DuckDB's TRY_CAST reads as a DOUBLE (checked against DuckDB 1.x): a decimal
+# number with an optional exponent, single underscores between digits, blanks around; or
+# one of these words (in any case, after trimming blanks)
+NUMBER_TEXT = r"^\s*[-+]?([0-9]+(_[0-9]+)*\.?([0-9]+(_[0-9]+)*)?|\.[0-9]+(_[0-9]+)*)([eE][-+]?[0-9]+(_[0-9]+)*)?\s*$"
+NUMBER_WORDS = ("nan", "+nan", "-nan", "inf", "+inf", "-inf", "infinity", "+infinity", "-infinity")
+
 DUCKDB = Dialect()
 SPARK = SparkDialect(name="spark", compensated="sum", param_marker=":", text_type="STRING", materialized="AS",
-                     anti_join="LEFT ANTI JOIN", semi_join="LEFT SEMI JOIN", one="CAST(1 AS DOUBLE)")
+                     anti_join="LEFT ANTI JOIN", semi_join="LEFT SEMI JOIN", one="CAST(1 AS DOUBLE)", mean="avg")
 # PostgreSQL: builders write DuckDB's SQL for it, and bigpanel.render writes PostgreSQL's
 # text from DuckDB's parse tree of each query (fsum and favg become sum and avg there, which
 # add rows in one order on one process; isfinite a comparison). The dialect tells builders
@@ -215,20 +232,20 @@ CSV_OPTIONS = ("delim", "sep", "quote", "escape", "header", "decimal_separator",
                "timestampformat", "new_line", "comment")
 
 
-def text_number_counts_sql(source_sql: str, columns: Sequence[str]) -> str:
+def text_number_counts_sql(source_sql: str, columns: Sequence[str], dialect: Dialect = DUCKDB) -> str:
     """Per text column j: its non-missing values (n{j}) and those that read as numbers (num{j})."""
     items = []
     for j, c in enumerate(columns):
-        q = quote_ident(c)
-        items += [f"count({q}) AS n{j}", f"count(TRY_CAST({q} AS DOUBLE)) AS num{j}"]
+        q = quote_ident(c, dialect)
+        items += [f"count({q}) AS n{j}", f"count({dialect.number_or_null(q)}) AS num{j}"]
     return f"SELECT {', '.join(items)} FROM {source_sql} AS src"
 
 
-def text_tokens_sql(source_sql: str, column: str, limit: int) -> str:
+def text_tokens_sql(source_sql: str, column: str, limit: int, dialect: Dialect = DUCKDB) -> str:
     """The most frequent values of a text column that do not read as numbers."""
-    q = quote_ident(column)
+    q = quote_ident(column, dialect)
     return (f"SELECT {q} AS token, count(*) AS n FROM {source_sql} AS src "
-            f"WHERE {q} IS NOT NULL AND TRY_CAST({q} AS DOUBLE) IS NULL GROUP BY {q} ORDER BY n DESC, token LIMIT {int(limit)}")
+            f"WHERE {q} IS NOT NULL AND {dialect.number_or_null(q)} IS NULL GROUP BY {q} ORDER BY n DESC, token LIMIT {int(limit)}")
 
 
 def csv_relation(paths: list[str], types: dict[str, str] | None, options: dict[str, str] | None,
@@ -843,21 +860,23 @@ def period_value(period: str, kind: str, dialect: Dialect = DUCKDB) -> str:
     return f"CAST({quoted} AS TIMESTAMP)" if kind == "timestamp" else quoted
 
 
-def checkup_shift_probe_sql(source_sql: str, checked: Sequence[str], numeric: Sequence[int]) -> str:
+def checkup_shift_probe_sql(source_sql: str, checked: Sequence[str], numeric: Sequence[int],
+                            dialect: Dialect = DUCKDB) -> str:
     """SQL of the shift probe: for each index j (into ``checked``) in ``numeric``, the mean c_j
     and the largest magnitude m_j of the finite values."""
     means = []
     for j in numeric:
-        raw = f"CAST({quote_ident(checked[j])} AS DOUBLE)"
-        means += [f"favg({raw}) FILTER (WHERE isfinite({raw})) AS c_{j}",
-                  f"max(abs({raw})) FILTER (WHERE isfinite({raw})) AS m_{j}"]
+        raw = f"CAST({quote_ident(checked[j], dialect)} AS DOUBLE)"
+        finite = dialect.is_finite(raw)
+        means += [f"{dialect.mean}({raw}) FILTER (WHERE {finite}) AS c_{j}",
+                  f"max(abs({raw})) FILTER (WHERE {finite}) AS m_{j}"]
     return render("checkup_shifts", source=source_sql, means=", ".join(means))
 
 
-def _shifted(name: str, j: int) -> str:
+def _shifted(name: str, j: int, dialect: Dialect = DUCKDB) -> str:
     """Column j shifted by $c_j and scaled by $d_j (a power of two); NULL unless finite."""
-    raw = f"CAST({quote_ident(name)} AS DOUBLE)"
-    return f"(CASE WHEN isfinite({raw}) THEN ({raw} - $c_{j}) * $d_{j} END)"
+    raw = f"CAST({quote_ident(name, dialect)} AS DOUBLE)"
+    return f"(CASE WHEN {dialect.is_finite(raw)} THEN ({raw} - $c_{j}) * $d_{j} END)"
 
 
 def rows_without_unit_sql(source_sql: str, unit: str) -> str:
@@ -866,37 +885,36 @@ def rows_without_unit_sql(source_sql: str, unit: str) -> str:
 
 
 def checkup_period_scan_sql(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
-                            numeric: Sequence[int]) -> str:
+                            numeric: Sequence[int], dialect: Dialect = DUCKDB) -> str:
     """SQL of the period scan. Column j's aggregates are n_j (values present; for j in
     ``numeric``, indices into ``checked``, finite values) and, for numeric columns, nf_j (NaN
     and infinite values), the shifted and scaled mean_j and ss_j, and the raw min_j, max_j."""
     parts = []
     for j, name in enumerate(checked):
-        q = quote_ident(name)
+        q = quote_ident(name, dialect)
         if j not in numeric:
             parts.append(f"count({q}) AS n_{j}")
             continue
-        v, raw = _shifted(name, j), f"CAST({q} AS DOUBLE)"
-        finite = f"FILTER (WHERE isfinite({raw}))"
-        parts += [f"count({v}) AS n_{j}", f"count({q}) FILTER (WHERE NOT isfinite({raw})) AS nf_{j}",
-                  f"favg({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}",
+        v, raw = _shifted(name, j, dialect), f"CAST({q} AS DOUBLE)"
+        finite = f"FILTER (WHERE {dialect.is_finite(raw)})"
+        parts += [f"count({v}) AS n_{j}", f"count({q}) FILTER (WHERE NOT {dialect.is_finite(raw)}) AS nf_{j}",
+                  f"{dialect.mean}({v}) AS mean_{j}", f"regr_sxx({v}, {v}) AS ss_{j}",
                   f"min({raw}) {finite} AS min_{j}", f"max({raw}) {finite} AS max_{j}"]
     return render(
         "checkup_periods",
         source=source_sql,
         period=period_value,
-        unit=quote_ident(unit),
+        unit=quote_ident(unit, dialect),
         column_aggregates="".join(",\n       " + p for p in parts),
     )
 
 
-def _ordinal(period_value: str, mode: str) -> str:
-    return DUCKDB.ordinal(period_value, mode)
-
-
-def slot_expression(period_value: str, mode: str) -> str:
+def slot_expression(period_value: str, mode: str, dialect: Dialect = DUCKDB) -> str:
     """The period's slot on the grid; ``$first`` is the first period's ordinal, ``$step`` the step."""
-    return f"CAST(({_ordinal(period_value, mode)} - $first) // $step AS BIGINT)"
+    ordinal = dialect.ordinal(period_value, mode)
+    if isinstance(dialect, SparkDialect):  # no // there; DuckDB's text (PostgreSQL's source) stays as it was
+        return f"CAST({dialect.whole_division(f'{ordinal} - $first', '$step')} AS BIGINT)"
+    return f"CAST(({ordinal} - $first) // $step AS BIGINT)"
 
 
 def period_slot_sql(period: str, kind: str, mode: str, first: int, step: int, dialect: Dialect = DUCKDB) -> str:
@@ -915,23 +933,25 @@ def distinct_periods_sql(source: str, period: str, kind: str, limit: int, dialec
 def checkup_unit_scan_sql(source_sql: str, unit: str, period_value: str, checked: Sequence[str],
                           numeric: Sequence[int], mode: str, bitmap: bool, dialect: Dialect = DUCKDB) -> str:
     """SQL of the unit scan; each j in ``numeric`` (indices into ``checked``) gives
-    within_ss_j and varying_units_j. On PostgreSQL (no bitstring_agg, no histogram) distinct
-    periods are counted with count(DISTINCT) and the histogram comes as [n_periods, units]
-    pairs (flattened: ``panel.histogram_pairs`` reads both forms)."""
+    within_ss_j and varying_units_j. On PostgreSQL and Spark (no bitstring_agg, no histogram)
+    distinct periods are counted with count(DISTINCT) and the histogram comes as
+    [n_periods, units] pairs (PostgreSQL flattens them: ``panel.histogram_pairs`` reads
+    every form)."""
     bitmap = bitmap and dialect.name == "duckdb"
+    pairs = "collect_list(array(n_periods, n_units))" if dialect.name == "spark" else "array_agg(ARRAY[n_periods, n_units])"
     periods = "histogram(n_periods)" if dialect.name == "duckdb" else (
-        "(SELECT array_agg(ARRAY[n_periods, n_units]) FROM "
+        f"(SELECT {pairs} FROM "
         "(SELECT n_periods, count(*) AS n_units FROM per_unit GROUP BY n_periods) AS h)")
-    values = [f"{_shifted(checked[j], j)} AS v_{j}" for j in numeric]
+    values = [f"{_shifted(checked[j], j, dialect)} AS v_{j}" for j in numeric]
     per_unit = [f"regr_sxx(v_{j}, v_{j}) AS ss_{j}" for j in numeric]
-    totals = [f"fsum(ss_{j}) AS within_ss_{j},\n       count(*) FILTER (WHERE ss_{j} > 0) AS varying_units_{j}"
+    totals = [f"{dialect.compensated}(ss_{j}) AS within_ss_{j},\n       count(*) FILTER (WHERE ss_{j} > 0) AS varying_units_{j}"
               for j in numeric]
     return render(
         "checkup_units",
         source=source_sql,
-        unit=quote_ident(unit),
+        unit=quote_ident(unit, dialect),
         period=period_value,
-        slot=slot_expression(period_value, mode),
+        slot=slot_expression(period_value, mode, dialect),
         distinct_slots="bit_count(bitstring_agg(slot, 0, $last_slot))" if bitmap else "count(DISTINCT slot)",
         column_values="".join(", " + v for v in values),
         unit_aggregates="".join(",\n           " + a for a in per_unit),

@@ -224,6 +224,23 @@ def test_checkup_on_postgres_matches_duckdb(wagepan):
                 assert b[key] == value, (a["name"], key)
 
 
+def test_checkup_text_numbers_as_on_duckdb(server, tmp_path):
+    """A text column of numbers with a few other values: PostgreSQL's test for text that
+    reads as a number (bigpanel.render, a pattern) draws DuckDB's line, TRY_CAST: blanks
+    around, underscores between digits and signed words are numbers; '1.5d' and '1,5' are
+    not. Reference: DuckDB's checkup of the same rows."""
+    notes = ["1.5", " 7 ", "1_000", "-nan", "+Infinity", "2e3", "NA", "1.5d", "1,5", None] + [str(v) for v in range(11)]
+    table = pa.table({"unit": list(range(len(notes))), "period": [1] * len(notes), "note": notes})
+    path = tmp_path / "notes.parquet"
+    import pyarrow.parquet as pq
+
+    pq.write_table(table, path)
+    _load(server, "notes", table)
+    duck = bigpanel.inspect_panel(path, "unit", "period")
+    pg = bigpanel.inspect_panel(_as_user(server, "reader"), "unit", "period", table=f"{SCHEMA}.notes")
+    assert duck.columns[0].number_tokens == ("1,5", "1.5d", "NA")
+    assert pg.columns[0].number_tokens == duck.columns[0].number_tokens
+
 def test_domain_of_ln_and_sqrt_as_on_duckdb(wagepan):
     # DuckDB gives NaN or -inf for ln and sqrt outside their domain and leaves those rows
     # out; PostgreSQL would stop the query: the rendering gives NULL there instead, so the

@@ -295,17 +295,133 @@ regressors = ["hours", "union", "married"]
                                rtol=RELATIVE_TOLERANCE, atol=0)
 
 
+# ---------------------------------------------------------------- the checkup on Spark
+# Reference: DuckDB's checkup of the same files, which tests/test_panel.py checks against
+# pandas/numpy group-bys. Counts must be equal; floats (means, spreads, shares) agree to
+# 10 * RELATIVE_TOLERANCE, as the fits' derived numbers do (_assert_close).
+
+
+def _checkups(path, unit: str, period: str, columns=None, **kwargs) -> tuple[dict, dict]:
+    """DuckDB's and Spark's checkup of the same source, as JSON-ready dicts without the
+    ``run`` entry (threads, and on Spark the engine and master)."""
+    duck = bigpanel.inspect_panel(path, unit, period, columns, **kwargs).to_dict()
+    other = bigpanel.inspect_panel(path, unit, period, columns, engine="spark", **kwargs).to_dict()
+    assert other["run"]["engine"] == "spark" and "engine" not in duck["run"]
+    duck.pop("run"), other.pop("run")
+    return duck, other
+
+
+def test_checkup_on_spark_matches_duckdb_on_wagepan(spark, wagepan):
+    """Every column of wagepan (balanced, 545 men x 8 years; educ, black and hisp never
+    change within a man): the same report, number for number."""
+    duck, other = _checkups(wagepan, "nr", "year")
+    assert duck["n_units"] == 545 and duck["n_balanced_units"] == 545  # wagepan's documented shape
+    assert {"educ", "black", "hisp"} <= set(duck["not_estimable"])
+    _assert_close(other, duck, key="checkup")
+
+
+@pytest.fixture(scope="module")
+def trap_panel(tmp_path_factory) -> Path:
+    """Depots by month (tests/checkup_data.make_panel: unbalanced entry and exit, gaps, a
+    single-month depot, duplicate keys, rows missing a key, a column on a 1e8 offset,
+    columns constant within depots), with columns added by pyarrow: the period as a
+    timestamp on a 36-hour grid (``stamp``) and as a date on a weekly grid (``week``);
+    a timestamp with a time zone; NaN and infinite sales; a text column of numbers with
+    'NA', '.' and '1.5d' among them; a yes/no column; and a count that the second of the two
+    files lacks."""
+    import datetime as dt
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from checkup_data import make_panel
+
+    base = make_panel(seed=11, n_units=16, n_months=12, duplicates=True, missing_keys=True)
+    n = base.num_rows
+    rng = np.random.default_rng(11)
+    month = base.column("month").to_pylist()
+    index = [None if m is None else (m.year - 2021) * 12 + m.month - 1 for m in month]
+    stamp = [None if k is None else dt.datetime(2021, 1, 1) + dt.timedelta(hours=36 * k) for k in index]
+    week = [None if k is None else dt.date(2021, 1, 4) + dt.timedelta(days=7 * k) for k in index]
+    sales = rng.normal(50.0, 10.0, n)
+    sales[[2, 17]] = np.nan
+    sales[30], sales[31] = np.inf, -np.inf
+    sales_missing = np.zeros(n, dtype=bool)
+    sales_missing[[5, 44]] = True
+    note = [str(round(v, 2)) for v in rng.normal(3.0, 1.0, n)]
+    for i in range(0, n, 9):
+        note[i] = "NA"
+    note[4], note[13], note[22] = ".", ".", None
+    # numbers to DuckDB (underscores between digits, blanks around), and not ('1.5d', which
+    # Spark's own cast would read as 1.5): Spark must draw DuckDB's line
+    note[6], note[8], note[10] = "1.5d", "1_000", " 7 "
+    updated = [dt.datetime(2024, 5, 1, 8, tzinfo=dt.timezone.utc) + dt.timedelta(minutes=int(m)) for m in rng.integers(0, 10_000, n)]
+    table = base.append_column("stamp", pa.array(stamp, pa.timestamp("us"))) \
+        .append_column("week", pa.array(week, pa.date32())) \
+        .append_column("sales", pa.array(sales, mask=sales_missing)) \
+        .append_column("note", pa.array(note, pa.string())) \
+        .append_column("updated", pa.array(updated, pa.timestamp("us", tz="UTC"))) \
+        .append_column("open_sunday", pa.array(rng.random(n) < 0.4)) \
+        .append_column("trucks", pa.array(rng.integers(1, 9, n), pa.int32()))
+    folder = tmp_path_factory.mktemp("trap_panel")
+    cut = n // 2
+    pq.write_table(table.slice(0, cut), folder / "part-0.parquet")
+    pq.write_table(table.slice(cut).drop_columns(["trucks"]), folder / "part-1.parquet")
+    return folder
+
+
+@pytest.mark.parametrize("period, where", [
+    ("month", None),  # DATE, monthly grid
+    ("stamp", None),  # TIMESTAMP, a 36-hour grid (microseconds)
+    ("week", "week IS NULL OR week < DATE '2021-03-22'"),  # DATE, weekly grid (days); a filter leaves out the last week
+])
+def test_checkup_on_spark_matches_duckdb_on_a_trap_panel(spark, trap_panel, period, where):
+    """Gaps, duplicate keys (listed), rows without a key, NaN and infinities, a text
+    column of numbers, a column absent from one file, three period kinds: DuckDB's
+    report, number for number. The traps are checked to be set (on DuckDB's report)."""
+    duck, other = _checkups(trap_panel, "depot", period, where=where)
+    columns = {c["name"]: c for c in duck["columns"]}
+    assert duck["n_units_with_gaps"] > 0 and duck["n_missing_unit_periods"] > 0
+    assert duck["n_duplicate_keys"] > 0 and duck["duplicate_examples"]
+    assert duck["n_rows_missing_unit"] > 0 and duck["n_rows_missing_period"] > 0
+    assert columns["sales"]["n_not_finite"] > 0 and columns["sales"]["n_missing"] > 0
+    assert columns["note"]["number_tokens"] == ["NA", ".", "1.5d"]  # most frequent first
+    assert [a[0] for a in duck["absent_in_files"]] == ["trucks"]
+    assert duck["n_singleton_units"] > 0 and duck["n_balanced_units"] < duck["n_units"]
+    _assert_close(other, duck, key="checkup")
+
+
+def test_cli_checkup_on_spark(spark, trap_panel, capsys):
+    """bigpanel checkup --engine spark --json: Spark's report on stdout, the duplicate keys
+    named on stderr, exit code 1 (as on DuckDB); a few kilobytes collected from Spark."""
+    from bigpanel.cli import main
+
+    before = dict(SparkEngine.received)
+    code = main(["checkup", str(trap_panel), "--unit", "depot", "--period", "month", "--columns", "parcels,sales",
+                 "--engine", "spark", "--json"])
+    received = SparkEngine.received["bytes"] - before["bytes"]
+    captured = capsys.readouterr()
+    assert code == 1
+    assert "duplicate (depot, month) keys" in captured.err and "\n" not in captured.err.strip()
+    payload = json.loads(captured.out)
+    assert payload["run"]["engine"] == "spark"
+    duck = bigpanel.inspect_panel(trap_panel, "depot", "month", ["parcels", "sales"]).to_dict()
+    payload.pop("run"), duck.pop("run")
+    _assert_close(payload, duck, key="checkup")
+    assert 0 < received < 16_000
+
+
 # ---------------------------------------------------------------- refusals and settings (no Spark query)
 
 def test_what_spark_cannot_do_is_refused(tmp_path, wagepan):
-    """Sources other than Parquet, the checkup, and DuckDB's settings are refused by
-    name before Spark starts."""
+    """Sources other than Parquet (for fits and the checkup alike) and DuckDB's settings
+    are refused by name before Spark starts."""
     csv = tmp_path / "p.csv"
     csv.write_text("u,t,y,x\n1,1,1.0,2.0\n1,2,2.0,3.0\n")
     with pytest.raises(InputError, match="spark engine reads Parquet files.*CSV file"):
         bigpanel.fit(csv, "y", "x", "u", "t", engine="spark")
-    with pytest.raises(InputError, match="checkup runs on the duckdb engine only"):
-        bigpanel.inspect_panel(bigpanel.open_source(wagepan, engine="spark"), "nr", "year")
+    with pytest.raises(InputError, match="spark engine reads Parquet files.*CSV file"):
+        bigpanel.inspect_panel(csv, "u", "t", engine="spark")
     with pytest.raises(InputError, match="--memory-limit is a DuckDB setting"):
         bigpanel.Engine(memory_limit="1GB", name="spark")
     with pytest.raises(InputError, match="--spark-master applies to --engine spark"):

@@ -106,3 +106,25 @@ def test_awkward_column_names_end_to_end():
     assert (report.n_units, report.n_periods, report.n_balanced_units) == (2, 3, 1)
     checks = {c.name: c for c in report.columns}
     assert checks["sum x"].units_varying == 1 and checks["select"].within_estimable is False
+
+
+def test_spark_scans_use_no_duckdb_only_sql():
+    """Built in Spark's dialect, the checkup's scans call none of DuckDB's own functions
+    or operators (Spark lacks them; the Spark SQL reference lists its built-in functions)
+    and quote names in backticks; DuckDB's text is the one checked above."""
+    source = "(SELECT * FROM `v`)"
+    checked = ["select", "sum x", "note"]
+    period = sqlbuild.period_value("a`b", "timestamp", sqlbuild.SPARK)
+    sqls = [
+        sqlbuild.checkup_shift_probe_sql(source, checked, [1], sqlbuild.SPARK),
+        sqlbuild.checkup_period_scan_sql(source, "order", period, checked, [1], sqlbuild.SPARK),
+        sqlbuild.checkup_unit_scan_sql(source, "order", period, checked, [1], "microsecond", True, sqlbuild.SPARK),
+        sqlbuild.checkup_duplicate_scan_sql(source, "order", period, sqlbuild.SPARK),
+        sqlbuild.text_number_counts_sql(source, ["note"], sqlbuild.SPARK),
+        sqlbuild.text_tokens_sql(source, "note", 6, sqlbuild.SPARK),
+    ]
+    for sql in sqls:
+        for duckdb_only in ("favg(", "fsum(", "isfinite(", "//", "histogram(", "bitstring_agg(", "bit_count(",
+                            "epoch_us(", "date_diff(", "TRY_CAST", "HUGEINT", '"'):
+            assert duckdb_only not in sql, (duckdb_only, sql)
+    assert "`sum x`" in sqls[1] and "CAST(`a``b` AS TIMESTAMP)" in sqls[2] and "count(DISTINCT slot)" in sqls[2]
