@@ -443,6 +443,8 @@ def test_cluster_file_system_urls_go_to_spark(spark, wagepan, tmp_path):
     on_spark = _quiet_fit(url, "lwage", TERMS, "nr", "year", engine="spark")
     _assert_same(duck, on_spark)
     assert on_spark.source == url and on_spark.n_obs == duck.n_obs
+    report = bigpanel.inspect_panel(url, "nr", "year", engine="spark")  # the checkup reads the URL through Spark too
+    assert report.n_rows == duck.n_obs == 4360 and report.n_units == 545
     with pytest.raises(InputError, match="is a remote URL; bigpanel reads local files only"):
         bigpanel.fit(url, "lwage", TERMS, "nr", "year")
     with pytest.raises(InputError, match=r"is a https:// URL, which the spark engine does not read"):
