@@ -29,7 +29,8 @@ import tempfile
 import threading
 import uuid
 import warnings
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from pathlib import Path
 
 from . import moments, sqlbuild
@@ -45,6 +46,11 @@ RELATIVE_TOLERANCE = 1e-9
 LOCAL_MASTER = "local[*]"
 LOG_CONFIG = Path(__file__).with_name("spark-log4j2.properties")
 LOCAL_SHUFFLE_PARTITIONS = 8  # Spark's default 200 costs seconds of scheduling on small local runs
+# What bigpanel's SQL means depends on two session settings: times read in UTC (a month or a
+# day of a timestamp as DuckDB reads it) and x / 0 as NULL (not an error, as in DuckDB). A
+# session bigpanel starts has them; a session already active (a notebook's) gets them for
+# the length of each query and its own values back afterwards (``_meaning``).
+SESSION_SETTINGS = {"spark.sql.session.timeZone": "UTC", "spark.sql.ansi.enabled": "false"}
 
 # Spark type names (DataType.simpleString) as the DuckDB type names the pipeline checks
 _TYPES = {"tinyint": "TINYINT", "smallint": "SMALLINT", "int": "INTEGER", "bigint": "BIGINT", "float": "FLOAT",
@@ -115,8 +121,8 @@ def spark_session(master: str | None = None):
         builder = (session_class.builder.master(url).appName("bigpanel")
                    .config("spark.ui.enabled", "false")
                    .config("spark.ui.showConsoleProgress", "false")
-                   .config("spark.sql.session.timeZone", "UTC")
-                   .config("spark.sql.ansi.enabled", "false")  # x / 0 is NULL, as in DuckDB
+                   .config("spark.sql.session.timeZone", SESSION_SETTINGS["spark.sql.session.timeZone"])
+                   .config("spark.sql.ansi.enabled", SESSION_SETTINGS["spark.sql.ansi.enabled"])
                    .config("spark.driver.extraJavaOptions", f"-Dlog4j2.configurationFile={LOG_CONFIG.as_uri()}"))
         if is_local(url):
             # Spark makes its (unused) warehouse folder when it starts: in the system's temporary
@@ -132,6 +138,25 @@ def spark_session(master: str | None = None):
                                 "Check the master URL, and that Java 17 is installed (JAVA_HOME).") from None
         session.sparkContext.setLogLevel("ERROR")
         return session
+
+
+@contextmanager
+def _meaning(spark) -> Iterator[None]:
+    """:data:`SESSION_SETTINGS` on ``spark`` while a query runs; the session's own values
+    (or their absence) restored afterwards."""
+    conf = spark.conf
+    saved = {key: conf.get(key, None) for key in SESSION_SETTINGS}
+    changed = [key for key, value in SESSION_SETTINGS.items() if saved[key] != value]
+    for key in changed:
+        conf.set(key, SESSION_SETTINGS[key])
+    try:
+        yield
+    finally:
+        for key in changed:
+            if saved[key] is None:
+                conf.unset(key)
+            else:
+                conf.set(key, saved[key])
 
 
 def _first_line(exc: BaseException) -> str:
@@ -241,7 +266,8 @@ class SparkEngine:
         sql = sqlbuild.expression_type_sql(expression, self.dialect.quote_ident(self.view))
         try:
             self._check_query(sql)
-            field = self.spark.sql(sql).schema.fields[0]
+            with _meaning(self.spark):
+                field = self.spark.sql(sql).schema.fields[0]
         except BigpanelError:
             raise
         except Exception as exc:  # noqa: BLE001
@@ -280,7 +306,8 @@ class SparkEngine:
         text, args = self.dialect.bind(sql, params)
         self._check_query(text)
         try:
-            table = self.spark.sql(text, args=args).toArrow()
+            with _meaning(self.spark):
+                table = self.spark.sql(text, args=args).toArrow()
         except Exception as exc:  # noqa: BLE001 - Spark's errors arrive through py4j
             raise self._explain(exc) from None
         SparkEngine.received["queries"] += 1
