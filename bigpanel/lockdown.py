@@ -45,6 +45,14 @@ def is_remote(path: str) -> bool:
 SPARK_SCHEMES = ("hdfs", "viewfs", "s3a", "s3", "gs", "abfs", "abfss", "wasb", "wasbs", "file")
 
 
+_URL_KEY = re.compile(r"\b([A-Za-z][A-Za-z0-9+.\-]*://)[^/@\s]*@")
+
+
+def mask_url_keys(text: str) -> str:
+    """``text`` with whatever a URL holds before an ``@`` (a user, key or password) shown as ``***``."""
+    return _URL_KEY.sub(r"\1***@", text)
+
+
 def url_scheme(path: str) -> str:
     return path.split("://", 1)[0].strip().lower() if is_remote(path) else ""
 

@@ -532,8 +532,8 @@ def open_source(
         lockdown.refuse_remote_source(path, engine.name)
         lower = path.lower()
         if lockdown.is_remote(path):  # the spark engine's cluster file systems: Spark lists and reads them
-            shown_url = re.sub(r"^([^:/]+://)[^/@]*@", r"\1***@", path.strip())  # no key or password in a label
-            src = Source(kind="parquet", label=echo(shown_url), files=(path.strip(),), remote=True, **common)
+            src = Source(kind="parquet", label=echo(lockdown.mask_url_keys(path.strip())), files=(path.strip(),),
+                         remote=True, **common)
         elif lower.endswith((".duckdb", ".db", ".ddb")):
             if not os.path.exists(path):
                 raise InputError(f"DuckDB file '{echo(path)}' does not exist. Check the path.")

@@ -160,8 +160,12 @@ def _meaning(spark) -> Iterator[None]:
 
 
 def _first_line(exc: BaseException) -> str:
+    from .lockdown import mask_url_keys
+
     text = [line for line in str(exc).strip().splitlines() if line.strip()]
-    return re.sub(r"\s*SQLSTATE: \w+\.?", "", text[0]) if text else type(exc).__name__
+    if len(text) > 1 and text[0].startswith("An error occurred while calling"):  # py4j's wrapper: the Java error follows
+        text = [text[1].lstrip(": ")]
+    return mask_url_keys(re.sub(r"\s*SQLSTATE: \w+\.?", "", text[0])) if text else type(exc).__name__
 
 
 def duck_type(spark_type: str) -> str:
@@ -195,7 +199,7 @@ class SparkEngine:
             frame = reader.parquet(*source.files)
         except Exception as exc:  # noqa: BLE001
             raise InputError(f"Spark could not read {source.label} ({echo(_first_line(exc))}). "
-                             "Check that the files are Parquet and readable.") from None
+                             "Check that the files are Parquet and readable (a URL also needs Spark's connector for its file system).") from None
         frame.createOrReplaceTempView(self.view)
         self._schema = frame.schema
 
