@@ -108,6 +108,12 @@ def _read_places(tree: Any) -> list[tuple[dict, str, bool]]:
     return found
 
 
+def _fixed_part(glob_text: str) -> str:
+    """A glob's folders before its first wildcard ('' when the first part has one)."""
+    parts = glob_text.split(os.sep)
+    return os.sep.join(parts[: next(i for i, p in enumerate(parts) if any(c in p for c in _WILDCARDS))])
+
+
 def query_reads(tree: dict) -> list[str]:
     """Strings a parsed query reads as files (:func:`_read_places`)."""
     return [node.get(key, "") for node, key, _ in _read_places(tree)]
@@ -125,9 +131,7 @@ def rebase_reads(tree: Any, folder: str) -> None:
             continue
         candidate = os.path.join(folder, text)
         if any(c in text for c in _WILDCARDS):
-            parts = text.split(os.sep)
-            fixed = os.sep.join(parts[: next(i for i, p in enumerate(parts) if any(c in p for c in _WILDCARDS))])
-            found = os.path.isdir(os.path.join(folder, fixed))
+            found = os.path.isdir(os.path.join(folder, _fixed_part(text)))
         else:
             found = os.path.isfile(candidate) or (not table_name and os.path.isdir(candidate))
         if found:
@@ -148,8 +152,7 @@ def allowed_for_query(reads: Iterable[str]) -> tuple[list[str], list[str]]:
             raise InputError(f"Option --query reads the remote URL '{echo(text)}'; bigpanel reads local files only. "
                              "Download the data and read the local copy.")
         if any(c in text for c in _WILDCARDS):
-            parts = text.split(os.sep)
-            fixed = os.sep.join(parts[: next(i for i, p in enumerate(parts) if any(c in p for c in _WILDCARDS))])
+            fixed = _fixed_part(text)
             folder = os.path.abspath(fixed or (os.sep if text.startswith(os.sep) else "."))
             if os.path.isdir(folder):
                 folders.append(folder.rstrip(os.sep) + os.sep)
