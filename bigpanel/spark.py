@@ -199,7 +199,8 @@ class SparkEngine:
             frame = reader.parquet(*source.files)
         except Exception as exc:  # noqa: BLE001
             raise InputError(f"Spark could not read {source.label} ({echo(_first_line(exc))}). "
-                             "Check that the files are Parquet and readable (a URL also needs Spark's connector for its file system).") from None
+                             "Check that the files are Parquet and readable (a URL also needs Spark's connector "
+                             "for its file system).") from None
         frame.createOrReplaceTempView(self.view)
         self._schema = frame.schema
 
